@@ -1,0 +1,94 @@
+"""The audit policy: limits and settings that apply to every loop unless a row overrides them.
+
+The defaults and their sources are listed in README.md ("Policy"). A workbook's
+``policy`` sheet overrides the defaults; a row's ``ms_max``, ``gm_min_db`` and
+``pm_min_deg`` override the sheet for that row.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, fields, replace
+from typing import Any, Mapping
+
+
+@dataclass(frozen=True)
+class Policy:
+    """Limits and settings of one audit.
+
+    Attributes
+    ----------
+    ms_max : float
+        Largest acceptable sensitivity peak Ms. [-]
+    gm_min_db : float
+        Smallest acceptable gain margin. [dB]
+    pm_min_deg : float
+        Smallest acceptable phase margin. [deg]
+    marginal_pct : float
+        A passing loop within this many percent of a limit is ``marginal``. [%]
+    band_energy_fraction : float
+        Fraction of a disturbance record's variance below the derived band edge. [-]
+    max_gap_s : float
+        Longest gap tolerated in a disturbance record, as a multiple of the median
+        sample interval; larger gaps reject the record. [-]
+    uniform_tolerance : float
+        Relative deviation of sample intervals from their median beyond which a
+        record is resampled. [-]
+    min_samples : int
+        Fewest samples a disturbance record may have. [-]
+    settle_band_pct : float
+        Band for settling times of step responses, as % of the step. [%]
+    cascade_ratio_min : float
+        Smallest acceptable ratio of inner to outer loop bandwidth. [-]
+    weight_high, weight_medium, weight_low : float
+        Criticality weights of the priority score. [-]
+    change_ms, change_margin_db, change_pm_deg, change_band_db : float
+        Change between audits above which a figure is reported as moved.
+        [-], [dB], [deg], [dB]
+    """
+
+    ms_max: float = 2.0
+    gm_min_db: float = 6.0
+    pm_min_deg: float = 30.0
+    marginal_pct: float = 10.0
+    band_energy_fraction: float = 0.95
+    max_gap_s: float = 5.0
+    uniform_tolerance: float = 0.01
+    min_samples: int = 64
+    settle_band_pct: float = 2.0
+    cascade_ratio_min: float = 4.0
+    weight_high: float = 3.0
+    weight_medium: float = 2.0
+    weight_low: float = 1.0
+    change_ms: float = 0.1
+    change_margin_db: float = 1.0
+    change_pm_deg: float = 5.0
+    change_band_db: float = 3.0
+
+    def as_dict(self) -> dict[str, Any]:
+        """The policy as a plain mapping (setting -> value), in declaration order."""
+        return {f.name: getattr(self, f.name) for f in fields(self)}
+
+    def with_values(self, values: Mapping[str, Any]) -> "Policy":
+        """A copy with some settings replaced (values already validated)."""
+        return replace(self, **dict(values))
+
+
+POLICY_HELP: dict[str, str] = {
+    "ms_max": "Largest acceptable sensitivity peak Ms [-]; 1.2-2.0 is the usual range (Astrom & Hagglund).",
+    "gm_min_db": "Smallest acceptable gain margin [dB]; 6 dB (a factor of 2) is common practice.",
+    "pm_min_deg": "Smallest acceptable phase margin [deg]; 30 deg is common practice.",
+    "marginal_pct": "A passing loop within this many % of a limit is reported as marginal [%].",
+    "band_energy_fraction": "Fraction of a disturbance record's variance that lies below the derived band edge [-].",
+    "max_gap_s": "Largest gap in a disturbance record, as a multiple of the median sample interval [-].",
+    "uniform_tolerance": "Relative jitter of sample intervals above which a record is resampled [-].",
+    "min_samples": "Fewest samples a disturbance record may have [-].",
+    "settle_band_pct": "Settling band of step responses, % of the step [%].",
+    "cascade_ratio_min": "Smallest ratio of inner to outer loop bandwidth in a cascade [-].",
+    "weight_high": "Priority weight of a high-criticality loop [-].",
+    "weight_medium": "Priority weight of a medium-criticality loop [-].",
+    "weight_low": "Priority weight of a low-criticality loop [-].",
+    "change_ms": "Change in Ms between audits reported as a move [-].",
+    "change_margin_db": "Change in gain margin between audits reported as a move [dB].",
+    "change_pm_deg": "Change in phase margin between audits reported as a move [deg].",
+    "change_band_db": "Change in band attenuation between audits reported as a move [dB].",
+}
