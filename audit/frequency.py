@@ -1,0 +1,673 @@
+"""Exact frequency-domain evaluation of many loops at once.
+
+For every loop L(jw) = sign C P F e^{-j w (theta + Ts/2)} [T_inner] is evaluated
+with the exact delay on a per-loop frequency grid, all loops and frequencies in
+flat numpy arrays. Every crossing and peak found on the grid is then refined on
+the exact response (vectorised bisection and golden-section search), so the
+figures do not depend on the grid.
+
+Stability is decided by the Nyquist argument: the number of closed-loop poles in
+the right half-plane is Z = P - 2 n + m, where P counts open-loop poles with
+Re > 0, n is the net number of downward crossings of the ray (-inf, -1) by
+L(jw) for w > 0, and m accounts for the small indentation around integrators
+(see DEVELOPERS.md, "How stability is decided"). Margins never decide it.
+
+References
+----------
+.. [1] K. J. Astrom and R. M. Murray, Feedback Systems, 2nd ed., Princeton, 2021, ch. 10
+   (Nyquist criterion, margins, Ms).
+.. [2] S. Skogestad and I. Postlethwaite, Multivariable Feedback Control, 2nd ed.,
+   Wiley, 2005, sec. 2.4 (bandwidth as |S| = 1/sqrt(2), Ms bounds on margins).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+
+from .loop import LoopModel
+
+#: |L| below which the tail of the frequency axis is not sampled densely. [-]
+TAIL_LEVEL = 1e-3
+#: Largest delay phase between neighbouring grid points. [rad]
+DELAY_STEP = 0.3
+#: Largest step in ln(w) between neighbouring grid points. [-]
+LOG_STEP = 0.02
+#: Grid points processed in one block (memory bound). [-]
+BLOCK_POINTS = 2_000_000
+#: Points per loop at most. [-]
+MAX_POINTS = 400_000
+
+FIGURE_COLUMNS = (
+    "stable", "rhp_closed", "rhp_open", "gm", "gm_db", "w180_rad_s", "gm_low", "pm_deg", "wc_rad_s",
+    "dm_s", "ms", "w_ms_rad_s", "mt", "w_mt_rad_s", "wb_rad_s", "band_s_db", "band_l_db", "engine_note",
+)
+
+
+@dataclass
+class Batch:
+    """Loops flattened into arrays; inner loops of cascades are entries too.
+
+    Attributes
+    ----------
+    num, den : ndarray (n, d)
+        Coefficients of sign C P F, descending in s, left-padded with zeros.
+    delay : ndarray (n,)
+        Own dead time theta + Ts/2. [s]
+    inner : ndarray (n,) of int
+        Entry of the inner loop whose set-point response multiplies L, or -1.
+    pvf : ndarray (n,)
+        PV filter time constant of the entry. [s]
+    """
+
+    num: np.ndarray
+    den: np.ndarray
+    delay: np.ndarray
+    inner: np.ndarray
+    pvf: np.ndarray
+
+
+def _flatten(models: Sequence[LoopModel | None]) -> tuple[list[LoopModel], np.ndarray, list[int]]:
+    entries: list[LoopModel] = []
+    inner_of: list[int] = []
+    seen: dict[int, int] = {}
+
+    def add(m: LoopModel) -> int:
+        key = id(m)
+        if key in seen:
+            return seen[key]
+        inn = add(m.inner) if m.inner is not None else -1
+        entries.append(m)
+        inner_of.append(inn)
+        seen[key] = len(entries) - 1
+        return seen[key]
+
+    top = np.array([add(m) if m is not None else -1 for m in models], dtype=int)
+    return entries, top, inner_of
+
+
+def _pad(polys: list[tuple[float, ...]]) -> np.ndarray:
+    width = max(len(p) for p in polys)
+    out = np.zeros((len(polys), width))
+    for i, p in enumerate(polys):
+        out[i, width - len(p):] = p
+    return out
+
+
+def build_batch(models: Sequence[LoopModel | None]) -> tuple[Batch, np.ndarray]:
+    """Flatten loops (and their inner loops) into a :class:`Batch`.
+
+    Returns the batch and, for each model, its entry index (-1 for None).
+    """
+    entries, top, inner_of = _flatten(models)
+    if not entries:
+        z = np.zeros((0, 1))
+        return Batch(z, z, np.zeros(0), np.zeros(0, int), np.zeros(0)), top
+    rats = [m.rational for m in entries]
+    batch = Batch(
+        num=_pad([r.num for r in rats]),
+        den=_pad([r.den for r in rats]),
+        delay=np.array([m.delay for m in entries], float),
+        inner=np.array(inner_of, int),
+        pvf=np.array([m.pv_filter for m in entries], float),
+    )
+    return batch, top
+
+
+def _polyval_rows(coef: np.ndarray, idx: np.ndarray, s: np.ndarray) -> np.ndarray:
+    acc = np.zeros(s.shape, complex)
+    for j in range(coef.shape[1]):
+        acc = acc * s + coef[:, j][idx]
+    return acc
+
+
+def eval_L(batch: Batch, idx: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """L(jw) of entries ``idx`` at frequencies ``w`` (same shape), exact delay. [-]"""
+    idx = np.asarray(idx, int)
+    w = np.asarray(w, float)
+    s = 1j * w
+    L = _polyval_rows(batch.num, idx, s) / _polyval_rows(batch.den, idx, s)
+    L = L * np.exp(-1j * w * batch.delay[idx])
+    inn = batch.inner[idx]
+    has = inn >= 0
+    if has.any():
+        wi = w[has]
+        Li = eval_L(batch, inn[has], wi)
+        F = 1.0 / (1.0 + 1j * wi * batch.pvf[inn[has]])
+        L[has] = L[has] * Li / (F * (1.0 + Li))
+    return L
+
+
+# ----------------------------------------------------------------------------------------------
+# Static (delay-free) properties of each entry: integrators, open-loop RHP poles, corner frequencies
+
+
+@dataclass
+class _Static:
+    k: np.ndarray          # net integrators (poles at s = 0) of the own rational part
+    p_own: np.ndarray      # open-loop poles with Re > 0 of the own rational part
+    axis_poles: np.ndarray  # poles on the imaginary axis other than 0 (unsupported)
+    c_min: np.ndarray      # lowest corner frequency [rad/s]
+    c_max: np.ndarray      # highest corner frequency [rad/s]
+    zeta: np.ndarray       # smallest damping of complex roots [-] (1 when none)
+    l_inf: np.ndarray      # lim |L| as w -> inf of the own rational part [-]
+    l_inf_real: np.ndarray  # its signed value (real) [-]
+
+
+def _trailing_zeros(row: np.ndarray) -> int:
+    nz = np.flatnonzero(row)
+    return 0 if nz.size == 0 else row.size - 1 - nz[-1]
+
+
+def _roots(row: np.ndarray) -> np.ndarray:
+    r = np.trim_zeros(row, "f")
+    r = np.trim_zeros(r, "b")
+    if r.size <= 1:
+        return np.zeros(0, complex)
+    return np.roots(r)
+
+
+def _static(batch: Batch) -> _Static:
+    n = batch.num.shape[0]
+    k = np.zeros(n, int)
+    p_own = np.zeros(n, int)
+    axis = np.zeros(n, int)
+    c_min = np.full(n, np.inf)
+    c_max = np.zeros(n)
+    zeta = np.ones(n)
+    l_inf = np.zeros(n)
+    l_inf_real = np.zeros(n)
+    for i in range(n):
+        num, den = batch.num[i], batch.den[i]
+        kn, kd = _trailing_zeros(num), _trailing_zeros(den)
+        k[i] = kd - kn
+        rn, rd = _roots(num), _roots(den)
+        scale = np.abs(np.concatenate([rn, rd]))
+        tol = 1e-9 * max(1.0, float(scale.max()) if scale.size else 1.0)
+        p_own[i] = int(np.sum(rd.real > tol))
+        axis[i] = int(np.sum((np.abs(rd.real) <= tol) & (np.abs(rd) > tol)))
+        corners = list(scale[scale > 0])
+        if batch.delay[i] > 0:
+            corners.append(1.0 / batch.delay[i])
+        # asymptotic crossover of the low-frequency asymptote c0 / s^k
+        nn, dd = np.trim_zeros(num, "b"), np.trim_zeros(den, "b")
+        if nn.size and dd.size and k[i] > 0:
+            c0 = abs(nn[-1] / dd[-1])
+            if c0 > 0:
+                corners.append(c0 ** (1.0 / k[i]))
+        if corners:
+            c_min[i], c_max[i] = min(corners), max(corners)
+        else:
+            c_min[i] = c_max[i] = 1.0
+        allr = np.concatenate([rn, rd])
+        cplx = allr[np.abs(allr.imag) > 1e-12 * np.maximum(np.abs(allr), 1e-300)]
+        if cplx.size:
+            zeta[i] = float(np.min(np.abs(cplx.real) / np.abs(cplx)))
+        ftn, ftd = np.trim_zeros(num, "f"), np.trim_zeros(den, "f")
+        if ftn.size == ftd.size and ftd.size:
+            l_inf_real[i] = ftn[0] / ftd[0]
+            l_inf[i] = abs(l_inf_real[i])
+    # Cascades: an outer entry inherits its inner loops' time scales; its own rational part
+    # is multiplied by T_inner, strictly proper when the inner loop is, so l_inf drops to 0.
+    for i in range(n):
+        j = batch.inner[i]
+        if j >= 0:
+            c_min[i] = min(c_min[i], c_min[j])
+            c_max[i] = max(c_max[i], c_max[j])
+            zeta[i] = min(zeta[i], zeta[j])
+            l_inf[i] = 0.0 if l_inf[j] == 0 else l_inf[i] * l_inf[j] / max(abs(1 - l_inf[j]), 1e-12)
+            l_inf_real[i] = 0.0 if l_inf[j] == 0 else l_inf[i]
+    return _Static(k, p_own, axis, c_min, c_max, zeta, l_inf, l_inf_real)
+
+
+def _total_delay(batch: Batch) -> np.ndarray:
+    d = batch.delay.copy()
+    for i in range(d.size):
+        j = batch.inner[i]
+        while j >= 0:
+            d[i] += batch.delay[j]
+            j = batch.inner[j]
+    return d
+
+
+def _depth(batch: Batch) -> np.ndarray:
+    depth = np.zeros(batch.inner.size, int)
+    for i in range(depth.size):
+        j = batch.inner[i]
+        while j >= 0:
+            depth[i] += 1
+            j = batch.inner[j]
+    return depth
+
+
+# ----------------------------------------------------------------------------------------------
+# Vectorised refinement
+
+
+def _bisect(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun, iters: int = 60) -> np.ndarray:
+    """Root of fun(L, w) in [a, b] per bracket (sign change assumed), by bisection."""
+    if ent.size == 0:
+        return a.copy()
+    fa = fun(eval_L(batch, ent, a), a)
+    sa = fa > 0
+    for _ in range(iters):
+        m = 0.5 * (a + b)
+        fm = fun(eval_L(batch, ent, m), m)
+        same = (fm > 0) == sa
+        a = np.where(same, m, a)
+        b = np.where(same, b, m)
+    return 0.5 * (a + b)
+
+
+_GOLD = (np.sqrt(5.0) - 1.0) / 2.0
+
+
+def _golden_max(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun,
+                iters: int = 70) -> tuple[np.ndarray, np.ndarray]:
+    """Maximum of fun(L, w) on [a, b] per bracket by golden-section search."""
+    if ent.size == 0:
+        return a.copy(), a.copy()
+    c = b - _GOLD * (b - a)
+    d = a + _GOLD * (b - a)
+    fc = fun(eval_L(batch, ent, c), c)
+    fd = fun(eval_L(batch, ent, d), d)
+    for _ in range(iters):
+        left = fc >= fd           # the maximum lies in [a, d]
+        b = np.where(left, d, b)
+        a = np.where(left, a, c)
+        x = np.where(left, b - _GOLD * (b - a), a + _GOLD * (b - a))
+        fx = fun(eval_L(batch, ent, x), x)
+        c, d, fc, fd = (np.where(left, x, d), np.where(left, c, x),
+                        np.where(left, fx, fd), np.where(left, fc, fx))
+    # evaluate both inner points and the bracket ends, keep the best
+    cand_w = np.stack([a, b, c, d])
+    cand_f = np.stack([fun(eval_L(batch, ent, x), x) for x in cand_w])
+    k = np.argmax(cand_f, axis=0)
+    cols = np.arange(ent.size)
+    return cand_w[k, cols], cand_f[k, cols]
+
+
+def _seg_max(values: np.ndarray, seg: np.ndarray, n: int, fill: float = -np.inf) -> np.ndarray:
+    out = np.full(n, fill)
+    np.maximum.at(out, seg, values)
+    return out
+
+
+def _seg_min(values: np.ndarray, seg: np.ndarray, n: int, fill: float = np.inf) -> np.ndarray:
+    out = np.full(n, fill)
+    np.minimum.at(out, seg, values)
+    return out
+
+
+def _arg_by_seg(values: np.ndarray, seg: np.ndarray, n: int) -> np.ndarray:
+    """Index (into values) of the per-segment maximum; -1 for empty segments."""
+    out = np.full(n, -1, int)
+    if values.size == 0:
+        return out
+    order = np.lexsort((-values, seg))
+    first = np.ones(order.size, bool)
+    first[1:] = seg[order][1:] != seg[order][:-1]
+    out[seg[order][first]] = order[first]
+    return out
+
+
+# ----------------------------------------------------------------------------------------------
+# The grid
+
+
+def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
+    """Per-entry frequency ranges and point counts."""
+    c_min, c_max = st.c_min[ents], st.c_max[ents]
+    w_lo = 1e-3 * c_min
+    # coarse magnitude scan to find where |L| has fallen to the tail level for good
+    per_dec = 20
+    top = 1e5 * c_max
+    ndec = np.log10(top / w_lo)
+    npts = np.ceil(ndec * per_dec).astype(int) + 1
+    seg = np.repeat(np.arange(ents.size), npts)
+    start = np.cumsum(npts) - npts
+    pos = np.arange(seg.size) - start[seg]
+    w = w_lo[seg] * 10.0 ** (pos / per_dec)
+    mag = np.abs(eval_L(batch, ents[seg], w))
+    thr = np.maximum(TAIL_LEVEL, st.l_inf[ents] * (1 + 1e-3) + TAIL_LEVEL * st.l_inf[ents])
+    above = mag >= thr[seg]
+    last = _seg_max(np.where(above, pos, -1), seg, ents.size, -1)
+    w_hi = np.where(last >= 0, w_lo * 10.0 ** ((last + 1) / per_dec), w_lo * 100.0) * 2.0
+    w_hi = np.maximum(w_hi, 100.0 * w_lo)
+    h_log = np.clip(st.zeta[ents] / 3.0, 0.002, LOG_STEP)
+    with np.errstate(divide="ignore"):
+        w_b = np.where(tdelay[ents] > 0, DELAY_STEP / (np.maximum(tdelay[ents], 1e-300) * h_log), np.inf)
+    w_mid = np.minimum(w_b, w_hi)
+    n_log = np.ceil(np.log(w_mid / w_lo) / h_log).astype(int) + 1
+    n_lin = np.where(w_hi > w_b, np.ceil((w_hi - w_mid) * tdelay[ents] / DELAY_STEP), 0).astype(int)
+    over = (n_log + n_lin) > MAX_POINTS
+    if over.any():
+        n_lin = np.where(over, np.maximum(MAX_POINTS - n_log, 0), n_lin)
+    return w_lo, w_hi, w_mid, h_log, n_log, n_lin, over
+
+
+def _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin):
+    counts = n_log + n_lin
+    seg = np.repeat(np.arange(counts.size), counts)
+    start = np.cumsum(counts) - counts
+    pos = np.arange(seg.size) - start[seg]
+    nl = n_log[seg]
+    step_log = np.log(w_mid / w_lo) / np.maximum(n_log - 1, 1)
+    w_log = w_lo[seg] * np.exp(pos * step_log[seg])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        step_lin = (w_hi - w_mid) / np.maximum(n_lin, 1)
+    w_lin = w_mid[seg] + (pos - nl + 1) * step_lin[seg]
+    w = np.where(pos < nl, w_log, w_lin)
+    return seg, w, start, counts
+
+
+# ----------------------------------------------------------------------------------------------
+# Evaluation of one block of entries
+
+
+def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray, p_open: np.ndarray,
+                    band: np.ndarray, grid) -> dict[str, np.ndarray]:
+    n = ents.size
+    out: dict[str, np.ndarray] = {}
+    w_lo, w_hi, w_mid, h_log, n_log, n_lin, capped = grid
+    seg, w, start, counts = _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin)
+    ent_pt = ents[seg]
+    L = eval_L(batch, ent_pt, w)
+    one_plus = 1.0 + L
+    absL = np.abs(L)
+    absS = 1.0 / np.abs(one_plus)
+    absT = absL * absS
+    same = seg[1:] == seg[:-1]
+    i0 = np.flatnonzero(same)          # bracket [i0, i0 + 1] lies in one segment
+    k = st.k[ents]
+    kpos = np.maximum(k, 0)
+
+    # values at w = 0 (finite only without integrators)
+    L0 = np.full(n, np.nan, complex)
+    fin = k <= 0
+    if fin.any():
+        L0[fin] = eval_L(batch, ents[fin], np.zeros(int(fin.sum())))
+    L0 = np.where(k < 0, 0.0 + 0.0j, L0)
+    L0r = L0.real
+
+    # ---- Nyquist: real-axis crossings of L(jw) ----
+    im = L.imag
+    pos_im = im > 0
+    br = i0[pos_im[i0] != pos_im[i0 + 1]]
+    ta = im[br] / (im[br] - im[br + 1])
+    Lest = L[br] + ta * (L[br + 1] - L[br])
+    neg = Lest.real < 0
+    big = neg & (np.abs(Lest) > 0.05)
+    small = neg & ~big
+    pick = np.flatnonzero(big)
+    if small.any():
+        sidx = np.flatnonzero(small)
+        best = _arg_by_seg(np.abs(Lest[sidx]), seg[br[sidx]], n)
+        pick = np.union1d(pick, sidx[best[best >= 0]])
+    brp = br[pick]
+    wx = _bisect(batch, ent_pt[brp], w[brp], w[brp + 1], lambda Lv, _w: Lv.imag)
+    Lx = eval_L(batch, ent_pt[brp], wx)
+    rex = Lx.real
+    sx = seg[brp]
+    down = pos_im[brp]
+    left = rex < -1.0
+    n_net = np.zeros(n, int)
+    np.add.at(n_net, sx[left], np.where(down[left], 1, -1))
+    a_lo = np.angle(one_plus[start])
+    m = np.round((2.0 * a_lo + kpos * np.pi) / (2.0 * np.pi)).astype(int)
+    z = p_open - 2 * n_net + m
+    # neutral-type loops: |L(inf)| >= 1 with a delay cannot be stable
+    neutral = (st.l_inf[ents] >= 1.0) & (tdelay[ents] > 0)
+    min_dist = _seg_min(np.abs(one_plus), seg, n)
+    marginal = (min_dist < 1e-9) | (st.axis_poles[ents] > 0)
+    out["rhp_closed"] = np.maximum(z, 0)
+    out["stable"] = (z == 0) & ~neutral & ~marginal
+    out["_z_raw"] = z
+    notes = np.full(n, "", object)
+    notes[neutral] = "high-frequency loop gain |L(inf)| >= 1 with dead time: not stable"
+    notes[st.axis_poles[ents] > 0] = "open-loop poles on the imaginary axis (other than integrators): treated as not stable"
+    notes[min_dist < 1e-9] = "L(jw) passes through -1: marginally stable, treated as not stable"
+    notes[capped] = "frequency grid capped; figures at very high frequency may be incomplete"
+    notes[z < 0] = "Nyquist count inconsistent (numerical); treated as not stable"
+    out["stable"] &= z >= 0
+
+    # ---- gain margins ----
+    negx = rex < 0
+    kfac = np.where(negx, -1.0 / np.where(negx, rex, -1.0), np.nan)
+    with np.errstate(invalid="ignore"):
+        up = negx & (kfac > 1.0)
+        lowm = negx & (kfac < 1.0)
+    gm = np.full(n, np.inf)
+    w180 = np.full(n, np.nan)
+    gm_low = np.full(n, np.nan)
+    if up.any():
+        iu = np.flatnonzero(up)
+        best = _arg_by_seg(-kfac[iu], sx[iu], n)
+        ok = best >= 0
+        gm[ok] = kfac[iu[best[ok]]]
+        w180[ok] = wx[iu[best[ok]]]
+    if lowm.any():
+        il = np.flatnonzero(lowm)
+        best = _arg_by_seg(kfac[il], sx[il], n)
+        ok = best >= 0
+        gm_low[ok] = kfac[il[best[ok]]]
+    # crossing at w = 0: L(0) real and negative
+    with np.errstate(divide="ignore", invalid="ignore"):
+        k0 = np.where((k == 0) & (L0r < 0), -1.0 / L0r, np.nan)
+    z0 = (k0 > 1.0) & (k0 < gm)
+    gm = np.where(z0, k0, gm)
+    w180 = np.where(z0, 0.0, w180)
+    z1 = (k0 < 1.0) & ~(gm_low >= k0)
+    gm_low = np.where(z1, k0, gm_low)
+    out["gm"] = gm
+    with np.errstate(divide="ignore"):
+        out["gm_db"] = 20.0 * np.log10(gm)
+    out["w180_rad_s"] = w180
+    out["gm_low"] = gm_low
+
+    # ---- gain crossovers: phase and delay margins ----
+    lg_pos = absL > 1.0
+    bc = i0[lg_pos[i0] != lg_pos[i0 + 1]]
+    wc_all = _bisect(batch, ent_pt[bc], w[bc], w[bc + 1], lambda Lv, _w: np.log(np.abs(Lv)))
+    Lc = eval_L(batch, ent_pt[bc], wc_all)
+    pm_all = 180.0 + np.degrees(np.angle(Lc))
+    pm_all = np.where(pm_all > 180.0, pm_all - 360.0, pm_all)
+    sc = seg[bc]
+    pm = np.full(n, np.inf)
+    wc = np.full(n, np.nan)
+    dm = np.full(n, np.inf)
+    if bc.size:
+        best = _arg_by_seg(-np.abs(pm_all), sc, n)
+        ok = best >= 0
+        pm[ok] = pm_all[best[ok]]
+        wc[ok] = wc_all[best[ok]]
+        dm_all = np.radians(np.mod(pm_all, 360.0)) / wc_all
+        dmin = _seg_min(dm_all, sc, n)
+        dm = np.where(np.isfinite(dmin), dmin, np.inf)
+    out["pm_deg"], out["wc_rad_s"], out["dm_s"] = pm, wc, dm
+
+    # ---- peaks of |S| and |T| ----
+    tail_d = tdelay[ents] > 0
+    linf = st.l_inf[ents]
+    with np.errstate(divide="ignore"):
+        s_inf = np.where(tail_d & (linf > 0), 1.0 / np.maximum(1.0 - linf, 0.0),
+                         1.0 / np.abs(1.0 + st.l_inf_real[ents]))
+        t_inf = np.where(tail_d & (linf > 0), linf / np.maximum(1.0 - linf, 0.0),
+                         linf / np.abs(1.0 + st.l_inf_real[ents]))
+        s_0 = np.where(k > 0, 0.0, 1.0 / np.abs(1.0 + L0))
+        t_0 = np.where(k > 0, 1.0, np.abs(L0) / np.abs(1.0 + L0))
+    out["ms"], out["w_ms_rad_s"] = _peak(batch, ent_pt, seg, w, absS, i0, n, s_0, s_inf,
+                                         lambda Lv, _w: 1.0 / np.abs(1.0 + Lv))
+    out["mt"], out["w_mt_rad_s"] = _peak(batch, ent_pt, seg, w, absT, i0, n, t_0, t_inf,
+                                         lambda Lv, _w: np.abs(Lv) / np.abs(1.0 + Lv))
+
+    # ---- bandwidth: first rise of |S| through 1/sqrt(2) ----
+    thr = 1.0 / np.sqrt(2.0)
+    rise = i0[(absS[i0] < thr) & (absS[i0 + 1] >= thr)]
+    wb = np.full(n, np.nan)
+    if rise.size:
+        first = _arg_by_seg(-rise.astype(float), seg[rise], n)
+        ok = first >= 0
+        rb = rise[first[ok]]
+        wb[ok] = _bisect(batch, ent_pt[rb], w[rb], w[rb + 1], lambda Lv, _w: 1.0 / np.abs(1.0 + Lv) - thr)
+    starts_above = absS[start] >= thr
+    wb[starts_above] = np.nan
+    out["wb_rad_s"] = wb
+
+    # ---- rejection band ----
+    out["band_s_db"], out["band_l_db"] = _band(batch, ents, ent_pt, seg, w, absS, absL, i0, n, band,
+                                               s_0, np.where(k > 0, np.inf, np.abs(L0)))
+    out["engine_note"] = notes
+    return out
+
+
+def _peak(batch, ent_pt, seg, w, vals, i0, n, v0, vinf, fun):
+    """sup over w >= 0 of a magnitude, limits at 0 and infinity included."""
+    both = np.intersect1d(i0 + 1, i0)     # points with a left and a right neighbour in the segment
+    locmax = both[(vals[both] >= vals[both - 1]) & (vals[both] > vals[both + 1])]
+    gmax = _seg_max(vals, seg, n)
+    cand = locmax[vals[locmax] >= 0.8 * gmax[seg[locmax]]]
+    # at most 8 candidates per loop, the highest
+    if cand.size:
+        order = np.lexsort((-vals[cand], seg[cand]))
+        cs = seg[cand][order]
+        rank = np.arange(cs.size) - np.searchsorted(cs, cs, side="left")
+        cand = cand[order][rank < 8]
+    wpk, fpk = _golden_max(batch, ent_pt[cand], w[cand - 1], w[cand + 1], fun)
+    best = _seg_max(fpk, seg[cand], n) if cand.size else np.full(n, -np.inf)
+    arg = _arg_by_seg(fpk, seg[cand], n) if cand.size else np.full(n, -1)
+    value = np.where(np.isfinite(best), best, -np.inf)
+    where = np.where(arg >= 0, wpk[np.maximum(arg, 0)] if cand.size else np.nan, np.nan)
+    # grid values (ends of the sampled range) as a floor
+    gw = _arg_by_seg(vals, seg, n)
+    gbetter = vals[gw] > value
+    value = np.where(gbetter, vals[gw], value)
+    where = np.where(gbetter, w[gw], where)
+    at0 = v0 > value
+    value = np.where(at0, v0, value)
+    where = np.where(at0, 0.0, where)
+    atinf = vinf > value
+    value = np.where(atinf, vinf, value)
+    where = np.where(atinf, np.inf, where)
+    return value, where
+
+
+def _band(batch, ents, ent_pt, seg, w, absS, absL, i0, n, band, s0, l0):
+    """max |S| and min |L| over 0 < w <= wd, in dB."""
+    s_db = np.full(n, np.nan)
+    l_db = np.full(n, np.nan)
+    has = np.isfinite(band) & (band > 0)
+    if not has.any():
+        return s_db, l_db
+    wd = np.where(has, band, np.nan)
+    inband = w <= wd[seg]
+    smax = _seg_max(np.where(inband, absS, -np.inf), seg, n)
+    lmin = _seg_min(np.where(inband, absL, np.inf), seg, n)
+    hi = np.flatnonzero(has)
+    Ld = eval_L(batch, ents[hi], wd[hi])
+    smax[hi] = np.maximum(smax[hi], 1.0 / np.abs(1.0 + Ld))
+    lmin[hi] = np.minimum(lmin[hi], np.abs(Ld))
+    smax = np.maximum(smax, s0)
+    lmin = np.minimum(lmin, l0)
+    # interior extrema strictly inside the band, refined
+    trip = np.intersect1d(i0 + 1, i0)  # points with a left and a right neighbour in segment
+    ok = inband[trip] & (w[np.minimum(trip + 1, w.size - 1)] <= wd[seg[trip]])
+    trip = trip[ok]
+    smx = trip[(absS[trip] >= absS[trip - 1]) & (absS[trip] > absS[trip + 1])]
+    lmn = trip[(absL[trip] <= absL[trip - 1]) & (absL[trip] < absL[trip + 1])]
+    if smx.size:
+        _, f = _golden_max(batch, ent_pt[smx], w[smx - 1], w[smx + 1], lambda Lv, _w: 1.0 / np.abs(1.0 + Lv))
+        smax = np.maximum(smax, _seg_max(f, seg[smx], n))
+    if lmn.size:
+        _, f = _golden_max(batch, ent_pt[lmn], w[lmn - 1], w[lmn + 1], lambda Lv, _w: -np.abs(Lv))
+        lmin = np.minimum(lmin, _seg_min(-f, seg[lmn], n))
+    with np.errstate(divide="ignore"):
+        s_db[has] = 20.0 * np.log10(smax[has])
+        l_db[has] = 20.0 * np.log10(lmin[has])
+    return s_db, l_db
+
+
+# ----------------------------------------------------------------------------------------------
+
+
+def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFrame:
+    """Exact frequency-domain figures of many loops.
+
+    Parameters
+    ----------
+    models : sequence of LoopModel or None
+        The loops; None (an invalid row) gives a row of missing values.
+    band_rad_s : array-like, optional
+        Upper edge wd of each loop's rejection band (NaN or None: no requirement). [rad/s]
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per model, columns :data:`FIGURE_COLUMNS`: ``stable`` [-], ``rhp_closed`` [-],
+        ``rhp_open`` [-], ``gm`` [-], ``gm_db`` [dB], ``w180_rad_s`` [rad/s], ``gm_low`` [-],
+        ``pm_deg`` [deg], ``wc_rad_s`` [rad/s], ``dm_s`` [s], ``ms`` [-], ``w_ms_rad_s`` [rad/s],
+        ``mt`` [-], ``w_mt_rad_s`` [rad/s], ``wb_rad_s`` [rad/s], ``band_s_db`` [dB],
+        ``band_l_db`` [dB], ``engine_note`` (text).
+    """
+    models = list(models)
+    nmod = len(models)
+    if band_rad_s is None:
+        band_rad_s = np.full(nmod, np.nan)
+    band_in = np.array([np.nan if b is None else float(b) for b in band_rad_s], float)
+    batch, top = build_batch(models)
+    ne = batch.num.shape[0]
+    res = {c: np.full(ne, np.nan, object if c == "engine_note" else float) for c in FIGURE_COLUMNS}
+    res["stable"] = np.zeros(ne, bool)
+    res["engine_note"] = np.full(ne, "", object)
+    zraw = np.zeros(ne, int)
+    if ne:
+        st = _static(batch)
+        tdel = _total_delay(batch)
+        depth = _depth(batch)
+        band_e = np.full(ne, np.nan)
+        for i, e in enumerate(top):
+            if e >= 0 and np.isfinite(band_in[i]):
+                band_e[e] = band_in[i]
+        p_open = st.p_own.copy()
+        for level in range(int(depth.max()) + 1):
+            lev = np.flatnonzero(depth == level)
+            for e in lev:
+                j = batch.inner[e]
+                if j >= 0:
+                    p_open[e] = st.p_own[e] + max(zraw[j], 0)
+            for chunk in np.array_split(lev, int(np.ceil(lev.size / 2000))):
+                grid = _grids(batch, chunk, st, tdel)
+                for sub in _blocks(grid[4] + grid[5]):
+                    blk = chunk[sub]
+                    o = _evaluate_block(batch, blk, st, tdel, p_open[blk], band_e[blk],
+                                        tuple(g[sub] for g in grid))
+                    zraw[blk] = o.pop("_z_raw")
+                    for c, v in o.items():
+                        res[c][blk] = v
+        res["rhp_open"] = p_open.astype(float)
+    frame = {c: [] for c in FIGURE_COLUMNS}
+    for e in top:
+        for c in FIGURE_COLUMNS:
+            if e < 0:
+                frame[c].append(None if c in ("stable", "engine_note") else np.nan)
+            else:
+                v = res[c][e]
+                frame[c].append(bool(v) if c == "stable" else v)
+    df = pd.DataFrame(frame, columns=list(FIGURE_COLUMNS))
+    for c in ("rhp_closed", "rhp_open"):
+        df[c] = pd.array(df[c].to_numpy(dtype=float), dtype="Float64").round().astype("Int64")
+    return df
+
+
+def _blocks(counts: np.ndarray):
+    """Consecutive index ranges whose point counts add up to at most BLOCK_POINTS."""
+    edges = np.cumsum(counts)
+    i = 0
+    while i < counts.size:
+        j = int(np.searchsorted(edges, (edges[i - 1] if i else 0) + BLOCK_POINTS, side="right"))
+        j = max(j, i + 1)
+        yield np.arange(i, j)
+        i = j
