@@ -526,7 +526,7 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
 
 def _peak(batch, ent_pt, seg, w, vals, i0, n, v0, vinf, fun):
     """sup over w >= 0 of a magnitude, limits at 0 and infinity included."""
-    both = np.intersect1d(i0 + 1, i0)     # points with a left and a right neighbour in the segment
+    both = np.intersect1d(i0 + 1, i0, assume_unique=True)  # points with a left and a right neighbour in the segment
     locmax = both[(vals[both] >= vals[both - 1]) & (vals[both] > vals[both + 1])]
     gmax = _seg_max(vals, seg, n)
     cand = locmax[vals[locmax] >= 0.8 * gmax[seg[locmax]]]
@@ -573,7 +573,7 @@ def _band(batch, ents, ent_pt, seg, w, absS, absL, i0, n, band, s0, l0):
     smax = np.maximum(smax, s0)
     lmin = np.minimum(lmin, l0)
     # interior extrema strictly inside the band, refined
-    trip = np.intersect1d(i0 + 1, i0)  # points with a left and a right neighbour in segment
+    trip = np.intersect1d(i0 + 1, i0, assume_unique=True)  # points with a left and a right neighbour in segment
     ok = inband[trip] & (w[np.minimum(trip + 1, w.size - 1)] <= wd[seg[trip]])
     trip = trip[ok]
     smx = trip[(absS[trip] >= absS[trip - 1]) & (absS[trip] > absS[trip + 1])]

@@ -73,3 +73,101 @@ def audit_date(option: str | None) -> str:
 
 
 Stage = Callable[[Audit], None]
+
+
+def base_results(inv: Inventory) -> pd.DataFrame:
+    """The identity columns of every row, the row's problems, and its own extra columns."""
+    recs = []
+    for r in inv.rows:
+        msgs = [str(p) for p in r.errors] + [f"warning: {p}" for p in r.warnings]
+        rec = {
+            "row": r.excel_row, "tag": r.tag or "", "service": r.service, "area": r.area,
+            "criticality": r.criticality, "message": "; ".join(msgs),
+            "band_rad_s": r.band_rad_s, "attenuation_db": r.attenuation_db,
+        }
+        for k, v in r.extras.items():
+            rec[k] = v
+        recs.append(rec)
+    df = pd.DataFrame.from_records(recs, columns=["row", "tag", "service", "area", "criticality", "message",
+                                                  "band_rad_s", "attenuation_db", *inv.extra_columns])
+    for c in ("band_rad_s", "attenuation_db"):
+        df[c] = pd.to_numeric(df[c], errors="coerce").astype(float)
+    return df
+
+
+def build_models(audit: "Audit") -> None:
+    """A LoopModel for every valid row (None for invalid rows); cascades composed."""
+    from .cascade import build_models as _build
+    audit.models = _build(audit)
+
+
+def evaluate_frequency(audit: "Audit") -> None:
+    """Frequency-domain figures, limits in force, status and findings of every row."""
+    from .frequency import FIGURE_COLUMNS, evaluate
+    from .verdict import judge, limits_in_force
+
+    res = audit.results
+    figs = evaluate(audit.models, res["band_rad_s"].to_numpy(float))
+    for c in FIGURE_COLUMNS:
+        if c == "engine_note":
+            continue
+        res[c] = figs[c].to_numpy()
+    policy = audit.inventory.policy
+    status, findings, lims = [], [], {"ms_max": [], "gm_min_db": [], "pm_min_deg": []}
+    req, ok = [], []
+    for i, row in enumerate(audit.inventory.rows):
+        lim = limits_in_force(row, policy)
+        for k in lims:
+            lims[k].append(lim[k])
+        att = res.at[i, "attenuation_db"]
+        att = None if pd.isna(att) else float(att)
+        has_band = att is not None and not pd.isna(res.at[i, "band_rad_s"])
+        req.append(-att if has_band else np.nan)
+        if audit.models[i] is None:
+            status.append("invalid")
+            findings.append("row not evaluated: see message")
+            ok.append(None)
+            continue
+        fig = figs.iloc[i]
+        ok.append(bool(fig["band_s_db"] <= -att) if has_band else None)
+        st, words = judge(fig, lim, att if has_band else None, policy.marginal_pct)
+        status.append(st)
+        findings.append("; ".join(words))
+    for k, v in lims.items():
+        res[k] = v
+    res["band_required_db"] = req
+    res["band_ok"] = pd.array(ok, dtype="boolean")
+    res["status"] = status
+    res["findings"] = findings
+
+
+STAGES: tuple[tuple[str, str, str], ...] = (
+    # (name, module, function) in order; every stage takes the Audit
+    ("models", "audit.pipeline", "build_models"),
+    ("records", "audit.disturbance", "analyse_records"),
+    ("evaluate", "audit.pipeline", "evaluate_frequency"),
+    ("cascade", "audit.cascade", "add_cascade_checks"),
+    ("steps", "audit.timedomain", "add_step_results"),
+    ("residuals", "audit.disturbance", "add_residuals"),
+    ("proposals", "audit.tuning", "add_proposals"),
+    ("priority", "audit.priority", "add_priority"),
+)
+
+
+def run_stages(audit: "Audit", progress: Callable[[str], None] | None = None) -> None:
+    """Run every stage in order, timing each."""
+    import importlib
+    import time
+
+    for name, mod, fn in STAGES:
+        if progress:
+            progress(name)
+        t0 = time.perf_counter()
+        getattr(importlib.import_module(mod), fn)(audit)
+        audit.timings[name] = time.perf_counter() - t0
+
+
+def new_audit(inv: Inventory, options: AuditOptions) -> Audit:
+    """An Audit with identity columns only, ready for the stages."""
+    return Audit(inventory=inv, options=options, models=[None] * len(inv.rows),
+                 results=base_results(inv), date=audit_date(options.date))

@@ -1,0 +1,183 @@
+"""The command line: ``plant-audit run|check|template|disturbance|generate|history``.
+
+``main(argv)`` takes a list and returns the exit code, so tests call it directly.
+Exit codes of ``run``: 0 every loop passes (marginal included), 1 any loop is
+unstable, fails or is invalid, 2 the inventory itself cannot be read (one line,
+no traceback).
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from pathlib import Path
+
+import click
+
+from . import __version__
+
+
+class UserError(Exception):
+    """Anything the user can fix: reported in one line, exit code 2."""
+
+
+class Progress:
+    """Stage progress on stderr: a bar on a terminal, plain lines otherwise, nothing when quiet."""
+
+    def __init__(self, stages: list[str], quiet: bool):
+        self.stages, self.quiet = stages, quiet
+        self.tty = sys.stderr.isatty()
+        self.i = 0
+        self.t0 = time.perf_counter()
+
+    def __call__(self, name: str) -> None:
+        if self.quiet:
+            return
+        self.i += 1
+        n = len(self.stages)
+        if self.tty:
+            done = int(30 * (self.i - 1) / n)
+            sys.stderr.write(f"\r[{'#' * done}{'.' * (30 - done)}] {self.i}/{n} {name:<12}")
+            sys.stderr.flush()
+        else:
+            sys.stderr.write(f"plant-audit: stage {self.i}/{n} {name} "
+                             f"({time.perf_counter() - self.t0:.1f} s)\n")
+
+    def close(self) -> None:
+        if not self.quiet and self.tty:
+            sys.stderr.write(f"\r[{'#' * 30}] done in {time.perf_counter() - self.t0:.1f} s{' ' * 10}\n")
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="plant-audit")
+def cli() -> None:
+    """Audit regulatory PID loops from a spreadsheet inventory."""
+
+
+@cli.command()
+@click.argument("inventory", type=click.Path(dir_okay=False))
+@click.option("--out", "out_dir", default="audit-out", show_default=True, help="Folder for the results.")
+@click.option("--site", default="", help="Site name shown in the report and used in the history.")
+@click.option("--title", default="Control loop audit", show_default=True, help="Report title.")
+@click.option("--date", "date", default=None, help="Audit date YYYY-MM-DD (default today; fixes output for reproducible runs).")
+@click.option("--paper", type=click.Choice(["a4", "letter"]), default="a4", show_default=True)
+@click.option("--detail", type=click.Choice(["failing", "all"]), default="failing", show_default=True,
+              help="Which loops get a detail section in the report.")
+@click.option("--propose", type=click.Choice(["failing", "all", "none"]), default="failing", show_default=True,
+              help="Which loops get retuning proposals.")
+@click.option("--no-pdf", is_flag=True, help="Skip report.pdf.")
+@click.option("--jobs", type=click.IntRange(1, 64), default=1, show_default=True,
+              help="Processes for the stages that parallelise.")
+@click.option("--history", "history", default=None, help="History database: a path (SQLite) or a URL.")
+@click.option("--no-history", is_flag=True, help="Do not record this audit in the history.")
+@click.option("--quiet", is_flag=True, help="No progress output.")
+def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, jobs, history, no_history, quiet):
+    """Evaluate every loop of INVENTORY and write results and report into --out."""
+    from .pipeline import AuditOptions
+    from .runner import run_audit
+
+    opts = AuditOptions(out_dir=out_dir, site=site, title=title, date=date, paper=paper, detail=detail,
+                        propose=propose, pdf=not no_pdf, jobs=jobs, quiet=quiet, history=history,
+                        record_history=not no_history)
+    audit, written = run_audit(inventory, opts)
+    if not quiet:
+        counts = audit.results["status"].value_counts()
+        summary = ", ".join(f"{counts.get(s, 0)} {s}" for s in ("passes", "marginal", "fails", "unstable", "invalid"))
+        click.echo(f"{len(audit.results)} loops: {summary}")
+        for name, path in written.items():
+            click.echo(f"  {name}: {path}")
+    bad = audit.results["status"].isin(["unstable", "fails", "invalid"]).any()
+    raise SystemExit(1 if bad else 0)
+
+
+@cli.command()
+@click.argument("inventory", type=click.Path(dir_okay=False))
+@click.option("--json", "as_json", is_flag=True, help="Print the problems as JSON.")
+def check(inventory, as_json):
+    """Validate INVENTORY without evaluating it."""
+    import json
+
+    from .inventory import check_json, check_report, format_check, read_inventory
+
+    rep = check_report(read_inventory(inventory))
+    if as_json:
+        click.echo(json.dumps(check_json(rep), indent=1, ensure_ascii=False))
+    else:
+        click.echo(format_check(rep))
+    raise SystemExit(rep.exit_code)
+
+
+@cli.command()
+@click.argument("path", type=click.Path(dir_okay=False))
+def template(path):
+    """Write a ready-to-fill inventory workbook to PATH (.xlsx)."""
+    from .template import write_template
+
+    write_template(path)
+    click.echo(f"template written: {path}")
+
+
+@cli.command()
+@click.argument("record", type=click.Path(dir_okay=False))
+@click.option("--allowed", type=float, required=True, help="Largest acceptable deviation [% of PV range].")
+@click.option("--plot", "plot", default=None, help="Where to write the spectrum plot (SVG).")
+def disturbance(record, allowed, plot):
+    """Derive the rejection requirement from a disturbance RECORD (CSV)."""
+    from .disturbance import disturbance_command
+
+    raise SystemExit(disturbance_command(record, allowed, plot))
+
+
+@cli.command()
+@click.option("--loops", type=click.IntRange(1, 1_000_000), required=True, help="Number of loops.")
+@click.option("--seed", type=int, default=1, show_default=True)
+@click.argument("path", type=click.Path(dir_okay=False))
+def generate(loops, seed, path):
+    """Write a seeded synthetic inventory of --loops loops to PATH (.xlsx or .csv)."""
+    from .generate import write_synthetic_inventory
+
+    write_synthetic_inventory(path, loops, seed)
+    click.echo(f"{loops} synthetic loops written: {path}")
+
+
+@cli.command()
+@click.option("--db", default=None, help="History database path or URL (default: audit-history.sqlite here).")
+@click.option("--tag", default=None, help="One loop's figures and tunings over time.")
+@click.option("--site", default=None, help="Only audits of this site.")
+@click.option("--csv", "as_csv", is_flag=True, help="Print CSV.")
+def history(db, tag, site, as_csv):
+    """List recorded audits, or one loop's history."""
+    from .history import history_command
+
+    raise SystemExit(history_command(db, tag, as_csv, site=site))
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line with ``argv`` (default sys.argv[1:]); return the exit code."""
+    from .inventory import InventoryError
+
+    try:
+        cli.main(args=list(sys.argv[1:] if argv is None else argv), prog_name="plant-audit", standalone_mode=False)
+        return 0
+    except SystemExit as exc:
+        return int(exc.code or 0)
+    except click.exceptions.Abort:
+        click.echo("plant-audit: aborted", err=True)
+        return 2
+    except click.ClickException as exc:
+        exc.show()
+        return 2
+    except (InventoryError, UserError, FileNotFoundError, PermissionError, IsADirectoryError) as exc:
+        click.echo(f"plant-audit: {exc}", err=True)
+        return 2
+    except Exception as exc:  # noqa: BLE001 - the user gets one line; details with PLANT_AUDIT_DEBUG=1
+        import os
+        if os.environ.get("PLANT_AUDIT_DEBUG"):
+            raise
+        click.echo(f"plant-audit: internal error: {type(exc).__name__}: {exc} "
+                   "(set PLANT_AUDIT_DEBUG=1 for details)", err=True)
+        return 3
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

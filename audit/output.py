@@ -1,0 +1,86 @@
+"""results.csv and results.json: the machine-readable results.
+
+CSV: one line per inventory row in inventory order; an infinite value is ``inf``,
+a missing one is empty; free text that could be read as a formula is prefixed
+with an apostrophe. JSON: strict (no NaN/Infinity tokens): infinite values are the
+string ``"inf"`` (``"-inf"``), missing values ``null``; it also records the tool
+version, the inventory's file name and SHA-256, and the policy in force.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .columns import RESULT_COLUMNS
+from .safety import neutralise_formula
+
+
+def output_columns(results: pd.DataFrame, extra_columns: tuple[str, ...] = ()) -> list[str]:
+    """Known results columns present in the table, in table order, then the row's own extra columns."""
+    known = [c.name for c in RESULT_COLUMNS if c.name in results.columns]
+    extras = [c for c in extra_columns if c in results.columns and c not in known]
+    return known + extras
+
+
+def plain(value: Any) -> Any:
+    """A JSON-safe Python value: inf -> "inf", NaN/None/NA -> None, numpy scalars -> Python."""
+    if value is None or value is pd.NA or value is pd.NaT:
+        return None
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        v = float(value)
+        if math.isnan(v):
+            return None
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        return v
+    if isinstance(value, (list, tuple)):
+        return [plain(v) for v in value]
+    if isinstance(value, dict):
+        return {str(k): plain(v) for k, v in value.items()}
+    return str(value) if not isinstance(value, str) else value
+
+
+def csv_cell(value: Any) -> str:
+    """Text of one CSV cell."""
+    v = plain(value)
+    if v is None:
+        return ""
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, float):
+        return repr(v)
+    if isinstance(v, int):
+        return str(v)
+    if v in ("inf", "-inf") and isinstance(value, (float, np.floating)):
+        return v
+    return neutralise_formula(str(v))
+
+
+def write_csv(path: Path, results: pd.DataFrame, columns: list[str]) -> None:
+    """Write results.csv."""
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        wr = csv.writer(fh)
+        wr.writerow(columns)
+        for rec in results[columns].itertuples(index=False, name=None):
+            wr.writerow([csv_cell(v) for v in rec])
+
+
+def write_json(path: Path, results: pd.DataFrame, columns: list[str], meta: dict[str, Any]) -> None:
+    """Write results.json (strict JSON)."""
+    rows = [{c: plain(v) for c, v in zip(columns, rec)}
+            for rec in results[columns].itertuples(index=False, name=None)]
+    doc = {**plain(meta), "columns": columns, "loops": rows}
+    with open(path, "w", encoding="utf-8") as fh:
+        json.dump(doc, fh, indent=1, allow_nan=False, ensure_ascii=False)
+        fh.write("\n")

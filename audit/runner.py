@@ -1,0 +1,51 @@
+"""One audit, end to end: read, evaluate, write, record."""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+from .output import output_columns, write_csv, write_json
+from .pipeline import STAGES, Audit, AuditOptions, new_audit, run_stages
+
+
+def run_audit(inventory_path: str, options: AuditOptions) -> tuple[Audit, dict[str, Path]]:
+    """Read the inventory, run every stage, write every output; return the Audit and the files written."""
+    from .cli import Progress
+    from .inventory import read_inventory
+
+    names = ["read"] + [s[0] for s in STAGES] + ["write", "history"]
+    progress = Progress(names, options.quiet)
+    progress("read")
+    t0 = time.perf_counter()
+    inv = read_inventory(inventory_path)
+    audit = new_audit(inv, options)
+    audit.timings["read"] = time.perf_counter() - t0
+    run_stages(audit, progress)
+    progress("write")
+    t0 = time.perf_counter()
+    written = write_outputs(audit)
+    audit.timings["write"] = time.perf_counter() - t0
+    progress("history")
+    if options.record_history:
+        from .history import add_history
+        t0 = time.perf_counter()
+        add_history(audit)
+        audit.timings["history"] = time.perf_counter() - t0
+    progress.close()
+    return audit, written
+
+
+def write_outputs(audit: Audit) -> dict[str, Path]:
+    """results.csv, results.json, then the report and workbook."""
+    out = Path(audit.options.out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    cols = output_columns(audit.results, audit.inventory.extra_columns)
+    written = {}
+    write_csv(out / "results.csv", audit.results, cols)
+    written["results.csv"] = out / "results.csv"
+    write_json(out / "results.json", audit.results, cols, audit.meta)
+    written["results.json"] = out / "results.json"
+    from .render import write_outputs as render_outputs
+    written.update(render_outputs(audit))
+    return written
