@@ -1257,7 +1257,7 @@ def format_check(report: CheckReport) -> str:
     blank = f"; {report.blank_rows} blank row{'s' if report.blank_rows != 1 else ''} skipped" \
         if report.blank_rows else ""
     verdict = "all rows valid" if report.exit_code == 0 else "fix the errors above"
-    lines.append(f"{report.name + ': ' if report.name else ''}{report.rows_read} rows read, {report.valid} valid, "
+    lines.append(f"{report.name + ': ' if report.name else ''}{report.rows_read} row{'s' if report.rows_read != 1 else ''} read, {report.valid} valid, "
                  f"{report.invalid} invalid; {report.errors} error{'s' if report.errors != 1 else ''}, "
                  f"{report.warnings} warning{'s' if report.warnings != 1 else ''}{blank} - {verdict}")
     return "\n".join(lines)
