@@ -356,7 +356,7 @@ def _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin):
     pos = np.arange(seg.size) - start[seg]
     nl = n_log[seg]
     step_log = np.log(w_mid / w_lo) / np.maximum(n_log - 1, 1)
-    w_log = w_lo[seg] * np.exp(pos * step_log[seg])
+    w_log = w_lo[seg] * np.exp(np.minimum(pos, nl - 1) * step_log[seg])
     with np.errstate(invalid="ignore", divide="ignore"):
         step_lin = (w_hi - w_mid) / np.maximum(n_lin, 1)
     w_lin = w_mid[seg] + (pos - nl + 1) * step_lin[seg]
