@@ -642,8 +642,9 @@ def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFram
                 grid = _grids(batch, chunk, st, tdel)
                 for sub in _blocks(grid[4] + grid[5]):
                     blk = chunk[sub]
-                    o = _evaluate_block(batch, blk, st, tdel, p_open[blk], band_e[blk],
-                                        tuple(g[sub] for g in grid))
+                    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                        o = _evaluate_block(batch, blk, st, tdel, p_open[blk], band_e[blk],
+                                            tuple(g[sub] for g in grid))
                     zraw[blk] = o.pop("_z_raw")
                     for c, v in o.items():
                         res[c][blk] = v
