@@ -875,28 +875,42 @@ class HistoryStore:
         if self.engine.dialect.name == "postgresql":
             conn.execute(sa.text("SELECT pg_advisory_xact_lock(:k)"), {"k": _PG_LOCK_KEY})
 
-    def _ensure_schema(self, create: bool) -> None:
-        """Check the schema version; create or migrate it when ``create``."""
+    def _current_version(self, conn: Connection) -> int:
+        """Schema version of the database (0 when empty); refuses foreign and newer databases."""
         from . import __version__
+        insp = sa.inspect(conn)
+        if insp.has_table("schema_version"):
+            current = int(conn.execute(sa.select(sa.func.max(schema_version.c.version))).scalar() or 0)
+        elif insp.has_table("audits") or insp.has_table("audit_rows"):
+            raise HistoryError(f"history: {self.target} has audit tables but no schema version; "
+                               "it was not written by plant-audit. Use another --history.")
+        else:
+            current = 0
+        if current > SCHEMA_VERSION:
+            raise HistoryError(
+                f"history: {self.target} was written by a newer plant-audit (schema version {current}; "
+                f"this version {__version__} reads up to {SCHEMA_VERSION}). Upgrade plant-audit, "
+                "or record into another history with --history.")
+        return current
+
+    def _ensure_schema(self, create: bool) -> None:
+        """Check the schema version; create or migrate it when ``create``.
+
+        The check is a plain read (it never waits for a writer); only a database that needs a
+        migration takes the write lock, and checks again under it.
+        """
+        from . import __version__
+        with self._read() as conn:
+            current = self._current_version(conn)
+        if current == SCHEMA_VERSION:
+            return
+        if not create:
+            raise HistoryError(f"history: {self.target} holds no plant-audit history")
         with self._write() as conn, conn.begin():
             self._lock_for_migration(conn)
-            insp = sa.inspect(conn)
-            if insp.has_table("schema_version"):
-                current = conn.execute(sa.select(sa.func.max(schema_version.c.version))).scalar() or 0
-            elif insp.has_table("audits") or insp.has_table("audit_rows"):
-                raise HistoryError(f"history: {self.target} has audit tables but no schema version; "
-                                   "it was not written by plant-audit. Use another --history.")
-            else:
-                current = 0
-            if current > SCHEMA_VERSION:
-                raise HistoryError(
-                    f"history: {self.target} was written by a newer plant-audit (schema version {current}; "
-                    f"this version {__version__} reads up to {SCHEMA_VERSION}). Upgrade plant-audit, "
-                    "or record into another history with --history.")
+            current = self._current_version(conn)
             if current == SCHEMA_VERSION:
-                return
-            if not create:
-                raise HistoryError(f"history: {self.target} holds no plant-audit history")
+                return  # another process migrated it meanwhile
             if current == 0:
                 metadata.create_all(conn, tables=[schema_version])
             now = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")

@@ -20,7 +20,7 @@ from audit.history import (
 )
 from audit.policy import Policy
 from audit.rows import LoopRow
-from test_history_support import Loop, make_audit
+from tests.unit.test_history_support import Loop, make_audit
 
 
 def row(**kw) -> LoopRow:

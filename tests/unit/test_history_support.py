@@ -156,3 +156,77 @@ class PgServer:
             conn.exec_driver_sql(f'CREATE DATABASE "{name}"')
         engine.dispose()
         return self.url(name)
+
+
+class GivenPg:
+    """A server named by PLANT_AUDIT_TEST_PG_URL (a URL of a database where we may CREATE DATABASE)."""
+
+    def __init__(self, url: str) -> None:
+        self.admin_url = url
+        self._n = 0
+
+    def stop(self) -> None:
+        pass
+
+    def new_database(self) -> str:
+        import sqlalchemy as sa
+        from sqlalchemy.engine import make_url
+        self._n += 1
+        name = f"history_{os.getpid()}_{self._n}_{int(time.time() * 1000) % 100000}"
+        url = make_url(self.admin_url)
+        if url.drivername in ("postgresql", "postgres"):
+            url = url.set(drivername="postgresql+psycopg")
+        engine = sa.create_engine(url, isolation_level="AUTOCOMMIT")
+        with engine.connect() as conn:
+            conn.exec_driver_sql(f'CREATE DATABASE "{name}"')
+        engine.dispose()
+        return url.set(database=name).render_as_string(hide_password=False)
+
+
+def postgres_for_tests():
+    """The PostgreSQL to test against: a given one, or one started here; None with the reason."""
+    given = os.environ.get("PLANT_AUDIT_TEST_PG_URL")
+    if given:
+        return GivenPg(given), ""
+    bindir = find_pg_bin()
+    if bindir is None:
+        return None, ("PostgreSQL server binaries not found (initdb and pg_ctl under /usr/lib/postgresql/*/bin); "
+                      "install Debian's 'postgresql' package or set PLANT_AUDIT_TEST_PG_URL")
+    if os.geteuid() == 0 and shutil.which("runuser") is None:
+        return None, "running as root but 'runuser' is missing (the server must run as user postgres)"
+    return PgServer(bindir).start(), ""
+
+
+CHILD = r'''
+import pathlib, sys, time
+sys.path.insert(0, sys.argv[6])
+import audit.history as h
+from tests.unit.test_history_support import make_audit, many_loops
+target, mode, marker, n, prefix = sys.argv[1:6]
+n = int(n)
+store = h.open_history(target)
+store.batch_size = 10
+audit = make_audit(many_loops(n, prefix), site="Busy site", date="2026-02-01")
+if mode == "hang":
+    orig = h._row_payload
+    def slow(position, *args):
+        if position == n // 2:
+            pathlib.Path(marker).write_text("half written")
+            time.sleep(300)
+        return orig(position, *args)
+    h._row_payload = slow
+else:
+    go = pathlib.Path(marker)
+    pathlib.Path(f"{marker}.{prefix}.ready").write_text("ready")
+    deadline = time.time() + 60
+    while not go.exists() and time.time() < deadline:
+        time.sleep(0.005)
+print(store.record(audit), flush=True)
+store.close()
+'''
+
+
+def child_command(target: str, mode: str, marker: str | Path, n: int, prefix: str) -> list[str]:
+    """argv of a separate process that records an audit of n loops (``hang``: stops half-way)."""
+    import sys
+    return [sys.executable, "-c", CHILD, target, mode, str(marker), str(n), prefix, str(UNIT_DIR.parents[1])]
