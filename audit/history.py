@@ -26,6 +26,7 @@ JSON columns are strict JSON: infinities are written as the strings ``"inf"`` /
 
 from __future__ import annotations
 
+import collections.abc as _abc
 import csv
 import datetime as _dt
 import hashlib
@@ -485,14 +486,21 @@ def strict_json_value(value: Any) -> Any:
     Any
         None, bool, int, float (finite), str, list or dict.
     """
-    if value is None:
-        return None
-    if isinstance(value, bool):
+    t = type(value)
+    if value is None or t is str or t is bool or t is int:
+        return value
+    if t is float:
+        if math.isnan(value):
+            return None
+        if math.isinf(value):
+            return "inf" if value > 0 else "-inf"
         return value
     if isinstance(value, (list, tuple)):
         return [strict_json_value(v) for v in value]
-    if isinstance(value, Mapping):
+    if isinstance(value, _abc.Mapping):
         return {str(k): strict_json_value(v) for k, v in value.items()}
+    if getattr(value, "ndim", 0) and hasattr(value, "tolist"):
+        return strict_json_value(value.tolist())  # an array
     if hasattr(value, "item") and not isinstance(value, (str, bytes)):
         try:
             value = value.item()  # numpy scalar -> Python
@@ -629,7 +637,13 @@ def canonical_tuning(row: Any) -> dict[str, Any]:
 
 
 def fingerprint(canonical: Mapping[str, Any]) -> str:
-    """SHA-256 (hex) of a canonical model or tuning, written as sorted strict JSON."""
+    """SHA-256 (hex) of a canonical model or tuning, written as sorted strict JSON.
+
+    Parameters
+    ----------
+    canonical : mapping
+        Output of :func:`canonical_model` or :func:`canonical_tuning`.
+    """
     return hashlib.sha256(_dumps(canonical).encode("utf-8")).hexdigest()
 
 
@@ -641,7 +655,13 @@ def _num(x: Any, unit: str = "") -> str:
 
 
 def describe_model(model: Mapping[str, Any]) -> str:
-    """A canonical process model in words, units in the text (e.g. ``dead time 8 s``)."""
+    """A canonical process model in words, units in the text (e.g. ``dead time 8 s``).
+
+    Parameters
+    ----------
+    model : mapping
+        Output of :func:`canonical_model` (times [s], gain [-] or [1/s] for ipdt).
+    """
     kind = model.get("model")
     if not kind:
         return "no model"
@@ -659,7 +679,13 @@ def describe_model(model: Mapping[str, Any]) -> str:
 
 
 def describe_tuning(tuning: Mapping[str, Any]) -> str:
-    """Canonical controller settings in words, units in the text."""
+    """Canonical controller settings in words, units in the text.
+
+    Parameters
+    ----------
+    tuning : mapping
+        Output of :func:`canonical_tuning` (kc, kp [-], ti, td, kd, sample, pv_filter [s], ki [1/s]).
+    """
     form = tuning.get("form", "ideal")
     if form == "parallel":
         parts = [f"Kp {_num(tuning.get('kp'))}", f"Ki {_num(tuning.get('ki'), '1/s')}",
@@ -781,8 +807,11 @@ def snapshot_of(audit: Any) -> AuditSnapshot:
     audit : audit.pipeline.Audit
         Needs ``meta``, ``inventory.rows`` and ``results``.
     """
+    return _snapshot_from_payloads(audit, list(_row_payloads(audit)))
+
+
+def _snapshot_from_payloads(audit: Any, payloads: list[dict[str, Any]]) -> AuditSnapshot:
     meta = audit.meta
-    payloads = list(_row_payloads(audit))
     wl = _work_list_size(audit.results.columns, payloads)
     return _assemble(None, meta["date"], meta["site"] or "", dict(meta["policy"]), payloads, wl)
 
@@ -944,6 +973,10 @@ class HistoryStore:
         HistoryError
             When the database refuses the write; nothing of the audit is then stored.
         """
+        return self._record(audit, _row_payloads(audit))
+
+    def _record(self, audit: Any, payloads: Iterable[dict[str, Any]]) -> int:
+        """:meth:`record` with the row payloads given (built lazily or once beforehand)."""
         meta = audit.meta
         columns = list(audit.results.columns)
         recorded_at = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="microseconds")
@@ -958,8 +991,8 @@ class HistoryStore:
                 )).inserted_primary_key[0]
                 work_list = 0
                 batch: list[dict[str, Any]] = []
-                for payload in _row_payloads(audit):
-                    payload["audit_id"] = audit_id
+                for payload in payloads:
+                    payload = {**payload, "audit_id": audit_id}
                     work_list += bool(payload["on_work_list"])
                     batch.append(payload)
                     if len(batch) >= self.batch_size:
@@ -1002,7 +1035,13 @@ class HistoryStore:
         ) for h in heads]
 
     def snapshot(self, audit_id: int) -> AuditSnapshot:
-        """The stored audit ``audit_id`` with all its rows."""
+        """The stored audit ``audit_id`` with all its rows.
+
+        Parameters
+        ----------
+        audit_id : int
+            Identifier returned by :meth:`record` or listed by :meth:`audits`.
+        """
         with self._read() as conn:
             head = conn.execute(sa.select(audits_table).where(audits_table.c.id == audit_id)).mappings().first()
             if head is None:
@@ -1016,6 +1055,13 @@ class HistoryStore:
         """The latest audit of ``site`` recorded before ``before_audit_id`` (None: the latest of all).
 
         "Previous" follows the order of recording, not the audit dates.
+
+        Parameters
+        ----------
+        site : str
+            Site name ('' is a site too).
+        before_audit_id : int or None
+            Only audits recorded before this one; None for the latest audit of the site.
         """
         q = sa.select(sa.func.max(audits_table.c.id)).where(audits_table.c.site == (site or ""))
         if before_audit_id is not None:
@@ -1025,7 +1071,15 @@ class HistoryStore:
         return None if audit_id is None else self.snapshot(int(audit_id))
 
     def loop_history(self, tag: str, site: str | None = None) -> list[LoopSnapshot]:
-        """One loop (by tag) in every audit that had it, oldest first (first row when a tag repeats)."""
+        """One loop (by tag) in every audit that had it, oldest first (first row when a tag repeats).
+
+        Parameters
+        ----------
+        tag : str
+            Loop tag, matched exactly.
+        site : str or None
+            Only audits of this site; None for every site.
+        """
         a, r = audits_table, rows_table
         q = (sa.select(r, a.c.audit_date, a.c.site).join(a, a.c.id == r.c.audit_id).where(r.c.tag == tag)
              .order_by(a.c.id, r.c.position))
@@ -1052,7 +1106,13 @@ def _ordered_counts(counts: Mapping[str, int]) -> dict[str, int]:
 
 
 def default_history_path(inventory_path: str) -> str:
-    """The default history file: ``audit-history.sqlite`` in the inventory's folder."""
+    """The default history file: ``audit-history.sqlite`` in the inventory's folder.
+
+    Parameters
+    ----------
+    inventory_path : str
+        The inventory file as given by the user.
+    """
     return str(Path(inventory_path).expanduser().resolve().parent / DEFAULT_FILE_NAME)
 
 
@@ -1181,7 +1241,14 @@ def compare(previous: AuditSnapshot | None, current: AuditSnapshot, policy: Any)
 
 
 def status_mix_over_time(store: HistoryStore, site: str) -> list[StatusMix]:
-    """Rows per status in every audit of a site, oldest first (for the status-over-time plot)."""
+    """Rows per status in every audit of a site, oldest first (for the status-over-time plot).
+
+    Parameters
+    ----------
+    store : HistoryStore
+    site : str
+        Site name ('' is a site too).
+    """
     return [StatusMix(s.audit_id, s.date, s.counts) for s in store.audits(site=site)]
 
 
@@ -1244,9 +1311,10 @@ def add_history(audit: Any) -> None:
     target = options.history or default_history_path(audit.inventory.path)
     site = options.site or ""
     with open_history(target) as store:
-        current = snapshot_of(audit)
+        payloads = list(_row_payloads(audit))
+        current = _snapshot_from_payloads(audit, payloads)
         changes = compare(store.previous(site), current, audit.inventory.policy)
-        audit_id = store.record(audit)
+        audit_id = store._record(audit, payloads)
         mix = status_mix_over_time(store, site)
         series = loop_series(store, site, tags=current.loops.keys())
         audit.extras["history"] = HistorySection(store.target, audit_id, changes, mix, series)
