@@ -183,9 +183,14 @@ _NEEDS_UNIT = {**{b: [f"{b}_{u}" for u in units.TIME_UNITS] for b in _TIME_BASES
 _PCT_COLUMNS = frozenset(c.name for c in INVENTORY_COLUMNS if c.unit == "%")
 
 
+_ALTERNATIVES: dict[str, list[str]] = {}
+for _col in INVENTORY_COLUMNS:
+    _ALTERNATIVES.setdefault(_col.quantity, []).append(_col.name)
+
+
 def alternatives(quantity: str) -> list[str]:
     """Every accepted header that fills ``quantity`` (e.g. ``ti`` -> ti_s, ti_min, ti_h, reset_rpm)."""
-    return [c.name for c in INVENTORY_COLUMNS if c.quantity == quantity]
+    return list(_ALTERNATIVES.get(quantity, []))
 
 
 class InventoryError(Exception):
@@ -308,14 +313,40 @@ def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | Non
 
 
 def _xlsx_rows(ws) -> Iterable[tuple[int, list[Any], list[str | None]]]:
-    ws.reset_dimensions()  # a wrong <dimension> must not truncate the sheet
-    for rownum, cells in enumerate(ws.iter_rows(), start=1):
-        values, formats = [], []
-        for c in cells:
-            v = c.value
-            values.append(v)
-            formats.append(c.number_format if isinstance(v, (int, float)) and not isinstance(v, bool) else None)
-        yield rownum, values, formats
+    """(sheet row, values, number formats of numeric cells) for every row present in the sheet XML.
+
+    Streams the sheet with openpyxl's own parser (no cell objects, no reliance on the sheet's
+    stored dimension, which some writers get wrong).
+    """
+    from openpyxl.styles.numbers import BUILTIN_FORMATS, BUILTIN_FORMATS_MAX_SIZE
+    from openpyxl.worksheet._reader import WorkSheetParser
+
+    wb = ws.parent
+    fmt_cache: dict[int, str] = {}
+
+    def number_format(style_id: int) -> str:
+        if style_id not in fmt_cache:
+            fid = wb._cell_styles[style_id].numFmtId
+            fmt_cache[style_id] = (BUILTIN_FORMATS.get(fid, "General") if fid < BUILTIN_FORMATS_MAX_SIZE
+                                   else wb._number_formats[fid - BUILTIN_FORMATS_MAX_SIZE])
+        return fmt_cache[style_id]
+
+    with wb._archive.open(ws._worksheet_path) as src:
+        parser = WorkSheetParser(src, ws._shared_strings, data_only=True, epoch=wb.epoch,
+                                 date_formats=wb._date_formats, timedelta_formats=wb._timedelta_formats)
+        for rownum, cells in parser.parse():
+            if not cells:
+                continue
+            width = max(c["column"] for c in cells)
+            values: list[Any] = [None] * width
+            formats: list[str | None] = [None] * width
+            for c in cells:
+                j = c["column"] - 1
+                v = c["value"]
+                values[j] = v
+                if c["style_id"] and isinstance(v, (int, float)) and not isinstance(v, bool):
+                    formats[j] = number_format(c["style_id"])
+            yield rownum, values, formats
 
 
 _MERGE = re.compile(rb'<(?:\w+:)?mergeCell\s+ref="([A-Z]+)(\d+)(?::([A-Z]+)(\d+))?"')
@@ -562,6 +593,11 @@ class _RowCheck:
                  colmap: dict[str, list[int]], order: dict[str, int]):
         self.sheet, self.r, self.vals, self.fmts, self.colmap = sheet, excel_row, vals, fmts, colmap
         self.order = order
+        self.byname: dict[str, list[tuple[int, Any]]] = {}
+        for name, cols in colmap.items():
+            g = [(c, vals[c]) for c in cols if c in vals]
+            if g:
+                self.byname[name] = g
         self.problems: list[tuple[int, int, Problem]] = []
         self._seq = 0
 
@@ -592,10 +628,10 @@ class _RowCheck:
     # -- raw access
     def given(self, name: str) -> list[tuple[int, Any]]:
         """Non-blank (column, value) pairs of ``name`` (several when the header appears twice)."""
-        return [(c, self.vals[c]) for c in self.colmap.get(name, ()) if c in self.vals]
+        return self.byname.get(name, [])
 
     def present(self, name: str) -> bool:
-        return bool(self.given(name))
+        return name in self.byname
 
     def raw(self, name: str) -> tuple[int, Any] | tuple[None, None]:
         g = self.given(name)
