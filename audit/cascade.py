@@ -226,9 +226,7 @@ def link_cascades(rows: Sequence[LoopRow], letter: str | None = None) -> Cascade
                 ok = False
                 if i not in errs:
                     ir = rows[j]
-                    why = ("it has errors of its own" if not ir.valid else
-                           "it has cascade errors" if j in errs else
-                           "its own inner loop cannot be composed")
+                    why = "it has errors of its own" if not ir.valid else "it has cascade errors"
                     errs[i] = [f"inner loop {_name(ir)} is invalid ({why}), so this loop cannot be composed with it "
                                f"(outer_model_input inner_pv); fix {ir.sheet}!{ir.excel_row} or use inner_sp if "
                                f"the model was identified from the inner set-point"]
