@@ -307,11 +307,19 @@ def _arg_by_seg(values: np.ndarray, seg: np.ndarray, n: int) -> np.ndarray:
     out = np.full(n, -1, int)
     if values.size == 0:
         return out
-    order = np.lexsort((-values, seg))
-    first = np.ones(order.size, bool)
-    first[1:] = seg[order][1:] != seg[order][:-1]
-    out[seg[order][first]] = order[first]
+    # ties and NaN as a stable sort on (seg, -values) would take them: the first of the
+    # largest values, NaN only when the segment holds nothing else (no sort: O(size))
+    top = np.full(n, np.nan)
+    np.fmax.at(top, seg, values)
+    hit = np.flatnonzero((values == top[seg]) | np.isnan(top[seg]))
+    segs, first = np.unique(seg[hit], return_index=True)
+    out[segs] = hit[first]
     return out
+
+
+def _interior(i0: np.ndarray) -> np.ndarray:
+    """Points with a left and a right neighbour in their segment, given the sorted bracket starts ``i0``."""
+    return i0[1:][(i0[1:] - i0[:-1]) == 1]
 
 
 # ----------------------------------------------------------------------------------------------
@@ -526,7 +534,7 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
 
 def _peak(batch, ent_pt, seg, w, vals, i0, n, v0, vinf, fun):
     """sup over w >= 0 of a magnitude, limits at 0 and infinity included."""
-    both = np.intersect1d(i0 + 1, i0, assume_unique=True)  # points with a left and a right neighbour in the segment
+    both = _interior(i0)  # points with a left and a right neighbour in the segment
     locmax = both[(vals[both] >= vals[both - 1]) & (vals[both] > vals[both + 1])]
     gmax = _seg_max(vals, seg, n)
     cand = locmax[vals[locmax] >= 0.8 * gmax[seg[locmax]]]
@@ -573,7 +581,7 @@ def _band(batch, ents, ent_pt, seg, w, absS, absL, i0, n, band, s0, l0):
     smax = np.maximum(smax, s0)
     lmin = np.minimum(lmin, l0)
     # interior extrema strictly inside the band, refined
-    trip = np.intersect1d(i0 + 1, i0, assume_unique=True)  # points with a left and a right neighbour in segment
+    trip = _interior(i0)  # points with a left and a right neighbour in segment
     ok = inband[trip] & (w[np.minimum(trip + 1, w.size - 1)] <= wd[seg[trip]])
     trip = trip[ok]
     smx = trip[(absS[trip] >= absS[trip - 1]) & (absS[trip] > absS[trip + 1])]
