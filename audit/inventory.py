@@ -43,7 +43,7 @@ from typing import Any, Callable, Iterable
 import numpy as np
 
 from . import units
-from .policy import POLICY_HELP, Policy
+from .policy import Policy
 from .rows import Inventory, LoopRow, Problem
 
 # --------------------------------------------------------------------------------------
@@ -191,6 +191,32 @@ for _col in INVENTORY_COLUMNS:
 def alternatives(quantity: str) -> list[str]:
     """Every accepted header that fills ``quantity`` (e.g. ``ti`` -> ti_s, ti_min, ti_h, reset_rpm)."""
     return list(_ALTERNATIVES.get(quantity, []))
+
+
+def inventory_columns_markdown() -> str:
+    """The table of accepted columns as Markdown (for README.md), from :data:`INVENTORY_COLUMNS`.
+
+    Returns
+    -------
+    str
+        One line per quantity: the template's header, the accepted alternatives, unit and meaning.
+    """
+    lines = ["| Column | Also accepted | Unit | Meaning | Example |", "|---|---|---|---|---|"]
+    seen: set[str] = set()
+    for c in INVENTORY_COLUMNS:
+        key = c.quantity if c.quantity not in ("pv_lo", "pv_hi", "num", "den") else c.name
+        if key in seen:
+            continue
+        seen.add(key)
+        group = [x for x in INVENTORY_COLUMNS if (x.quantity if x.quantity not in ("pv_lo", "pv_hi", "num", "den")
+                                                  else x.name) == key]
+        main = next((x for x in group if x.template), group[0])
+        alts = ", ".join(f"`{x.name}` [{x.unit}]" for x in group if x is not main)
+        unit = main.unit if main.kind in ("number", "time") else ""
+        choices = f" One of: {', '.join(main.choices)}." if main.choices else ""
+        meaning = (main.meaning + choices).replace("|", "\\|")
+        lines.append(f"| `{main.name}` | {alts} | {unit} | {meaning} | {main.example} |")
+    return "\n".join(lines)
 
 
 class InventoryError(Exception):
@@ -773,8 +799,7 @@ def _largest_time_constant(model: str | None, tau1, tau2, den) -> float:
 
 def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], fmts: dict[int, str],
                   colmap: dict[str, list[int]], extra_cols: dict[int, str], base_dir: Path,
-                  unitless: dict[int, str], merged: list[tuple[str, int, int, int, int]],
-                  uncomputed: set[tuple[int, int]]) -> LoopRow:
+                  unitless: dict[int, str], merged: list[tuple[str, int, int, int, int]]) -> LoopRow:
     order = {n: cols[0] for n, cols in colmap.items()}
     chk = _RowCheck(sheet, excel_row, vals, fmts, colmap, order)
     name_of = {c: n for n, cols in colmap.items() for c in cols}
@@ -1049,8 +1074,7 @@ def _rows_from_table(table: _Table, base_dir: Path) -> tuple[list[LoopRow], list
     colmap, extras, unitless, problems = _map_headers(table)
     tag_col = _col_letter(colmap["tag"][0]) if "tag" in colmap else ""
     rows = [
-        _validate_row(i, table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless, table.merged,
-                      table.uncomputed)
+        _validate_row(i, table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless, table.merged)
         for i, (r, vals, fmts) in enumerate(table.rows)
     ]
     return _mark_duplicates(rows, tag_col), problems, tuple(extras.values())

@@ -323,3 +323,11 @@ def test_column_table_is_complete():
         assert required in names
     assert all(c.meaning and c.unit for c in INVENTORY_COLUMNS)
     assert set(GOOD) <= set(names)
+
+
+def test_columns_markdown_lists_every_column():
+    from audit.inventory import inventory_columns_markdown
+    md = inventory_columns_markdown()
+    for c in INVENTORY_COLUMNS:
+        assert f"`{c.name}`" in md
+    assert all(line.count("|") - line.count("\\|") == 6 for line in md.splitlines())
