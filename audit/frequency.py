@@ -345,6 +345,10 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
     last = _seg_max(np.where(above, pos, -1), seg, ents.size, -1)
     w_hi = np.where(last >= 0, w_lo * 10.0 ** ((last + 1) / per_dec), w_lo * 100.0) * 2.0
     w_hi = np.maximum(w_hi, 100.0 * w_lo)
+    # one more turn of the delay spiral: its first crossing of the negative real axis is the
+    # largest-|L| crossing of the tail, which sets the gain margin when none lies further in
+    td = tdelay[ents]
+    w_hi = w_hi + np.where(td > 0, 2.2 * np.pi / np.where(td > 0, td, 1.0), 0.0)
     h_log = np.clip(st.zeta[ents] / 3.0, 0.002, LOG_STEP)
     with np.errstate(divide="ignore"):
         w_b = np.where(tdelay[ents] > 0, DELAY_STEP / (np.maximum(tdelay[ents], 1e-300) * h_log), np.inf)
@@ -592,6 +596,19 @@ def _band(batch, ents, ent_pt, seg, w, absS, absL, i0, n, band, s0, l0):
     if lmn.size:
         _, f = _golden_max(batch, ent_pt[lmn], w[lmn - 1], w[lmn + 1], lambda Lv, _w: -np.abs(Lv))
         lmin = np.minimum(lmin, _seg_min(-f, seg[lmn], n))
+    # the last grid interval before the band edge: [w_j-1, wd], j the last grid point <= wd
+    last = _seg_max(np.where(inband, np.arange(w.size), -1), seg, n, -1)
+    e = np.flatnonzero(has & (last > 0))
+    if e.size:
+        j = last[e]
+        j = np.where(seg[j - 1] == e, j - 1, j)
+        a, b = w[j], wd[e]
+        okb = b > a
+        e, a, b = e[okb], a[okb], b[okb]
+        _, f = _golden_max(batch, ents[e], a, b, lambda Lv, _w: 1.0 / np.abs(1.0 + Lv))
+        smax[e] = np.maximum(smax[e], f)
+        _, f = _golden_max(batch, ents[e], a, b, lambda Lv, _w: -np.abs(Lv))
+        lmin[e] = np.minimum(lmin[e], -f)
     with np.errstate(divide="ignore"):
         s_db[has] = 20.0 * np.log10(smax[has])
         l_db[has] = 20.0 * np.log10(lmin[has])
