@@ -154,6 +154,7 @@ def history(db, tag, site, as_csv):
 
 def main(argv: list[str] | None = None) -> int:
     """Run the command line with ``argv`` (default sys.argv[1:]); return the exit code."""
+    from .history import HistoryError
     from .inventory import InventoryError
 
     try:
@@ -167,7 +168,7 @@ def main(argv: list[str] | None = None) -> int:
     except click.ClickException as exc:
         exc.show()
         return 2
-    except (InventoryError, UserError, FileNotFoundError, PermissionError, IsADirectoryError) as exc:
+    except (InventoryError, HistoryError, UserError, FileNotFoundError, PermissionError, IsADirectoryError) as exc:
         click.echo(f"plant-audit: {exc}", err=True)
         return 2
     except Exception as exc:  # noqa: BLE001 - the user gets one line; details with PLANT_AUDIT_DEBUG=1

@@ -49,8 +49,8 @@ class LoopRow:
     Attributes hold ``None`` where the row left the value blank. ``conventions``
     records how the engineer expressed each setting (e.g. ``{"kc": "pb_pct",
     "ti": "reset_rpm", "td": "td_min"}``) so proposals can be written back in the
-    row's own terms. ``raw`` holds the cell values as read, keyed by the header
-    text in the workbook; ``extras`` the unknown columns, carried to the results.
+    row's own terms. ``raw`` holds the cell values as read, keyed by canonical
+    column name; ``extras`` the unknown columns, carried to the results.
     """
 
     index: int                      # position among non-blank rows, 0-based

@@ -14,7 +14,7 @@ def run_audit(inventory_path: str, options: AuditOptions) -> tuple[Audit, dict[s
     from .cli import Progress
     from .inventory import read_inventory
 
-    names = ["read"] + [s[0] for s in STAGES] + ["write", "history"]
+    names = ["read"] + [s[0] for s in STAGES] + ["history", "write"]
     progress = Progress(names, options.quiet)
     progress("read")
     t0 = time.perf_counter()
@@ -22,16 +22,17 @@ def run_audit(inventory_path: str, options: AuditOptions) -> tuple[Audit, dict[s
     audit = new_audit(inv, options)
     audit.timings["read"] = time.perf_counter() - t0
     run_stages(audit, progress)
-    progress("write")
-    t0 = time.perf_counter()
-    written = write_outputs(audit)
-    audit.timings["write"] = time.perf_counter() - t0
     progress("history")
     if options.record_history:
+        # recorded before the report is written, so the report can show what changed
         from .history import add_history
         t0 = time.perf_counter()
         add_history(audit)
         audit.timings["history"] = time.perf_counter() - t0
+    progress("write")
+    t0 = time.perf_counter()
+    written = write_outputs(audit)
+    audit.timings["write"] = time.perf_counter() - t0
     progress.close()
     return audit, written
 
