@@ -17,6 +17,15 @@ figures (gain, integral gain and integral time rounded towards the more robust s
 The search for tau_c and for the ki frontier screens candidates on a frequency grid
 (:func:`_screen`); only the exact engine decides what is reported.
 
+Choice. A candidate *meets the limits* when the exact engine finds it stable with Ms, both gain
+margins and the phase margin within the row's limits (tolerances :data:`MS_TOL`,
+:data:`GM_TOL_DB`, :data:`PM_TOL_DEG` cover the rounding). Among those that also meet the
+rejection requirement the one with the most margin to spare is recommended: the largest of
+min(relative slack to each limit and to the requirement, ki / largest ki among them), the last
+term so that spare robustness is not bought with a sluggish loop. When none meets the
+requirement the verdict is 'not achievable by tuning' and the candidate within the limits with
+the deepest band attenuation is shown as the best effort.
+
 Effective dead time. SIMC and AMIGO use the loop's effective dead time
 theta_e = theta + Ts/2 + tau_f (the PV filter lag counted as dead time by the half rule [1]_),
 plus tau2/2 (sopdt PI, half rule), the lag of an ipdt model for PI (half of it), and |lead| for
@@ -28,10 +37,10 @@ SIMC candidate: only the requirement sets its speed).
 References
 ----------
 .. [1] S. Skogestad, "Simple analytic rules for model reduction and PID controller tuning",
-   J. Process Control 13 (2003) 291-309, eqs. (8)-(9) (half rule), (27)-(29) (SIMC settings),
-   Table 3 (robustness of tau_c = theta).
+   J. Process Control 13 (2003) 291-309, sec. 3 (half rule), eqs. (27)-(29) (SIMC settings) and
+   its table of robustness margins for tau_c = theta.
 .. [2] K. J. Astrom and T. Hagglund, "Revisiting the Ziegler-Nichols step response method for
-   PID control", J. Process Control 14 (2004) 635-650 (AMIGO PI, eq. 11; AMIGO PID, eq. 12).
+   PID control", J. Process Control 14 (2004) 635-650 (the AMIGO PI and PID rules).
 .. [3] K. J. Astrom, H. Panagopoulos and T. Hagglund, "Design of PI controllers based on
    non-convex optimization", Automatica 34(5) (1998) 585-601 (maximise ki subject to a
    sensitivity constraint).
@@ -303,7 +312,7 @@ def _effective(process: Process, extra_delay: float, for_pid: bool) -> tuple[flo
     t1, t2 = max(process.tau1, process.tau2), min(process.tau1, process.tau2)
     if for_pid:
         return k, t1, t2, theta
-    return k, t1 + t2 / 2.0, 0.0, theta + t2 / 2.0        # half rule (Skogestad 2003, eq. 9)
+    return k, t1 + t2 / 2.0, 0.0, theta + t2 / 2.0        # half rule (Skogestad 2003, sec. 3)
 
 
 def simc_tau_c_min(process: Process, extra_delay: float = 0.0) -> float | None:
@@ -351,7 +360,7 @@ def simc_pi(process: Process, tau_c: float, extra_delay: float = 0.0, alpha: flo
 
     References
     ----------
-    Skogestad 2003, eqs. (27)-(29) and the half rule, eq. (9).
+    Skogestad 2003, eqs. (27)-(28) and the half rule (sec. 3).
     """
     if not tau_c > 0:
         raise ValueError("SIMC needs tau_c > 0")
@@ -422,7 +431,7 @@ def amigo_pi(process: Process, extra_delay: float = 0.0, alpha: float = 0.1) -> 
 
     References
     ----------
-    Astrom & Hagglund 2004, eq. (11) (AMIGO PI).
+    Astrom & Hagglund 2004 (AMIGO PI rule).
     """
     K, T, L = _fopdt_params(process, extra_delay)
     kc = 0.15 / K + (0.35 - L * T / (L + T) ** 2) * T / (K * L)
@@ -446,7 +455,7 @@ def amigo_pid(process: Process, extra_delay: float = 0.0, alpha: float = 0.1) ->
 
     References
     ----------
-    Astrom & Hagglund 2004, eq. (12) (AMIGO PID).
+    Astrom & Hagglund 2004 (AMIGO PID rule).
     """
     K, T, L = _fopdt_params(process, extra_delay)
     kc = (0.2 + 0.45 * T / L) / K
@@ -1228,7 +1237,8 @@ def _finish(job: _Job, step_iae: float = math.nan) -> Proposal:
     best_band = min((c.figures.band_s_db for c in robust if _finite(c.figures.band_s_db)), default=math.nan)
     lf = ""
     if full:
-        pick = max(full, key=lambda c: (c.spare, c.settings.ki, c.settings.method))
+        ki_best = max(c.settings.ki for c in full) or 1.0
+        pick = max(full, key=lambda c: (min(c.spare, c.settings.ki / ki_best), c.settings.ki, c.settings.method))
         verdict = "retune"
     elif robust:
         pick = min(robust, key=lambda c: (c.figures.band_s_db, -c.spare, c.settings.method))

@@ -1,0 +1,237 @@
+"""Priority score and the ranked work list.
+
+Every loop that needs action gets a score; the work list orders them, highest first.
+
+    priority_score = severity points + 30 x criticality weight + 60 x feasibility x benefit
+
+* severity points (the class dominates): unstable 800; invalid row ('fix the inventory') 600;
+  fails a robustness limit (Ms, gain or phase margin) 400; misses only the rejection requirement
+  300; marginal 100; passes 0.
+* criticality weight: ``policy.weight_high`` / ``weight_medium`` / ``weight_low`` (3 / 2 / 1 by default).
+* feasibility: 1 for ``retune`` and ``check model`` (the fix is known), 0.5 for
+  ``not achievable by tuning`` (tuning helps only in part), 0 for rows not evaluated.
+* benefit in [0, 1]: 1 when an unstable loop is made stable; otherwise the largest of the
+  predicted band improvement / 20 dB, the Ms reduction (Ms - Ms')/(Ms - 1) and the relative
+  load-step IAE reduction, each clipped to [0, 1].
+
+With the default weights every unstable loop (>= 830) ranks above every invalid row (<= 690),
+and every invalid row (>= 630) above every failing loop (<= 550). Within the lower classes the
+spread (at most 30 x 3 + 60 = 150 points) lets a high-criticality loop with a large feasible
+benefit pass a low-criticality loop of the next class up, which is intended.
+Ties are broken by tag, then by row number, so the list is deterministic.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any, Mapping
+
+import pandas as pd
+
+from .policy import Policy
+
+SEVERITY_POINTS: dict[str, float] = {
+    "unstable": 800.0,
+    "invalid": 600.0,
+    "fails robustness": 400.0,
+    "misses requirement": 300.0,
+    "marginal": 100.0,
+    "passes": 0.0,
+}
+#: Points per unit of criticality weight. [-]
+CRITICALITY_POINTS = 30.0
+#: Points of a full expected benefit at full feasibility. [-]
+BENEFIT_POINTS = 60.0
+#: Band improvement that counts as the full benefit. [dB]
+BENEFIT_BAND_DB = 20.0
+FEASIBILITY: dict[str, float] = {
+    "retune": 1.0,
+    "check model": 1.0,
+    "not achievable by tuning": 0.5,
+    "no change needed": 0.0,
+    "not evaluated": 0.0,
+    "": 1.0,            # proposals not requested: the benefit is unknown, counted as zero below
+}
+ACTIONS = ("retune", "check the model or the valve", "structural change", "fix the inventory row")
+PRIORITY_COLUMNS = ("priority_score", "rank", "action", "reason", "expected_improvement")
+
+
+@dataclass(frozen=True)
+class Priority:
+    """The priority of one row.
+
+    Attributes
+    ----------
+    severity : str
+        Key of :data:`SEVERITY_POINTS`.
+    score : float
+        Priority score. [-]
+    action : str or None
+        One of :data:`ACTIONS`; None when nothing needs doing.
+    reason : str
+        Why, in a few words.
+    expected_improvement : str
+        Predicted change if the action is taken.
+    benefit : float
+        Expected benefit in [0, 1]. [-]
+    """
+
+    severity: str
+    score: float
+    action: str | None
+    reason: str
+    expected_improvement: str
+    benefit: float
+
+
+def _num(rec: Mapping[str, Any], key: str) -> float:
+    v = rec.get(key) if hasattr(rec, "get") else None
+    try:
+        return math.nan if v is None or pd.isna(v) else float(v)
+    except (TypeError, ValueError):
+        return math.nan
+
+
+def _txt(rec: Mapping[str, Any], key: str) -> str:
+    v = rec.get(key) if hasattr(rec, "get") else None
+    return "" if v is None or (not isinstance(v, str) and pd.isna(v)) else str(v)
+
+
+def severity(rec: Mapping[str, Any]) -> str:
+    """Severity class of one results row (status, limits in force and figures)."""
+    status = _txt(rec, "status")
+    if status in ("unstable", "invalid", "marginal", "passes"):
+        return status
+    ms, gm, pm, down = (_num(rec, k) for k in ("ms", "gm_db", "pm_deg", "gm_low"))
+    robust_broken = (ms > _num(rec, "ms_max")) or (gm < _num(rec, "gm_min_db")) or (pm < _num(rec, "pm_min_deg"))
+    if math.isfinite(down) and 0 < down:
+        robust_broken |= -20 * math.log10(down) < _num(rec, "gm_min_db")
+    if robust_broken or status != "fails":
+        return "fails robustness"
+    return "misses requirement"
+
+
+def benefit(rec: Mapping[str, Any]) -> float:
+    """Expected benefit in [0, 1] of the proposal of one results row (see the module notes)."""
+    after_ms = _num(rec, "proposal_ms")
+    if not math.isfinite(after_ms):
+        return 0.0
+    if _txt(rec, "status") == "unstable":
+        return 1.0
+    parts = []
+    b0, b1 = _num(rec, "band_s_db"), _num(rec, "proposal_band_s_db")
+    if math.isfinite(b0) and math.isfinite(b1):
+        parts.append((b0 - b1) / BENEFIT_BAND_DB)
+    m0 = _num(rec, "ms")
+    if math.isfinite(m0) and m0 > 1:
+        parts.append((m0 - after_ms) / (m0 - 1.0))
+    i0, i1 = _num(rec, "load_iae_s"), _num(rec, "proposal_iae_s")
+    if math.isfinite(i0) and math.isfinite(i1) and i0 > 0:
+        parts.append((i0 - i1) / i0)
+    return max([0.0] + [min(1.0, max(0.0, p)) for p in parts])
+
+
+def _fmt(x: float) -> str:
+    return "n/a" if not math.isfinite(x) else f"{x:.3g}"
+
+
+def _improvement(rec: Mapping[str, Any]) -> str:
+    if not math.isfinite(_num(rec, "proposal_ms")):
+        return ""
+    parts = []
+    if _txt(rec, "status") == "unstable":
+        parts.append("stabilises the loop")
+    b0, b1 = _num(rec, "band_s_db"), _num(rec, "proposal_band_s_db")
+    if math.isfinite(b1):
+        parts.append(f"band |S| {_fmt(b0)} -> {_fmt(b1)} dB")
+    m0, m1 = _num(rec, "ms"), _num(rec, "proposal_ms")
+    parts.append(f"Ms {_fmt(m0)} -> {_fmt(m1)}")
+    i0, i1 = _num(rec, "load_iae_s"), _num(rec, "proposal_iae_s")
+    if math.isfinite(i0) and math.isfinite(i1) and i0 > 0:
+        parts.append(f"load IAE {100 * (i1 - i0) / i0:+.0f} %")
+    return "; ".join(parts)
+
+
+def _reason(rec: Mapping[str, Any], sev: str) -> str:
+    if sev == "invalid":
+        return "inventory row not valid"
+    if sev == "unstable":
+        return "closed loop unstable"
+    first = _txt(rec, "findings").split("; ")[0]
+    if sev == "misses requirement":
+        return f"misses rejection requirement ({first})" if first else "misses rejection requirement"
+    return first or sev
+
+
+def _action(sev: str, verdict: str) -> str | None:
+    if sev == "invalid":
+        return "fix the inventory row"
+    if sev == "passes":
+        return None
+    if verdict == "check model":
+        return "check the model or the valve"
+    if verdict == "not achievable by tuning":
+        return "structural change"
+    if verdict == "no change needed":
+        return None
+    return "retune"
+
+
+def priority_of(rec: Mapping[str, Any], policy: Policy) -> Priority:
+    """Score, action and words of one results row.
+
+    Parameters
+    ----------
+    rec : mapping
+        One row of the results table with the frequency, proposal (and optionally step) columns.
+    policy : Policy
+        Criticality weights.
+    """
+    sev = severity(rec)
+    crit = _txt(rec, "criticality") or "medium"
+    weight = {"high": policy.weight_high, "medium": policy.weight_medium, "low": policy.weight_low}.get(
+        crit, policy.weight_medium)
+    verdict = _txt(rec, "verdict")
+    b = benefit(rec)
+    feas = FEASIBILITY.get(verdict, 1.0)
+    action = _action(sev, verdict)
+    score = SEVERITY_POINTS[sev] + CRITICALITY_POINTS * weight + BENEFIT_POINTS * feas * b
+    if action is None:
+        score = SEVERITY_POINTS[sev] + CRITICALITY_POINTS * weight if sev != "passes" else 0.0
+    return Priority(sev, float(score), action, _reason(rec, sev) if action else "",
+                    _improvement(rec) if action else "", b)
+
+
+def work_list(results: pd.DataFrame, policy: Policy) -> pd.DataFrame:
+    """Score and rank every row; the work list is the rows with a rank.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Indexed like ``results``, columns :data:`PRIORITY_COLUMNS`; ``rank`` is 1 for the most
+        urgent row and missing for rows that need no action. Ties are broken by tag, then row.
+    """
+    pr = [priority_of(results.iloc[i], policy) for i in range(len(results))]
+    out = pd.DataFrame({
+        "priority_score": [p.score for p in pr],
+        "action": [p.action or "" for p in pr],
+        "reason": [p.reason for p in pr],
+        "expected_improvement": [p.expected_improvement for p in pr],
+    }, index=results.index)
+    tags = results["tag"].astype(str).tolist() if "tag" in results.columns else [""] * len(results)
+    rows = results["row"].tolist() if "row" in results.columns else list(range(len(results)))
+    todo = [i for i, p in enumerate(pr) if p.action]
+    todo.sort(key=lambda i: (-round(pr[i].score, 9), tags[i], rows[i]))
+    rank = [pd.NA] * len(results)
+    for r, i in enumerate(todo, start=1):
+        rank[i] = r
+    out["rank"] = pd.array(rank, dtype="Int64")
+    return out[list(PRIORITY_COLUMNS)]
+
+
+def add_priority(audit) -> None:
+    """Pipeline stage: add :data:`PRIORITY_COLUMNS` to ``audit.results``."""
+    wl = work_list(audit.results, audit.inventory.policy)
+    for c in PRIORITY_COLUMNS:
+        audit.results[c] = wl[c]
