@@ -42,6 +42,9 @@ invalid (model None, status ``invalid``):
    the outer model really was identified from the inner PV; ``outer_model_input``
    is the engineer's declaration of that, and the unit of an ``inner_pv`` outer
    gain is % of outer PV range per % of inner PV range.
+5. *Too deep*: a chain of more than :data:`MAX_LEVELS` loops (counting the outer
+   loop) is refused at every row with more than that many levels below and
+   including it; real cascades have two or three.
 
 Pair checks (stage ``cascade``, outer rows that were evaluated):
 
@@ -86,6 +89,8 @@ from .rows import LoopRow, Problem
 
 #: Results columns added by :func:`add_cascade_checks` (documented in :mod:`audit.columns`).
 CASCADE_COLUMNS = ("inner_loop", "cascade_basis", "cascade_ratio", "cascade_ok")
+#: Most loops in one chain of cascades (outer loop included). [-]
+MAX_LEVELS = 8
 
 
 def _key(tag: str | None) -> str:
@@ -141,8 +146,29 @@ def _name(row: LoopRow) -> str:
     return f"{row.tag} (row {row.excel_row})" if row.tag else f"row {row.excel_row}"
 
 
+def _chain_levels(n: int, inner_of: Mapping[int, int], stop: set[int] = frozenset()) -> dict[int, int]:
+    """Loops in the chain below and including each row (1: no inner loop), without recursion.
+
+    A walk ends at a row in ``stop`` (counted, not followed) or where it meets itself (a cycle).
+    """
+    levels: dict[int, int] = {}
+    for s0 in range(n):
+        walk: list[int] = []
+        on_walk: set[int] = set()
+        i = s0
+        while i is not None and i not in levels and i not in on_walk:
+            walk.append(i)
+            on_walk.add(i)
+            i = inner_of.get(i) if i not in stop else None
+        base = levels[i] if i is not None and i in levels else 0
+        for j in reversed(walk):
+            base += 1
+            levels[j] = base
+    return levels
+
+
 def link_cascades(rows: Sequence[LoopRow], letter: str | None = None) -> CascadeLinks:
-    """Resolve every ``inner_loop`` and apply rules 1-4 of the module docstring.
+    """Resolve every ``inner_loop`` and apply rules 1-5 of the module docstring.
 
     Parameters
     ----------
@@ -209,6 +235,12 @@ def link_cascades(rows: Sequence[LoopRow], letter: str | None = None) -> Cascade
             errs.setdefault(o, []).append(
                 f"inner loop {rows[j].tag!r} is also claimed by {others}; an inner loop's set-point has one source")
 
+    # rule 5: at most MAX_LEVELS loops in one chain (cycles already marked)
+    levels = _chain_levels(n, inner_of, set(errs))
+    for i, lv in levels.items():
+        if lv > MAX_LEVELS and i not in errs:
+            errs[i] = [f"cascade of {lv} levels below and including this loop; at most {MAX_LEVELS} are evaluated"]
+
     # rule 4: an inner_pv composition needs an evaluable inner loop, down the chain
     memo: dict[int, bool] = {}
 
@@ -256,7 +288,7 @@ def validate_cascades(rows: Sequence[LoopRow], letter: str | None = None) -> dic
     Returns
     -------
     dict[int, list[Problem]]
-        Row index -> errors (rules 1-4 of the module docstring); rows without errors absent.
+        Row index -> errors (rules 1-5 of the module docstring); rows without errors absent.
     """
     if letter is None:
         letter = inner_loop_column_letter(None, rows)
@@ -330,20 +362,49 @@ def tuning_order(rows: Sequence[LoopRow]) -> list[int]:
     links = link_cascades(rows)
     order: list[int] = []
     placed: set[int] = set()
-
-    def place(i: int, stack: frozenset[int]) -> None:
-        if i in placed or i in stack:
-            return
-        j = links.inner_of.get(i)
-        if j is not None:
-            place(j, stack | {i})
-        if i not in placed:
-            placed.add(i)
-            order.append(i)
-
-    for i in range(len(rows)):
-        place(i, frozenset())
+    for s0 in range(len(rows)):
+        walk: list[int] = []
+        on_walk: set[int] = set()
+        i = s0
+        while i is not None and i not in placed and i not in on_walk:
+            walk.append(i)
+            on_walk.add(i)
+            i = links.inner_of.get(i)
+        for j in reversed(walk):
+            placed.add(j)
+            order.append(j)
     return order
+
+
+def tuning_levels(rows: Sequence[LoopRow]) -> list[list[int]]:
+    """Row indices in batches for proposals: level 0 has no inner loop to wait for, level k
+    rows have their inner loop in level k - 1.
+
+    Propose a whole level at once, then compose each outer row of the next level with
+    its inner loop's proposed tuning (:func:`compose`) before proposing it. Rows on a
+    cycle or with an unresolved inner loop are in level 0. Every index appears once;
+    within a level, inventory order.
+
+    Parameters
+    ----------
+    rows : sequence of LoopRow
+        All rows of the inventory, in order.
+
+    Returns
+    -------
+    list[list[int]]
+        The levels, innermost first.
+    """
+    links = link_cascades(rows)
+    level = {i: v - 1 for i, v in _chain_levels(len(rows), links.inner_of).items()}
+    # a cycle gives its members arbitrary levels; put them all at 0
+    for i, ps in links.problems.items():
+        if any("cascade cycle" in p.message for p in ps):
+            level[i] = 0
+    out: list[list[int]] = [[] for _ in range(max(level.values(), default=-1) + 1)]
+    for i in range(len(rows)):
+        out[level[i]].append(i)
+    return [lv for lv in out if lv]
 
 
 def _num(x) -> float:

@@ -14,8 +14,8 @@ import pandas as pd
 import pytest
 
 from audit import pipeline
-from audit.cascade import (CascadeLinks, add_cascade_checks, check_pair, compose, link_cascades, tuning_order,
-                           validate_cascades)
+from audit.cascade import (MAX_LEVELS, CascadeLinks, add_cascade_checks, check_pair, compose, link_cascades, tuning_levels,
+                           tuning_order, validate_cascades)
 from audit.frequency import evaluate
 from audit.loop import model_from_row
 from audit.policy import Policy
@@ -142,6 +142,25 @@ def test_an_error_deep_in_a_chain_invalidates_every_inner_pv_level_above_it():
     assert "'NOPE' is not the tag" in errs[1][0].message
     assert "inner loop Y (row 3) is invalid (it has cascade errors)" in errs[0][0].message
     assert 2 not in errs            # inner_sp: its model already contains X
+
+
+def test_chain_deeper_than_the_limit_is_refused_at_its_upper_rows():
+    n = MAX_LEVELS + 3
+    rows = [row(i, f"L{i}", f"L{i + 1}" if i + 1 < n else None) for i in range(n)]
+    errs = validate_cascades(rows)
+    assert sorted(errs) == [0, 1, 2]
+    assert f"cascade of {n} levels" in errs[0][0].message and f"at most {MAX_LEVELS}" in errs[0][0].message
+    audit = run(rows)
+    assert [m is None for m in audit.models] == [True] * 3 + [False] * MAX_LEVELS
+    assert audit.models[3].inner.inner is audit.models[5]
+
+
+def test_very_long_chains_need_no_recursion():
+    n = 3000
+    rows = [row(i, f"L{i}", f"L{i + 1}" if i + 1 < n else None, mode="inner_sp") for i in range(n)]
+    assert len(validate_cascades(rows)) == n - MAX_LEVELS
+    assert tuning_order(rows) == list(range(n - 1, -1, -1))
+    assert len(tuning_levels(rows)) == n
 
 
 def test_ambiguous_inner_tag():
@@ -313,6 +332,7 @@ def test_tuning_order_puts_inner_loops_first_and_keeps_every_row():
     assert sorted(order) == list(range(7))
     assert order.index(3) < order.index(2) < order.index(0)
     assert order == [3, 2, 0, 1, 5, 4, 6]
+    assert tuning_levels(rows) == [[1, 3, 4, 5, 6], [2], [0]]
 
 
 def test_compose_with_a_proposed_inner_loop():
