@@ -1,0 +1,57 @@
+"""results.csv / results.json writers (regression and format checks; strict JSON per RFC 8259)."""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+
+import numpy as np
+import pandas as pd
+
+from audit.output import csv_cell, output_columns, plain, write_csv, write_json
+
+
+def _frame() -> pd.DataFrame:
+    return pd.DataFrame({
+        "row": [2, 3], "tag": ["=HYPERLINK(\"http://x\")", "FIC-1"], "service": ["+cmd", "feed"],
+        "gm": [math.inf, 3.14], "gm_low": [np.nan, 0.5], "stable": [True, None],
+        "band_ok": pd.array([None, True], dtype="boolean"), "rhp_closed": pd.array([0, None], dtype="Int64"),
+        "owner": ["-ops", "me"],
+    })
+
+
+def test_plain_values():
+    """RFC 8259 has no NaN or Infinity: inf becomes "inf", missing becomes null."""
+    assert plain(math.inf) == "inf" and plain(-math.inf) == "-inf"
+    assert plain(float("nan")) is None and plain(pd.NA) is None and plain(None) is None
+    assert plain(np.int64(3)) == 3 and plain(np.bool_(True)) is True
+
+
+def test_csv_inf_missing_and_formula_neutralised(tmp_path):
+    """inf is written `inf`, missing is empty, and text that a spreadsheet would run as a formula
+    (starting with = + - @) gets a leading apostrophe (OWASP, CSV Injection; common practice)."""
+    df = _frame()
+    cols = output_columns(df, ("owner",))
+    assert cols[-1] == "owner"
+    write_csv(tmp_path / "r.csv", df, cols)
+    rows = list(csv.DictReader(open(tmp_path / "r.csv", encoding="utf-8")))
+    assert rows[0]["gm"] == "inf" and rows[0]["gm_low"] == ""
+    assert rows[0]["tag"].startswith("'=") and rows[0]["service"] == "'+cmd" and rows[0]["owner"] == "'-ops"
+    assert rows[1]["gm"] == "3.14" and rows[1]["stable"] == "" and rows[0]["stable"] == "true"
+    assert csv_cell(-3.5) == "-3.5"  # numbers are not text: never prefixed
+
+
+def test_json_is_strict(tmp_path):
+    """The JSON parses with a strict parser that rejects NaN/Infinity tokens."""
+    df = _frame()
+    cols = output_columns(df)
+    write_json(tmp_path / "r.json", df, cols, {"tool_version": "x", "policy": {"ms_max": 2.0}})
+
+    def reject(token):
+        raise ValueError(token)
+
+    doc = json.loads((tmp_path / "r.json").read_text(), parse_constant=reject)
+    assert doc["loops"][0]["gm"] == "inf" and doc["loops"][0]["gm_low"] is None
+    assert doc["loops"][1]["rhp_closed"] is None and doc["policy"]["ms_max"] == 2.0
+    assert [r["row"] for r in doc["loops"]] == [2, 3]
