@@ -16,7 +16,6 @@ import pytest
 from audit.frequency import evaluate
 from audit.loop import Controller, LoopModel, make_process
 
-S = control.tf("s")
 
 
 def _tf(r) -> control.TransferFunction:
