@@ -52,6 +52,40 @@ RESULT_COLUMNS: tuple[Column, ...] = (
     C("ms_max", "-", "Ms limit in force for the row.", "frequency"),
     C("gm_min_db", "dB", "Gain-margin limit in force for the row.", "frequency"),
     C("pm_min_deg", "deg", "Phase-margin limit in force for the row.", "frequency"),
+    C("inner_loop", "-", "Tag of the inner loop when the row is a cascade's outer loop, as entered.", "cascade"),
+    C("cascade_basis", "-", "Frequencies of cascade_ratio: wb (bandwidths) or wc (gain crossovers, when a "
+                            "bandwidth is blank); blank when not checked.", "cascade"),
+    C("cascade_ratio", "-", "Inner-loop frequency over outer-loop frequency (wb_rad_s, else wc_rad_s), outer "
+                            "loop evaluated with its inner loop inside.", "cascade"),
+    C("cascade_ok", "-", "True when cascade_ratio >= policy cascade_ratio_min; blank when not checked.", "cascade"),
+    C("verdict", "-", "retune, not achievable by tuning, no change needed, check model or not evaluated.", "proposal"),
+    C("proposal_method", "-", "Which candidate is recommended, e.g. 'SIMC PI, tau_c = theta', 'AMIGO PID', "
+                              "'max-ki PI at Ms <= 2'.", "proposal"),
+    C("proposal_form", "-", "Controller form of the proposal (the row's, or ideal when no series form exists).", "proposal"),
+    C("proposal_settings", "-", "Proposed settings in the row's own columns and units, three significant figures.",
+      "proposal"),
+    C("proposal_kc", "-", "Proposed controller gain in proposal_form (parallel: kp).", "proposal"),
+    C("proposal_ti_s", "s", "Proposed integral time in proposal_form (parallel: kp/ki); blank for none.", "proposal"),
+    C("proposal_td_s", "s", "Proposed derivative time in proposal_form (parallel: kd/kp).", "proposal"),
+    C("proposal_changes", "-", "Change of each setting in the row's terms, in %.", "proposal"),
+    C("proposal_ms", "-", "Ms of the proposal as rounded (exact engine).", "proposal"),
+    C("proposal_gm_db", "dB", "Gain margin of the proposal.", "proposal"),
+    C("proposal_pm_deg", "deg", "Phase margin of the proposal.", "proposal"),
+    C("proposal_dm_s", "s", "Delay margin of the proposal.", "proposal"),
+    C("proposal_band_s_db", "dB", "Largest 20 log10|S| over the rejection band with the proposal.", "proposal"),
+    C("proposal_iae_s", "s", "Load-step IAE with the proposal (unit step at the process input), as load_iae_s.",
+      "proposal"),
+    C("best_band_s_db", "dB", "Deepest band level any candidate reaches within the robustness limits.", "proposal"),
+    C("limiting_factor", "-", "What bounds the achievable rejection, with remedies (when not achievable by tuning).",
+      "proposal"),
+    C("proposal_note", "-", "Warnings on the proposal (action, form, settings moving by more than a factor two), "
+                            "separated by '; '.", "proposal"),
+    C("priority_score", "-", "Priority: severity points + 30 x criticality weight + 60 x feasibility x benefit "
+                             "(README, 'Priority').", "priority"),
+    C("rank", "-", "Place on the work list, 1 = most urgent; blank when no action is needed.", "priority"),
+    C("action", "-", "retune, check the model or the valve, structural change, or fix the inventory row.", "priority"),
+    C("reason", "-", "Why the loop is on the work list, in a few words.", "priority"),
+    C("expected_improvement", "-", "Predicted change if the action is taken.", "priority"),
 )
 
 
