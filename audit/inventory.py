@@ -1228,9 +1228,14 @@ def read_inventory(path: str | Path) -> Inventory:
     if not rows and not header_problems:
         header_problems.append(Problem(table.sheet, str(table.header_row + 1), "", "no loops below the header row",
                                        "warning"))
+    letters: dict[str, str] = {}
+    for col, h in sorted(table.headers.items()):
+        name = canonical_header(h)
+        if name and name not in letters:
+            letters[name] = _col_letter(col)
     return Inventory(path=str(path), name=p.name, sha256=sha, rows=tuple(rows), policy=policy,
                      problems=tuple(header_problems) + tuple(policy_problems), blank_rows=table.blank_rows,
-                     sheets=sheets, extra_columns=extra_columns)
+                     sheets=sheets, extra_columns=extra_columns, column_letters=letters)
 
 
 # --------------------------------------------------------------------------------------

@@ -120,3 +120,4 @@ class Inventory:
     blank_rows: int = 0            # blank rows skipped in the middle of the data
     sheets: tuple[str, ...] = ()
     extra_columns: tuple[str, ...] = ()  # unknown headers, carried to the results
+    column_letters: dict[str, str] = field(default_factory=dict)  # canonical column -> sheet column letter
