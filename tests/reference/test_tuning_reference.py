@@ -6,7 +6,6 @@ brute-force search with the exact engine), not regression.
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 import pytest
