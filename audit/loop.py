@@ -25,6 +25,20 @@ MODEL_TYPES = ("fopdt", "sopdt", "ipdt", "tf")
 FORMS = ("ideal", "series", "parallel")
 
 
+def _lead_trimmed(coef) -> tuple[float, ...]:
+    """Coefficients as floats without leading zeros (np.trim_zeros 'f', without its per-call overhead)."""
+    vals = np.atleast_1d(np.asarray(coef, float)).tolist()
+    i = 0
+    while i < len(vals) and vals[i] == 0:
+        i += 1
+    return tuple(vals[i:])
+
+
+def _polymul(a, b) -> np.ndarray:
+    """Product of two coefficient sequences (np.polymul without building poly1d objects)."""
+    return np.convolve(a, b) if len(a) and len(b) else np.polymul(a, b)
+
+
 @dataclass(frozen=True)
 class Rational:
     """A rational transfer function num(s)/den(s), coefficients descending in s."""
@@ -35,15 +49,14 @@ class Rational:
     @staticmethod
     def of(num, den) -> "Rational":
         """Build from sequences, trimming leading zeros."""
-        return Rational(tuple(float(x) for x in np.trim_zeros(np.atleast_1d(np.asarray(num, float)), "f")) or (0.0,),
-                        tuple(float(x) for x in np.trim_zeros(np.atleast_1d(np.asarray(den, float)), "f")))
+        return Rational(_lead_trimmed(num) or (0.0,), _lead_trimmed(den))
 
     def __mul__(self, other: "Rational") -> "Rational":
-        return Rational.of(np.polymul(self.num, other.num), np.polymul(self.den, other.den))
+        return Rational.of(_polymul(self.num, other.num), _polymul(self.den, other.den))
 
     def __add__(self, other: "Rational") -> "Rational":
-        n = np.polyadd(np.polymul(self.num, other.den), np.polymul(other.num, self.den))
-        return Rational.of(n, np.polymul(self.den, other.den))
+        n = np.polyadd(_polymul(self.num, other.den), _polymul(other.num, self.den))
+        return Rational.of(n, _polymul(self.den, other.den))
 
     def scale(self, k: float) -> "Rational":
         """k times this transfer function."""
