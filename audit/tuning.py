@@ -1403,9 +1403,29 @@ def add_proposals(audit) -> None:
         else:
             todo.append(i)
     if todo:
-        props = propose_many([(audit.models[i], rows[i], res.iloc[i]) for i in todo], policy)
-        for i, p in zip(todo, props):
-            out[i] = p
+        # cascades: innermost loops first; each outer loop is proposed against the proposed
+        # tuning of its inner loop (the inner loop keeps its present tuning when it needs none)
+        from .cascade import compose, tuning_levels
+        links = audit.extras.get("cascade")
+        inner_of = getattr(links, "inner_of", {}) or {}
+        composed = getattr(links, "composed", frozenset()) or frozenset()
+        todo_set = set(todo)
+        proposed_models: dict[int, object] = {}
+        for level in tuning_levels(rows):
+            batch = [i for i in level if i in todo_set]
+            if not batch:
+                continue
+            items = []
+            for i in batch:
+                m = audit.models[i]
+                j = inner_of.get(i)
+                if j is not None and i in composed and j in proposed_models:
+                    m = compose(m, proposed_models[j])
+                items.append((m, rows[i], res.iloc[i]))
+            for (m, _, _), i, p in zip(items, batch, propose_many(items, policy)):
+                out[i] = p
+                if p.settings is not None:
+                    proposed_models[i] = m.with_controller(p.settings.controller())
     recs = [proposal_record(out.get(i)) for i in range(len(rows))]
     for c in PROPOSAL_COLUMNS:
         vals = [r[c] for r in recs]
