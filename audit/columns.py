@@ -100,3 +100,12 @@ def column(name: str) -> Column:
         if c.name == name:
             return c
     raise KeyError(name)
+
+
+def markdown_table(stage: str | None = None) -> str:
+    """The results columns as a Markdown table (for the README)."""
+    lines = ["| column | unit | meaning |", "|---|---|---|"]
+    for c in RESULT_COLUMNS:
+        if stage is None or c.stage == stage:
+            lines.append(f"| `{c.name}` | {c.unit} | {c.meaning.replace('|', chr(92) + '|')} |")
+    return "\n".join(lines)
