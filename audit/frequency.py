@@ -170,49 +170,85 @@ def _roots(row: np.ndarray) -> np.ndarray:
     return np.roots(r)
 
 
+def _row_roots(coef: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Roots of every row's polynomial between its first and last non-zero coefficient.
+
+    The same companion matrices as ``np.roots`` of each trimmed row, their eigenvalues
+    computed in stacks of one size. Returns the roots (complex) and the row of each.
+    """
+    nz = coef != 0
+    any_nz = nz.any(axis=1)
+    width = coef.shape[1]
+    first = np.where(any_nz, np.argmax(nz, axis=1), width)
+    last = np.where(any_nz, width - 1 - np.argmax(nz[:, ::-1], axis=1), -1)
+    size = last - first + 1
+    roots, owner = [np.zeros(0, complex)], [np.zeros(0, int)]
+    for m in np.unique(size[size > 1]):
+        rows = np.flatnonzero(size == m)
+        p = coef[rows[:, None], first[rows][:, None] + np.arange(m)]
+        a = np.zeros((rows.size, m - 1, m - 1))
+        a[:, np.arange(1, m - 1), np.arange(m - 2)] = 1.0
+        a[:, 0, :] = -p[:, 1:] / p[:, :1]
+        roots.append(np.linalg.eigvals(a).astype(complex).ravel())
+        owner.append(np.repeat(rows, m - 1))
+    return np.concatenate(roots), np.concatenate(owner)
+
+
 def _static(batch: Batch) -> _Static:
     n = batch.num.shape[0]
-    k = np.zeros(n, int)
+    num, den = batch.num, batch.den
+    width_n, width_d = num.shape[1], den.shape[1]
+    nz_n, nz_d = num != 0, den != 0
+    has_n, has_d = nz_n.any(axis=1), nz_d.any(axis=1)
+    last_n = np.where(has_n, width_n - 1 - np.argmax(nz_n[:, ::-1], axis=1), -1)
+    last_d = np.where(has_d, width_d - 1 - np.argmax(nz_d[:, ::-1], axis=1), -1)
+    first_n = np.where(has_n, np.argmax(nz_n, axis=1), width_n)
+    first_d = np.where(has_d, np.argmax(nz_d, axis=1), width_d)
+    k = np.where(has_d, width_d - 1 - last_d, 0) - np.where(has_n, width_n - 1 - last_n, 0)
+    rn, on = _row_roots(num)
+    rd, od = _row_roots(den)
+    allr = np.concatenate([rn, rd])
+    own = np.concatenate([on, od])
+    scale = np.abs(allr)
+    big = np.full(n, -np.inf)
+    np.maximum.at(big, own, scale)
+    tol = 1e-9 * np.where(np.isneginf(big), 1.0, np.fmax(1.0, big))
     p_own = np.zeros(n, int)
+    np.add.at(p_own, od, rd.real > tol[od])
     axis = np.zeros(n, int)
+    np.add.at(axis, od, (np.abs(rd.real) <= tol[od]) & (np.abs(rd) > tol[od]))
+    # corner frequencies: root magnitudes, 1/delay, and the crossover c0^(1/k) of the
+    # low-frequency asymptote c0 / s^k
+    cw, co = [scale[scale > 0]], [own[scale > 0]]
+    dl = np.flatnonzero(batch.delay > 0)
+    cw.append(1.0 / batch.delay[dl])
+    co.append(dl)
+    ok = np.flatnonzero(has_n & has_d & (k > 0))
+    c0 = np.abs(num[ok, last_n[ok]] / den[ok, last_d[ok]])
+    ok, c0 = ok[c0 > 0], c0[c0 > 0]
+    # scalar pow (libm), as per loop: the array power may round the last bit differently
+    cw.append(np.array([x ** (1.0 / kk) for x, kk in zip(c0.tolist(), k[ok].tolist())], float))
+    co.append(ok)
+    cw, co = np.concatenate(cw), np.concatenate(co)
     c_min = np.full(n, np.inf)
-    c_max = np.zeros(n)
-    zeta = np.ones(n)
+    c_max = np.full(n, -np.inf)
+    np.minimum.at(c_min, co, cw)
+    np.maximum.at(c_max, co, cw)
+    none = np.bincount(co, minlength=n) == 0
+    c_min[none] = 1.0
+    c_max[none] = 1.0
+    cplx = np.abs(allr.imag) > 1e-12 * np.maximum(scale, 1e-300)
+    zeta = np.full(n, np.inf)
+    np.minimum.at(zeta, own[cplx], np.abs(allr[cplx].real) / scale[cplx])
+    zeta[np.isposinf(zeta)] = 1.0
     l_inf = np.zeros(n)
     l_inf_real = np.zeros(n)
-    for i in range(n):
-        num, den = batch.num[i], batch.den[i]
-        kn, kd = _trailing_zeros(num), _trailing_zeros(den)
-        k[i] = kd - kn
-        rn, rd = _roots(num), _roots(den)
-        scale = np.abs(np.concatenate([rn, rd]))
-        tol = 1e-9 * max(1.0, float(scale.max()) if scale.size else 1.0)
-        p_own[i] = int(np.sum(rd.real > tol))
-        axis[i] = int(np.sum((np.abs(rd.real) <= tol) & (np.abs(rd) > tol)))
-        corners = list(scale[scale > 0])
-        if batch.delay[i] > 0:
-            corners.append(1.0 / batch.delay[i])
-        # asymptotic crossover of the low-frequency asymptote c0 / s^k
-        nn, dd = np.trim_zeros(num, "b"), np.trim_zeros(den, "b")
-        if nn.size and dd.size and k[i] > 0:
-            c0 = abs(nn[-1] / dd[-1])
-            if c0 > 0:
-                corners.append(c0 ** (1.0 / k[i]))
-        if corners:
-            c_min[i], c_max[i] = min(corners), max(corners)
-        else:
-            c_min[i] = c_max[i] = 1.0
-        allr = np.concatenate([rn, rd])
-        cplx = allr[np.abs(allr.imag) > 1e-12 * np.maximum(np.abs(allr), 1e-300)]
-        if cplx.size:
-            zeta[i] = float(np.min(np.abs(cplx.real) / np.abs(cplx)))
-        ftn, ftd = np.trim_zeros(num, "f"), np.trim_zeros(den, "f")
-        if ftn.size == ftd.size and ftd.size:
-            l_inf_real[i] = ftn[0] / ftd[0]
-            l_inf[i] = abs(l_inf_real[i])
+    same = has_d & ((width_n - first_n) == (width_d - first_d))
+    l_inf_real[same] = num[same, first_n[same]] / den[same, first_d[same]]
+    l_inf[same] = np.abs(l_inf_real[same])
     # Cascades: an outer entry inherits its inner loops' time scales; its own rational part
     # is multiplied by T_inner, strictly proper when the inner loop is, so l_inf drops to 0.
-    for i in range(n):
+    for i in np.flatnonzero(batch.inner >= 0):
         j = batch.inner[i]
         if j >= 0:
             c_min[i] = min(c_min[i], c_min[j])
@@ -290,16 +326,26 @@ def _golden_max(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun
     return cand_w[k, cols], cand_f[k, cols]
 
 
-def _seg_max(values: np.ndarray, seg: np.ndarray, n: int, fill: float = -np.inf) -> np.ndarray:
-    out = np.full(n, fill)
-    np.maximum.at(out, seg, values)
+def _seg_reduce(ufunc, values: np.ndarray, seg: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """``ufunc.at(out, seg, values)``; by ``ufunc.reduceat`` over runs when ``seg`` is sorted (grid points are).
+
+    Both give the same values: max, min, fmax are exact and order-free (NaN propagates alike).
+    """
+    if values.size < 64 or not (seg[1:] >= seg[:-1]).all():
+        ufunc.at(out, seg, values)
+        return out
+    starts = np.flatnonzero(np.concatenate(([True], seg[1:] != seg[:-1])))
+    s = seg[starts]
+    out[s] = ufunc(out[s], ufunc.reduceat(values, starts))
     return out
+
+
+def _seg_max(values: np.ndarray, seg: np.ndarray, n: int, fill: float = -np.inf) -> np.ndarray:
+    return _seg_reduce(np.maximum, values, seg, np.full(n, fill))
 
 
 def _seg_min(values: np.ndarray, seg: np.ndarray, n: int, fill: float = np.inf) -> np.ndarray:
-    out = np.full(n, fill)
-    np.minimum.at(out, seg, values)
-    return out
+    return _seg_reduce(np.minimum, values, seg, np.full(n, fill))
 
 
 def _arg_by_seg(values: np.ndarray, seg: np.ndarray, n: int) -> np.ndarray:
@@ -309,8 +355,7 @@ def _arg_by_seg(values: np.ndarray, seg: np.ndarray, n: int) -> np.ndarray:
         return out
     # ties and NaN as a stable sort on (seg, -values) would take them: the first of the
     # largest values, NaN only when the segment holds nothing else (no sort: O(size))
-    top = np.full(n, np.nan)
-    np.fmax.at(top, seg, values)
+    top = _seg_reduce(np.fmax, values, seg, np.full(n, np.nan))
     hit = np.flatnonzero((values == top[seg]) | np.isnan(top[seg]))
     segs, first = np.unique(seg[hit], return_index=True)
     out[segs] = hit[first]
