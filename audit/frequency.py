@@ -157,19 +157,6 @@ class _Static:
     l_inf_real: np.ndarray  # its signed value (real) [-]
 
 
-def _trailing_zeros(row: np.ndarray) -> int:
-    nz = np.flatnonzero(row)
-    return 0 if nz.size == 0 else row.size - 1 - nz[-1]
-
-
-def _roots(row: np.ndarray) -> np.ndarray:
-    r = np.trim_zeros(row, "f")
-    r = np.trim_zeros(r, "b")
-    if r.size <= 1:
-        return np.zeros(0, complex)
-    return np.roots(r)
-
-
 def _row_roots(coef: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Roots of every row's polynomial between its first and last non-zero coefficient.
 
