@@ -31,7 +31,9 @@ A characteristic time ``Tc`` is built from the model (dead time, time constants,
 filter, ``Ti``, the closed-loop integral time ``(1 + |K Kc|)/|K ki|``, ``1/|K Kc|``
 for integrating processes). The first horizon is ``4 Tc``; a response that has not
 stayed inside its settling band over the last quarter of the horizon is run again
-with a horizon four times longer, twice at most.
+with a horizon four times longer, twice at most (a rerun takes at most
+``RERUN_CAP`` steps; a loop whose short dead time would need more is reported as
+not settled).
 
 References
 ----------
@@ -46,6 +48,7 @@ References
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, field
 from fractions import Fraction
@@ -59,9 +62,11 @@ from .policy import Policy
 
 N_TARGET = 1000          # steps per horizon aimed at
 N_CAP = 2 ** 16          # most steps of one simulation
-MEMORY_BUDGET = 96e6     # bytes of stored signals per simulated chunk
+MEMORY_BUDGET = 128e6    # bytes of stored responses per simulated chunk
+FIGURE_CHUNK = 1024      # loops per block of figure computations (bounds temporaries)
 HORIZON_FACTOR = 4.0     # first horizon = HORIZON_FACTOR * Tc
 RERUNS = 2               # horizon x4 at most this many times
+RERUN_CAP = 8 * N_TARGET  # most steps of a rerun (a longer one is cut and reported as not settled)
 SETTLED_FRACTION = 0.75  # a response must settle before this fraction of the horizon
 
 _STATS: list = []
@@ -71,7 +76,7 @@ STEP_COLUMNS = ("load_iae_s", "load_ie_s", "load_peak", "load_t_peak_s", "load_s
 
 # --------------------------------------------------------------------------- system building
 
-def controller_poly(c: Controller) -> tuple[np.ndarray, np.ndarray]:
+def controller_poly(c: Controller) -> tuple[list[float], list[float]]:
     """num(s), den(s) of C(s), the same function as :attr:`Controller.rational`, built directly.
 
     Raises ValueError when C is improper (derivative without filter).
@@ -108,24 +113,26 @@ def controller_poly(c: Controller) -> tuple[np.ndarray, np.ndarray]:
                 num, den = [kc * (1.0 + a) * td, kc], [a * td, 1.0]
             else:
                 num, den = [kc], [1.0]
-    return _proper(np.asarray(num, float), np.asarray(den, float), "controller")
+    return _proper(num, den, "controller")
 
 
-def _proper(num: np.ndarray, den: np.ndarray, what: str) -> tuple[np.ndarray, np.ndarray]:
+def _proper(num, den, what: str) -> tuple[list[float], list[float]]:
     """Trim leading zeros; pad num to the length of den; refuse improper functions."""
-    dz = np.flatnonzero(den)
-    if not len(dz):
+    den = [float(x) for x in den]
+    num = [float(x) for x in num]
+    while den and den[0] == 0.0:
+        den.pop(0)
+    if not den:
         raise ValueError(f"{what} has a zero denominator")
-    den = den[dz[0]:]
-    nz = np.flatnonzero(num)
-    num = num[nz[0]:] if len(nz) else np.zeros(1)
+    while len(num) > 1 and num[0] == 0.0:
+        num.pop(0)
     if len(num) > len(den):
         raise ValueError(f"improper {what} (more zeros than poles; e.g. derivative without filter)")
-    return np.concatenate([np.zeros(len(den) - len(num)), num]), den
+    return [0.0] * (len(den) - len(num)) + num, den
 
 
-def _lag_poly(tau: float) -> tuple[np.ndarray, np.ndarray]:
-    return (np.array([0.0, 1.0]), np.array([tau, 1.0])) if tau else (np.ones(1), np.ones(1))
+def _lag_poly(tau: float) -> tuple[list[float], list[float]]:
+    return ([0.0, 1.0], [float(tau), 1.0]) if tau else ([1.0], [1.0])
 
 
 @dataclass
@@ -295,17 +302,17 @@ def _polys(g: _Graph, m: LoopModel) -> list[tuple[np.ndarray, np.ndarray]]:
             out.append(_lag_poly(x.pv_filter))
         elif letter == "C":
             num, den = cpoly[level]
-            out.append((num * (scale * x.sign), den))
+            k = scale * x.sign
+            out.append(([k * v for v in num], den))
         else:
-            out.append(_proper(np.asarray(x.process.rational.num, float),
-                               np.asarray(x.process.rational.den, float), "process model"))
+            out.append(_proper(x.process.rational.num, x.process.rational.den, "process model"))
     return out
 
 
 def _assemble(g: _Graph, outputs: list[dict], polys: list[list], delays: np.ndarray) -> Batch:
     """State-space form of a group of loops with the same diagram, block orders and zero delays."""
     L = len(polys)
-    real = [_realise(np.array([p[b][0] for p in polys]), np.array([p[b][1] for p in polys]))
+    real = [_realise(np.array([p[b][0] for p in polys], float), np.array([p[b][1] for p in polys], float))
             for b in range(len(g.blocks))]
     nb = len(g.blocks)
     sizes = [r[0].shape[1] for r in real]
@@ -443,7 +450,11 @@ def characteristic_time(m: LoopModel) -> float:
     kc = c.kp if c.form == "parallel" else c.kc
     ki = c.integral_gain
     tc = m.delay + m.pv_filter + (c.td or 0.0) + (c.kd / c.kp if c.form == "parallel" and c.kp else 0.0)
-    tc += _scales(m.process.rational)
+    pr = m.process
+    if pr.kind == "tf":
+        tc += _scales(pr.rational)
+    else:
+        tc += abs(pr.tau1) + abs(pr.tau2) + abs(pr.lead)
     n_int, k = _dc(m.process.rational)
     if m.inner is not None:
         tc += characteristic_time(m.inner)
@@ -461,6 +472,11 @@ def characteristic_time(m: LoopModel) -> float:
 
 def _common_unit(values: list[float]) -> float | None:
     """Largest g with every value a whole multiple of g (ratios with denominators <= 1000), or None."""
+    return _common_unit_t(tuple(values))
+
+
+@functools.lru_cache(maxsize=4096)
+def _common_unit_t(values: tuple[float, ...]) -> float | None:
     vals = [v for v in values if v > 0.0]
     if not vals:
         return None
@@ -609,51 +625,63 @@ def simulate(batch: Batch, h: np.ndarray, n_steps: int, ext: Callable[[int], np.
     R = int(n.max()) + 2
     mL = m * L
     base = (np.arange(m)[:, None] * L + np.arange(L)[None, :])
+    off = (base - n * mL).ravel()                  # read index of w(t_k) is k mL + off (mod R mL)
+    off1 = (base - (n + 1) * mL).ravel()
+    fr = frac.ravel()
     QM = np.zeros(R * mL)
     QP = np.zeros(R * mL)
     ny = len(sel)
-    YM = np.empty((n_steps + 1, ny, L))
+    Hw = H[:, ns:ns + m]
+    jumps = bool(np.any(H[:, ns:] != 0.0))         # w or e reach q or y without a lag: keep left limits apart
     YP = np.empty((n_steps + 1, ny, L))
-    if ext is None:
+    YM = np.empty((n_steps + 1, ny, L)) if jumps else YP
+    step_input = ext is None
+    if step_input:
         ones = np.ones(L)
         ext = lambda k: ones  # noqa: E731
     V = np.zeros((ns + 2 * r, L))        # [x; U+(t_k); U-(t_k+1)]
-    W = np.zeros((ns + r, 2, L))         # [x; U-], [x; U+] at t_k+1
     e0 = np.asarray(ext(0), float)
-    W[ns + m, 1] = e0
-    O = np.einsum("ijl,jkl->ikl", H, W)
-    QM[:mL] = O[:m, 0].ravel()
-    QP[:mL] = O[:m, 1].ravel()
-    YM[0] = O[m:, 0]
-    YP[0] = O[m:, 1]
+    # t = 0: the left limit is rest; the right limit has e = e(0)
+    Op = np.einsum("ijl,jl->il", H, np.concatenate([np.zeros((ns + m, L)), e0[None]], axis=0))
+    QP[:mL] = Op[:m].ravel()
+    YP[0] = Op[m:]
+    if jumps:
+        YM[0] = 0.0
+    else:
+        YP[0] = Op[m:]
     V[ns + m] = e0
+    V[ns + r + m] = e0
+    Hx = H
     for k in range(n_steps):
-        j = k + 1 - n
-        wm = QM[(j % R) * mL + base]
+        c = (k + 1) * mL
+        wm = np.take(QM, c + off, mode="wrap")
+        wp = np.take(QP, c + off, mode="wrap")
         if use_frac:
-            prev = QP[((j - 1) % R) * mL + base]
-            wm = np.where(frac > 0.0, (1.0 - frac) * wm + frac * prev, wm)
-            wp = np.where(frac > 0.0, wm, QP[(j % R) * mL + base])
-        else:
-            wp = QP[(j % R) * mL + base]
-        ek = np.asarray(ext(k + 1), float)
+            prev = np.take(QP, c + off1, mode="wrap")
+            wf = (1.0 - fr) * wm + fr * prev
+            wm = np.where(fr > 0.0, wf, wm)
+            wp = np.where(fr > 0.0, wf, wp)
+        wm = wm.reshape(m, L)
+        wp = wp.reshape(m, L)
+        if not step_input:
+            ek = np.asarray(ext(k + 1), float)
+            V[ns + 2 * r - 1] = ek
         V[ns + r:ns + r + m] = wm
-        V[ns + 2 * r - 1] = ek
         x = np.einsum("ijl,jl->il", G, V)
         V[:ns] = x
         V[ns:ns + m] = wp
-        V[ns + m] = ek
-        W[:ns, 0] = x
-        W[:ns, 1] = x
-        W[ns:ns + m, 0] = wm
-        W[ns:ns + m, 1] = wp
-        W[ns + m, :] = ek
-        O = np.einsum("ijl,jkl->ikl", H, W)
+        if not step_input:
+            V[ns + m] = ek
+        Op = np.einsum("ijl,jl->il", Hx, V[:ns + r])
         s = ((k + 1) % R) * mL
-        QM[s:s + mL] = O[:m, 0].ravel()
-        QP[s:s + mL] = O[:m, 1].ravel()
-        YM[k + 1] = O[m:, 0]
-        YP[k + 1] = O[m:, 1]
+        QP[s:s + mL] = Op[:m].ravel()
+        YP[k + 1] = Op[m:]
+        if jumps:
+            Om = Op + np.einsum("ijl,jl->il", Hw, wm - wp)
+            QM[s:s + mL] = Om[:m].ravel()
+            YM[k + 1] = Om[m:]
+        else:
+            QM[s:s + mL] = QP[s:s + mL]
     return SimResult(h, YM, YP)
 
 
@@ -674,63 +702,83 @@ def final_values(batch: Batch) -> np.ndarray:
 
 
 def plan_batch(batch: Batch, horizons: np.ndarray, divisors: np.ndarray | None = None,
-               n_target: int = N_TARGET) -> list[_Plan]:
+               n_target: int = N_TARGET, n_cap: int = N_CAP) -> list[_Plan]:
     """:func:`plan_step` for every loop of a batch."""
     out = []
     for i in range(len(batch)):
         d = batch.delays[i]
         out.append(plan_step(d[~np.isnan(d)].tolist(), float(horizons[i]), [float(batch.soft[i])],
-                             None if divisors is None else float(divisors[i]), n_target))
+                             None if divisors is None else float(divisors[i]), n_target, n_cap))
     return out
 
 
 # --------------------------------------------------------------------------- figures
 
-def _interleave(h: np.ndarray, ym: np.ndarray, yp: np.ndarray, shift: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Times and values with left and right limits interleaved: (2N+2, loops)."""
-    N1, L = ym.shape
-    t = np.arange(N1)[:, None] * h[None, :] + shift[None, :]
-    T2 = np.repeat(t, 2, axis=0)
-    Y2 = np.empty((2 * N1, L))
-    Y2[0::2] = ym
-    Y2[1::2] = yp
-    return T2, Y2
+@dataclass
+class _Resp:
+    """Responses of a chunk of loops: ``Y`` (K, L) with ``rep`` values per grid point (2: left and
+    right limits interleaved, 1: continuous), grid t_k = k h + shift."""
+
+    Y: np.ndarray
+    h: np.ndarray
+    shift: np.ndarray
+    rep: int
+
+    @staticmethod
+    def of(ym: np.ndarray, yp: np.ndarray, h: np.ndarray, shift: np.ndarray) -> "_Resp":
+        if ym is yp:
+            return _Resp(yp, h, shift, 1)
+        Y = np.empty((2 * ym.shape[0], ym.shape[1]))
+        Y[0::2] = ym
+        Y[1::2] = yp
+        return _Resp(Y, h, shift, 2)
+
+    def t(self, i: np.ndarray) -> np.ndarray:
+        """Times of the per-column indices ``i``. [s]"""
+        return (i // self.rep) * self.h + self.shift
+
+    def integral(self, Y: np.ndarray) -> np.ndarray:
+        """Trapezoid integral of ``Y`` (same layout) over the grid, jumps taking no time."""
+        if self.rep == 1:
+            return self.h * (Y.sum(axis=0) - 0.5 * (Y[0] + Y[-1]))
+        return self.h * 0.5 * (Y[1:-1:2] + Y[2::2]).sum(axis=0)
+
+    @property
+    def horizon(self) -> np.ndarray:
+        return self.t(np.full(self.Y.shape[1], self.Y.shape[0] - 1))
 
 
-def _first_crossing(T2: np.ndarray, Y2: np.ndarray, level: np.ndarray) -> np.ndarray:
+def _first_crossing(r: _Resp, Y: np.ndarray, level: np.ndarray) -> np.ndarray:
     """First time each column reaches ``level`` (linear between points); NaN if never."""
-    hit = Y2 >= level[None, :]
+    hit = Y >= level[None, :]
     i = np.argmax(hit, axis=0)
-    ok = hit[i, np.arange(Y2.shape[1])]
+    c = np.arange(Y.shape[1])
+    ok = hit[i, c]
     ip = np.maximum(i - 1, 0)
-    c = np.arange(Y2.shape[1])
-    y0, y1, t0, t1 = Y2[ip, c], Y2[i, c], T2[ip, c], T2[i, c]
+    y0, y1, t0, t1 = Y[ip, c], Y[i, c], r.t(ip), r.t(i)
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = np.where((i > 0) & (y1 > y0), (level - y0) / (y1 - y0), 1.0)
     out = t0 + np.clip(frac, 0.0, 1.0) * (t1 - t0)
     return np.where(ok, out, np.nan)
 
 
-def _settle(T2: np.ndarray, Y2: np.ndarray, final: np.ndarray, band: np.ndarray) -> np.ndarray:
+def _settle(r: _Resp, Y: np.ndarray, final: np.ndarray, band: np.ndarray) -> np.ndarray:
     """Time after which |y - final| <= band for good (NaN when still outside at the end)."""
-    s = Y2 - final[None, :]
+    s = Y - final[None, :]
     out_ = np.abs(s) > band[None, :]
-    last = Y2.shape[0] - 1 - np.argmax(out_[::-1], axis=0)
-    c = np.arange(Y2.shape[1])
-    any_out = out_.any(axis=0)
-    at_end = last >= Y2.shape[0] - 1
-    nx = np.minimum(last + 1, Y2.shape[0] - 1)
-    s0, s1, t0, t1 = s[last, c], s[nx, c], T2[last, c], T2[nx, c]
+    K = Y.shape[0]
+    last = K - 1 - np.argmax(out_[::-1], axis=0)
+    c = np.arange(Y.shape[1])
+    any_out = out_[last, c]
+    at_end = last >= K - 1
+    nx = np.minimum(last + 1, K - 1)
+    s0, s1, t0, t1 = s[last, c], s[nx, c], r.t(last), r.t(nx)
     lvl = np.where(s0 > 0, band, -band)
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = np.where(s1 != s0, (lvl - s0) / (s1 - s0), 0.0)
     t = t0 + np.clip(frac, 0.0, 1.0) * (t1 - t0)
     t = np.where(any_out, t, 0.0)
     return np.where(at_end & any_out, np.nan, t)
-
-
-def _trapz(T2: np.ndarray, Y2: np.ndarray) -> np.ndarray:
-    return np.sum(0.5 * (Y2[1:] + Y2[:-1]) * np.diff(T2, axis=0), axis=0)
 
 
 @dataclass
@@ -740,55 +788,53 @@ class _Figs:
     grows: np.ndarray
 
 
-def _load_figures(res: SimResult, shift: np.ndarray, final: np.ndarray, pct: float) -> _Figs:
-    T2, Y2 = _interleave(res.h, res.ym[:, 0], res.yp[:, 0], shift)
-    absy = np.abs(Y2)
+def _grows(dev: np.ndarray) -> np.ndarray:
+    """True where the largest deviation of the last quarter exceeds 1.5 times the earlier largest."""
+    q = max(1, dev.shape[0] // 4)
+    return np.max(dev[-q:], axis=0) > 1.5 * np.max(dev[:-q], axis=0)
+
+
+def _load_figures(r: _Resp, final: np.ndarray, pct: float) -> _Figs:
+    Y = r.Y
+    absy = np.abs(Y)
     ipk = np.argmax(absy, axis=0)
-    c = np.arange(Y2.shape[1])
+    c = np.arange(Y.shape[1])
     peak = absy[ipk, c]
-    tpk = T2[ipk, c]
     band = pct / 100.0 * peak
-    settle = _settle(T2, Y2, final, band)
+    tpk = np.where(peak - np.abs(final) > band, r.t(ipk), np.nan)
+    settle = _settle(r, Y, final, band)
     offset = np.where(np.abs(final) <= 1e-9 * np.maximum(peak, 1e-300), 0.0, final)
     has_off = offset != 0.0
-    iae = np.where(has_off, np.nan, _trapz(T2, absy))
-    ie = np.where(has_off, np.nan, -_trapz(T2, Y2))
-    horizon = T2[-1]
-    settled = np.isfinite(settle) & (settle <= shift + SETTLED_FRACTION * (horizon - shift))
-    q = Y2.shape[0] // 4
-    grows = np.max(absy[-q:], axis=0) > 1.5 * np.max(absy[:-q], axis=0)
+    iae = np.where(has_off, np.nan, r.integral(absy))
+    ie = np.where(has_off, np.nan, -r.integral(Y))
+    settled = np.isfinite(settle) & (settle <= r.shift + SETTLED_FRACTION * (r.horizon - r.shift))
     return _Figs(dict(load_iae_s=iae, load_ie_s=ie, load_peak=peak, load_t_peak_s=tpk,
-                      load_settle_s=settle, load_offset=offset), settled, grows)
+                      load_settle_s=settle, load_offset=offset), settled, _grows(absy))
 
 
-def _sp_figures(res: SimResult, final: np.ndarray, pct: float) -> _Figs:
-    L = res.h.shape[0]
-    T2, Y2 = _interleave(res.h, res.ym[:, 0], res.yp[:, 0], np.zeros(L))
+def _sp_figures(r: _Resp, final: np.ndarray, pct: float) -> _Figs:
     sg = np.where(final < 0, -1.0, 1.0)
-    Ys = Y2 * sg[None, :]
+    Ys = r.Y * sg[None, :]
     fin = np.abs(final)
     with np.errstate(invalid="ignore", divide="ignore"):
         over = np.maximum(0.0, (Ys.max(axis=0) - fin) / fin) * 100.0
-        rise = _first_crossing(T2, Ys, 0.9 * fin) - _first_crossing(T2, Ys, 0.1 * fin)
-    settle = _settle(T2, Ys, fin, pct / 100.0 * fin)
+        rise = _first_crossing(r, Ys, 0.9 * fin) - _first_crossing(r, Ys, 0.1 * fin)
+    settle = _settle(r, Ys, fin, pct / 100.0 * fin)
     offset = 1.0 - final
     offset = np.where(np.abs(offset) < 1e-9, 0.0, offset)
-    horizon = T2[-1]
-    settled = np.isfinite(settle) & (settle <= SETTLED_FRACTION * horizon)
-    q = Y2.shape[0] // 4
-    dev = np.abs(Ys - fin[None, :])
-    grows = np.max(dev[-q:], axis=0) > 1.5 * np.max(dev[:-q], axis=0)
+    settled = np.isfinite(settle) & (settle <= SETTLED_FRACTION * r.horizon)
+    grows = _grows(np.abs(Ys - fin[None, :]))
     bad = ~(fin > 1e-12)
     for a in (over, rise, settle):
         a[bad] = np.nan
     return _Figs(dict(sp_overshoot_pct=over, sp_rise_s=rise, sp_settle_s=settle, sp_offset=offset), settled, grows)
 
 
-def _run_kind(batch: Batch, kind: str, pct: float, horizons: np.ndarray) -> dict[str, np.ndarray]:
+def _run_kind(batch: Batch, kind: str, pct: float, horizons: np.ndarray, n_cap: int = N_CAP) -> dict[str, np.ndarray]:
     """Simulate one response kind for a batch (bucketed by step count, chunked by memory)."""
     L = len(batch)
     finals = final_values(batch)[0]
-    plans = plan_batch(batch, horizons)
+    plans = plan_batch(batch, horizons, n_cap=n_cap)
     names = ("load_iae_s", "load_ie_s", "load_peak", "load_t_peak_s", "load_settle_s", "load_offset") \
         if kind == "load" else ("sp_overshoot_pct", "sp_rise_s", "sp_settle_s", "sp_offset")
     out = {k: np.full(L, np.nan) for k in names}
@@ -801,24 +847,24 @@ def _run_kind(batch: Batch, kind: str, pct: float, horizons: np.ndarray) -> dict
     buckets = np.minimum(buckets, N_CAP)
     for nb in np.unique(buckets):
         idx = np.flatnonzero(buckets == nb)
-        per_loop = 8.0 * (nb + 1) * 8      # ym, yp and the interleaved copies of the figures
-        chunk = max(1, int(MEMORY_BUDGET // per_loop))
+        chunk = max(1, int(MEMORY_BUDGET // (8.0 * (nb + 1) * 2)))
         for a in range(0, len(idx), chunk):
             sel = idx[a:a + chunk]
             h = np.array([plans[i].h for i in sel])
             sub = batch.take(sel)
             res = simulate(sub, h, int(nb))
             _STATS.append((int(nb), len(sel)))
-            if kind == "load":
-                f = _load_figures(res, sub.y_shift, finals[sel], pct)
-                out["horizon"][sel] = h * nb + sub.y_shift
-            else:
-                f = _sp_figures(res, finals[sel], pct)
-                out["horizon"][sel] = h * nb
-            for k in names:
-                out[k][sel] = f.values[k]
-            out["settled"][sel] = f.settled
-            out["grows"][sel] = f.grows
+            for b0 in range(0, len(sel), FIGURE_CHUNK):
+                cs = slice(b0, b0 + FIGURE_CHUNK)
+                ss = sel[cs]
+                shift = sub.y_shift[cs] if kind == "load" else np.zeros(len(ss))
+                rr = _Resp.of(res.ym[:, 0, cs], res.yp[:, 0, cs], h[cs], shift)
+                f = (_load_figures if kind == "load" else _sp_figures)(rr, finals[ss], pct)
+                out["horizon"][ss] = rr.horizon
+                for k in names:
+                    out[k][ss] = f.values[k]
+                out["settled"][ss] = f.settled
+                out["grows"][ss] = f.grows
     return out
 
 
@@ -897,7 +943,8 @@ def step_figures(models: Sequence[LoopModel | None], policy: Policy = Policy(),
             pending = np.arange(len(okj))
             acc: dict[str, np.ndarray] = {}
             for attempt in range(RERUNS + 1):
-                got = _run_kind(batch.take(pending), kind, pct, horizons[pending])
+                got = _run_kind(batch.take(pending), kind, pct, horizons[pending],
+                                N_CAP if attempt == 0 else RERUN_CAP)
                 for k, v in got.items():
                     acc.setdefault(k, np.zeros(len(okj), v.dtype) if v.dtype == bool
                                    else np.full(len(okj), np.nan))[pending] = v
