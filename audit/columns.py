@@ -86,6 +86,43 @@ RESULT_COLUMNS: tuple[Column, ...] = (
     C("action", "-", "retune, check the model or the valve, structural change, or fix the inventory row.", "priority"),
     C("reason", "-", "Why the loop is on the work list, in a few words.", "priority"),
     C("expected_improvement", "-", "Predicted change if the action is taken.", "priority"),
+    C("load_iae_s", "s", "Integral of |e| after a unit load step (1 % of output) at the process input, "
+                         "in % of PV range x s per % of step; blank when the load leaves an offset.", "time"),
+    C("load_ie_s", "s", "Integral of e = r - y after the unit load step (signed; -sign/ki with integral "
+                        "action); blank when the load leaves an offset.", "time"),
+    C("load_peak", "-", "Largest |PV deviation| after the unit load step, % of PV range per % of step.", "time"),
+    C("load_t_peak_s", "s", "Time of load_peak; blank when the PV creeps to its offset without passing it.",
+      "time"),
+    C("load_settle_s", "s", "Time after which the PV stays within settle_band_pct % of load_peak of its "
+                            "final value.", "time"),
+    C("load_offset", "-", "Final PV deviation after the unit load step (0 with integral action).", "time"),
+    C("sp_overshoot_pct", "%", "Overshoot of a set-point step beyond the final PV value, % of that value.",
+      "time"),
+    C("sp_rise_s", "s", "Set-point step: time from 10 % to 90 % of the final PV value (first crossings).",
+      "time"),
+    C("sp_settle_s", "s", "Set-point step: time after which the PV stays within settle_band_pct % of its "
+                          "final value.", "time"),
+    C("sp_offset", "-", "Steady error after a unit set-point step, 1 - final PV value (0 with integral "
+                        "action).", "time"),
+    C("step_horizon_s", "s", "Longest time simulated for the step figures.", "time"),
+    C("step_note", "-", "Why step figures are missing or qualified (unstable, offset, not settled).", "time"),
+    C("dist_band_rad_s", "rad/s", "Band derived from the disturbance record: frequency below which "
+                                  "band_energy_fraction of its variance lies (Welch).", "disturbance"),
+    C("dist_attenuation_db", "dB", "Attenuation derived from the record, 20 log10(dist_amplitude / "
+                                   "allowed_amplitude); <= 0 means none is needed.", "disturbance"),
+    C("dist_amplitude", "% of range", "99.7th percentile of |d - mean| of the record, trend removed.",
+      "disturbance"),
+    C("dist_std", "% of range", "Standard deviation of the record, trend removed.", "disturbance"),
+    C("dist_peak", "% of range", "Largest |d - mean| of the record, trend removed.", "disturbance"),
+    C("dist_trend_per_s", "% of range/s", "Slope of the straight line removed from the record.",
+      "disturbance"),
+    C("dist_note", "-", "What was done to the record, or why it could not be used.", "disturbance"),
+    C("residual_amplitude", "% of range", "99.7th percentile of |y - mean| when the record passes through S "
+                                          "(time domain, exact dead time).", "disturbance"),
+    C("residual_std", "% of range", "Standard deviation of that residual (time domain).", "disturbance"),
+    C("residual_std_freq", "% of range", "sqrt(integral of the record's spectrum x |S(jw)|^2): the same "
+                                         "standard deviation predicted in the frequency domain.", "disturbance"),
+    C("residual_ok", "-", "True when residual_amplitude <= allowed_amplitude.", "disturbance"),
 )
 
 

@@ -1,0 +1,652 @@
+"""Logged disturbance records: validation, spectrum, rejection band and required attenuation,
+and the residual a loop would leave.
+
+A record is a CSV file with a header line, one time column and one value column:
+
+* time: ``time_s`` [s], ``time_min`` [min] or ``timestamp`` (ISO 8601, all with or
+  all without a time zone);
+* value: ``value`` [% of PV range] or ``value_eu`` [engineering units], converted
+  with the row's ``pv_lo``/``pv_hi`` to % of range.
+
+Blank lines and lines whose first cell starts with ``#`` are skipped. The record is
+the PV's deviation as seen with the loop in manual (an output disturbance): the
+residual with the loop in automatic is ``S d``.
+
+Analysis
+--------
+The mean and a least-squares straight line are removed (the slope is reported as
+the trend; a ramp is a matter of integral action, not of the band). The spectrum is
+Welch's estimate [1]_ with a Hann window, segments of ``2**floor(log2(n/4))``
+samples (at least 7 half-overlapping segments; at least 32 samples, at most n) and
+50 % overlap. The band ``wd`` is the lowest Welch frequency at which the cumulative
+variance reaches ``policy.band_energy_fraction`` of the total; it is resolved to
+about 1.5 bins (``resolution_rad_s``). The observed amplitude is the 99.7th
+percentile of ``|d - mean|`` (for a sinusoid of amplitude a, a sin(0.997 pi/2); for
+Gaussian noise, 2.97 sigma). The required attenuation is
+``A = 20 log10(amplitude/allowed)`` [dB].
+
+References
+----------
+.. [1] P. D. Welch, The use of fast Fourier transform for the estimation of power
+   spectra, IEEE Trans. Audio Electroacoustics 15(2), 1967, pp. 70-73.
+.. [2] K. J. Astrom and R. M. Murray, Feedback Systems, 2nd ed., 2021, sec. 12.1
+   (the sensitivity function S maps output disturbances to the output).
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import math
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+from scipy.signal import fftconvolve, welch
+
+from .loop import LoopModel
+from .policy import Policy
+from . import timedomain as td
+
+TIME_COLUMNS = ("time_s", "time_min", "timestamp")
+VALUE_COLUMNS = ("value", "value_eu")
+MAX_SHOWN = 20
+AMPLITUDE_PERCENTILE = 99.7
+
+DIST_COLUMNS = ("dist_band_rad_s", "dist_attenuation_db", "dist_amplitude", "dist_std", "dist_peak",
+                "dist_trend_per_s", "dist_note")
+RESIDUAL_COLUMNS = ("residual_amplitude", "residual_std", "residual_std_freq", "residual_ok")
+
+
+class RecordError(ValueError):
+    """A disturbance record that cannot be used; the message lists every problem found."""
+
+
+@dataclass(frozen=True)
+class Record:
+    """A validated disturbance record on a uniform grid.
+
+    Attributes
+    ----------
+    name : str
+        How messages name the file.
+    t : ndarray
+        Time from the first sample. [s]
+    values : ndarray
+        Disturbance. [% of PV range]
+    dt : float
+        Sample interval. [s]
+    notes : tuple of str
+        What was done to the record (resampling, unit conversion).
+    start : str
+        First timestamp as written, '' for relative time columns.
+    """
+
+    name: str
+    t: np.ndarray
+    values: np.ndarray
+    dt: float
+    notes: tuple[str, ...] = ()
+    start: str = ""
+
+
+@dataclass(frozen=True)
+class RecordAnalysis:
+    """What a record asks of the loop.
+
+    Attributes
+    ----------
+    band_rad_s : float
+        Frequency below which ``band_energy_fraction`` of the variance lies. [rad/s]
+    attenuation_db : float
+        Required attenuation 20 log10(amplitude/allowed); NaN without ``allowed``. [dB]
+    amplitude : float
+        99.7th percentile of |d - mean| after trend removal. [% of PV range]
+    std : float
+        Standard deviation after trend removal. [% of PV range]
+    peak : float
+        Largest |d - mean| after trend removal. [% of PV range]
+    trend : float
+        Slope of the straight line removed. [% of PV range per s]
+    freqs : ndarray
+        Welch frequencies. [rad/s]
+    psd : ndarray
+        Power spectral density, one-sided, integrating to the variance over ``freqs``. [%^2 s/rad]
+    resolution_rad_s : float
+        Bin spacing of the estimate. [rad/s]
+    needs_attenuation : bool
+        True when the amplitude exceeds ``allowed``.
+    allowed : float or None
+        Allowed amplitude used. [% of PV range]
+    detrended : ndarray
+        The record with mean and trend removed (input of the residual). [% of PV range]
+    dt : float
+        Sample interval of the record. [s]
+    notes : tuple of str
+    """
+
+    band_rad_s: float
+    attenuation_db: float
+    amplitude: float
+    std: float
+    peak: float
+    trend: float
+    freqs: np.ndarray
+    psd: np.ndarray
+    resolution_rad_s: float
+    needs_attenuation: bool
+    allowed: float | None
+    detrended: np.ndarray
+    dt: float
+    notes: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class Residual:
+    """The record through the loop: y = S d with the exact dead time.
+
+    Attributes
+    ----------
+    t : ndarray  Time. [s]
+    d : ndarray  Disturbance (mean and trend removed). [% of PV range]
+    y : ndarray  PV deviation with the loop in automatic. [% of PV range]
+    residual_amplitude : float  99.7th percentile of |y - mean(y)|. [% of PV range]
+    residual_std : float  Standard deviation of y (time domain). [% of PV range]
+    residual_std_freq : float  sqrt(integral of psd |S(jw)|^2 dw) (frequency domain). [% of PV range]
+    residual_ok : bool or None  residual_amplitude <= allowed; None without ``allowed``.
+    note : str
+    """
+
+    t: np.ndarray
+    d: np.ndarray
+    y: np.ndarray
+    residual_amplitude: float
+    residual_std: float
+    residual_std_freq: float
+    residual_ok: bool | None
+    note: str = ""
+
+
+# --------------------------------------------------------------------------- reading
+
+def _show(text: str) -> str:
+    text = text if len(text) <= 40 else text[:37] + "..."
+    return repr(text)
+
+
+def _parse_float(text: str) -> float | None:
+    try:
+        v = float(text.strip().replace("\u2212", "-"))
+    except ValueError:
+        return None
+    return v
+
+
+def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | None = None,
+                policy: Policy = Policy(), name: str | None = None) -> Record:
+    """Read and validate a disturbance record.
+
+    Parameters
+    ----------
+    path : str or Path
+        The CSV file.
+    pv_lo, pv_hi : float, optional
+        PV range, needed for a ``value_eu`` column. [engineering units]
+    policy : Policy
+        ``min_samples``, ``uniform_tolerance`` and ``max_gap_s`` apply.
+    name : str, optional
+        How messages name the file (default: ``path`` as given).
+
+    Returns
+    -------
+    Record
+
+    Raises
+    ------
+    RecordError
+        Naming the file, the line and the column of every problem (at most 20 shown).
+    """
+    shown = name or str(path)
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            rows = list(csv.reader(fh))
+    except FileNotFoundError:
+        raise RecordError(f"{shown}: file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise RecordError(f"{shown}: cannot be read as UTF-8 text ({type(exc).__name__})") from None
+    lines = [(i + 1, r) for i, r in enumerate(rows)
+             if any(c.strip() for c in r) and not r[0].lstrip().startswith("#")]
+    if not lines:
+        raise RecordError(f"{shown}: empty file; expected a header line such as 'time_s,value'")
+    hline, header = lines[0]
+    keys = [h.strip().lower() for h in header]
+    tcols = [k for k in keys if k in TIME_COLUMNS]
+    vcols = [k for k in keys if k in VALUE_COLUMNS]
+    if len(tcols) != 1 or len(vcols) != 1:
+        raise RecordError(f"{shown} line {hline}: the header needs exactly one time column "
+                          f"({', '.join(TIME_COLUMNS)}) and one value column ({', '.join(VALUE_COLUMNS)}); "
+                          f"found {', '.join(_show(h) for h in header)}")
+    tname, vname = tcols[0], vcols[0]
+    ti, vi = keys.index(tname), keys.index(vname)
+    notes: list[str] = []
+    if vname == "value_eu":
+        if pv_lo is None or pv_hi is None or not pv_hi > pv_lo:
+            raise RecordError(f"{shown}: column value_eu needs the row's pv_lo and pv_hi (pv_hi > pv_lo) "
+                              f"to convert to % of range")
+        notes.append(f"converted from engineering units with range {pv_lo:g} to {pv_hi:g}")
+    problems: list[str] = []
+    ts: list[float] = []
+    vs: list[float] = []
+    lnums: list[int] = []
+    tz_seen: set[bool] = set()
+    t0: _dt.datetime | None = None
+    start = ""
+    for ln, row in lines[1:]:
+        where = f"{shown} line {ln}"
+        if len(row) <= max(ti, vi):
+            problems.append(f"{where}: {len(row)} cells, expected {len(keys)}")
+            continue
+        traw, vraw = row[ti].strip(), row[vi].strip()
+        bad = False
+        if tname == "timestamp":
+            try:
+                stamp = _dt.datetime.fromisoformat(traw)
+            except ValueError:
+                problems.append(f"{where} ({tname}): not an ISO 8601 time: {_show(traw)}")
+                bad = True
+            else:
+                tz_seen.add(stamp.tzinfo is not None)
+                if len(tz_seen) > 1:
+                    problems.append(f"{where} ({tname}): time zone given on some lines and not on others")
+                    bad = True
+                else:
+                    if t0 is None:
+                        t0, start = stamp, traw
+                    tval = (stamp - t0).total_seconds()
+        else:
+            tv = _parse_float(traw)
+            if traw == "":
+                problems.append(f"{where} ({tname}): empty")
+                bad = True
+            elif tv is None or not math.isfinite(tv):
+                problems.append(f"{where} ({tname}): not a number: {_show(traw)}")
+                bad = True
+            else:
+                tval = tv * (60.0 if tname == "time_min" else 1.0)
+        vv = _parse_float(vraw)
+        if vraw == "":
+            problems.append(f"{where} ({vname}): empty")
+            bad = True
+        elif vv is None or not math.isfinite(vv):
+            problems.append(f"{where} ({vname}): not a number: {_show(vraw)}")
+            bad = True
+        if bad:
+            continue
+        ts.append(tval)
+        vs.append(vv)
+        lnums.append(ln)
+    t = np.asarray(ts, float)
+    v = np.asarray(vs, float)
+    if len(t) > 1:
+        dts = np.diff(t)
+        for k in np.flatnonzero(dts <= 0)[:MAX_SHOWN + 1]:
+            problems.append(f"{shown} line {lnums[k + 1]} ({tname}): time not increasing "
+                            f"({t[k + 1]:g} s after {t[k]:g} s, relative to the first sample)")
+    n_total = len(problems)
+    if not problems:
+        if len(t) < policy.min_samples:
+            problems.append(f"{shown}: {len(t)} sample{'s' if len(t) != 1 else ''}; "
+                            f"at least {policy.min_samples} are needed")
+        else:
+            dts = np.diff(t)
+            med = float(np.median(dts))
+            gaps = np.flatnonzero(dts > policy.max_gap_s * med)
+            for k in gaps:
+                problems.append(f"{shown} lines {lnums[k]}-{lnums[k + 1]} ({tname}): gap of {dts[k]:g} s, "
+                                f"more than {policy.max_gap_s:g} x the median interval {med:g} s")
+    if problems:
+        n_total = len(problems)
+        shown_p = problems[:MAX_SHOWN]
+        more = f"; ... and {n_total - MAX_SHOWN} more" if n_total > MAX_SHOWN else ""
+        raise RecordError("; ".join(shown_p) + more)
+    if vname == "value_eu":
+        v = (v - pv_lo) / (pv_hi - pv_lo) * 100.0
+    t = t - t[0]
+    dts = np.diff(t)
+    med = float(np.median(dts))
+    jitter = float(np.max(np.abs(dts - med)) / med)
+    if jitter > policy.uniform_tolerance:
+        n = int(math.floor(t[-1] / med + 1e-9)) + 1
+        tu = np.arange(n) * med
+        v = np.interp(tu, t, v)
+        notes.append(f"sampling not uniform (intervals {dts.min():g} to {dts.max():g} s); "
+                     f"resampled every {med:g} s by linear interpolation")
+        t = tu
+    else:
+        t = np.arange(len(t)) * med
+    return Record(shown, t, v, med, tuple(notes), start)
+
+
+# --------------------------------------------------------------------------- analysis
+
+def welch_segment(n: int) -> int:
+    """Welch segment length for ``n`` samples: 2**floor(log2(n/4)), within [min(n, 32), n]. [-]"""
+    seg = 2 ** int(math.floor(math.log2(max(n / 4.0, 1.0))))
+    return int(min(n, max(seg, min(n, 32))))
+
+
+def detrend(t: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, float]:
+    """x minus its least-squares straight line; returns (residual, slope [units/s])."""
+    tc = t - t.mean()
+    den = float(np.dot(tc, tc))
+    slope = float(np.dot(tc, x - x.mean()) / den) if den > 0 else 0.0
+    return x - x.mean() - slope * tc, slope
+
+
+def amplitude_of(x: np.ndarray) -> float:
+    """The amplitude statistic: 99.7th percentile of |x - mean(x)|. [same unit as x]"""
+    return float(np.percentile(np.abs(x - np.mean(x)), AMPLITUDE_PERCENTILE))
+
+
+def analyse_record(record: Record, allowed_amplitude: float | None, policy: Policy = Policy()) -> RecordAnalysis:
+    """Band, amplitude and required attenuation of a record (see the module notes).
+
+    Parameters
+    ----------
+    record : Record
+    allowed_amplitude : float or None
+        Largest acceptable amplitude of the PV deviation. [% of PV range]
+    policy : Policy
+        ``band_energy_fraction`` applies. [-]
+    """
+    d, slope = detrend(record.t, record.values)
+    n = len(d)
+    seg = welch_segment(n)
+    f, p = welch(d, fs=1.0 / record.dt, window="hann", nperseg=seg, noverlap=seg // 2,
+                 detrend=False, scaling="density", return_onesided=True)
+    w = 2.0 * math.pi * f
+    psd = p / (2.0 * math.pi)
+    dw = float(w[1] - w[0]) if len(w) > 1 else float("nan")
+    energy = psd * dw
+    total = float(energy.sum())
+    notes = list(record.notes)
+    if total > 0:
+        cum = np.cumsum(energy) / total
+        k = int(np.argmax(cum >= policy.band_energy_fraction - 1e-12))
+        band = float(w[k])
+    else:
+        band = float("nan")
+        notes.append("record is constant after trend removal: no band")
+    amp = amplitude_of(d)
+    std = float(np.std(d))
+    peak = float(np.max(np.abs(d)))
+    if allowed_amplitude is None or not (allowed_amplitude > 0):
+        att = float("nan")
+        need = False
+        notes.append("no allowed amplitude given: attenuation not derived")
+    else:
+        att = 20.0 * math.log10(amp / allowed_amplitude) if amp > 0 else float("-inf")
+        need = att > 0
+        if not need:
+            notes.append(f"no attenuation needed: amplitude {amp:.3g} % <= allowed {allowed_amplitude:.3g} %")
+    return RecordAnalysis(band, att, amp, std, peak, slope, w, psd, dw, need,
+                          allowed_amplitude, d, record.dt, tuple(notes))
+
+
+# --------------------------------------------------------------------------- residual
+
+def _kernels(models: Sequence[LoopModel], dts: np.ndarray, lengths: np.ndarray
+             ) -> tuple[list[np.ndarray | None], np.ndarray, list[str]]:
+    """Hat responses gamma_i = y(i dt) of the output-disturbance loop, and S(0), per loop."""
+    n = len(models)
+    out: list[np.ndarray | None] = [None] * n
+    notes = [""] * n
+    s0 = np.full(n, np.nan)
+    batch, errors = td.build_batch(models, "output")
+    for i, msg in errors.items():
+        notes[i] = f"residual not simulated: {msg}"
+    if batch is None:
+        return out, s0, notes
+    ok = [i for i in range(n) if i not in errors]
+    s0[ok] = td.final_values(batch)[0]
+    tc = np.array([td.characteristic_time(models[i]) for i in ok])
+    dt = dts[ok]
+    klen = np.minimum(lengths[ok], np.ceil(4.0 * td.HORIZON_FACTOR * tc / dt) + 2).astype(int)
+    horizon = (klen + 1) * dt
+    plans = td.plan_batch(batch, horizon, divisors=dt)
+    h = np.array([p.h for p in plans])
+    msteps = np.rint(dt / h).astype(int)
+    need = (klen + 1) * msteps
+    cut = need > td.N_CAP
+    klen = np.where(cut, td.N_CAP // msteps - 1, klen)
+    nsteps = int(np.max((klen + 1) * msteps))
+    if np.any(klen < 1):
+        for j in np.flatnonzero(klen < 1):
+            notes[ok[j]] = "residual not simulated: record interval too long for the loop's dead time"
+    res = td.simulate(batch, h, nsteps, ext=lambda k: np.maximum(0.0, 1.0 - np.abs(k * h - dt) / dt))
+    for j, i in enumerate(ok):
+        if klen[j] < 1:
+            continue
+        idx = (np.arange(klen[j]) + 1) * msteps[j]
+        out[i] = res.yp[idx, 0, j]
+        if cut[j]:
+            notes[i] = f"residual kernel cut at {klen[j] * dt[j]:.4g} s by the step count"
+    return out, s0, notes
+
+
+def _residual_from(t: np.ndarray, d: np.ndarray, kern: np.ndarray, s0: float, model: LoopModel,
+                   an: RecordAnalysis | None, allowed: float | None, note: str) -> Residual:
+    x = d - d[0]
+    y = s0 * d[0] + fftconvolve(x, kern)[:len(d)] if len(kern) else np.full(len(d), s0 * d[0])
+    amp = amplitude_of(y)
+    std = float(np.std(y))
+    sf = float("nan")
+    if an is not None and len(an.freqs) > 1:
+        w = an.freqs[1:]                     # the w = 0 bin holds no variance after mean removal
+        S = model.S(w)
+        sf = float(math.sqrt(np.sum(an.psd[1:] * np.abs(S) ** 2) * an.resolution_rad_s))
+    ok = None if allowed is None or not allowed > 0 else bool(amp <= allowed)
+    return Residual(t, d, y, amp, std, sf, ok, note)
+
+
+def predict_residual(model: LoopModel, record: Record | RecordAnalysis, allowed_amplitude: float | None,
+                     policy: Policy = Policy()) -> Residual:
+    """The record through S with the loop's model and tuning, with the exact dead time.
+
+    Parameters
+    ----------
+    model : LoopModel
+    record : Record or RecordAnalysis
+        The disturbance as logged in manual (a Record is analysed first). Mean and
+        trend are removed, as in :func:`analyse_record`.
+    allowed_amplitude : float or None
+        [% of PV range]
+
+    Notes
+    -----
+    The loop is simulated from rest with the record's first value held before t = 0
+    (steady state S(0) d(0)). The response to one linear-interpolation basis function
+    of the record (a triangle of half-width dt) is simulated with the exact delay;
+    by linearity the residual is its convolution with the record, which is exact for
+    a record that is linear between samples. The kernel is cut where the loop has
+    settled (16 Tc, see :mod:`audit.timedomain`).
+    """
+    an = record if isinstance(record, RecordAnalysis) else analyse_record(record, allowed_amplitude, policy)
+    return _residuals([model], [an], [allowed_amplitude])[0]
+
+
+def _residuals(models: Sequence[LoopModel], analyses: Sequence[RecordAnalysis],
+               allowed: Sequence[float | None]) -> list[Residual]:
+    dts = [a.dt for a in analyses]
+    lengths = np.array([len(a.detrended) for a in analyses])
+    kern, s0, notes = _kernels(models, np.asarray(dts, float), lengths)
+    out = []
+    for i, (m, a) in enumerate(zip(models, analyses)):
+        t = np.arange(len(a.detrended)) * dts[i]
+        if kern[i] is None:
+            nan = float("nan")
+            sf = _residual_from(t, a.detrended, np.zeros(0), 0.0, m, a, allowed[i], "").residual_std_freq
+            out.append(Residual(t, a.detrended, np.full(len(t), np.nan), nan, nan, sf, None, notes[i]))
+        else:
+            out.append(_residual_from(t, a.detrended, kern[i], float(s0[i]), m, a, allowed[i], notes[i]))
+    return out
+
+
+# --------------------------------------------------------------------------- pipeline stages
+
+def _append(res: pd.DataFrame, label, col: str, text: str) -> None:
+    old = res.at[label, col] if col in res.columns else ""
+    old = "" if old is None or (isinstance(old, float) and math.isnan(old)) else str(old)
+    res.at[label, col] = f"{old}; {text}" if old else text
+
+
+def _confined(folder: Path, target: str) -> tuple[Path, str]:
+    """The record's resolved path and its name relative to the inventory folder; RecordError outside it."""
+    p = Path(target)
+    full = (p if p.is_absolute() else folder / p).resolve()
+    if full != folder and folder not in full.parents:
+        raise RecordError(f"{p.name}: path leads outside the inventory's folder; keep records in that folder")
+    return full, full.relative_to(folder).as_posix()
+
+
+def analyse_records(audit) -> None:
+    """Pipeline stage: read and analyse every row's disturbance record.
+
+    Adds :data:`DIST_COLUMNS`; stores each :class:`RecordAnalysis` in
+    ``audit.extras['records'][row.index]``. A bad record puts its message in
+    ``dist_note`` and appends it to ``message``; the row's other results stay.
+    """
+    res = audit.results
+    inv = audit.inventory
+    policy = inv.policy
+    folder = Path(inv.path).resolve().parent
+    store = audit.extras.setdefault("records", {})
+    for c in DIST_COLUMNS:
+        if c not in res.columns:
+            res[c] = "" if c == "dist_note" else np.nan
+    res["dist_note"] = res["dist_note"].astype(object)
+    for row in inv.rows:
+        if not row.disturbance_file:
+            continue
+        label = res.index[row.index]
+        try:
+            full, shown = _confined(folder, row.disturbance_file)
+            rec = read_record(full, row.pv_lo, row.pv_hi, policy, name=shown)
+        except RecordError as exc:
+            msg = f"disturbance record: {exc}"
+            res.at[label, "dist_note"] = msg
+            _append(res, label, "message", msg)
+            continue
+        an = analyse_record(rec, row.allowed_amplitude, policy)
+        store[row.index] = an
+        notes = list(an.notes)
+        if row.band_rad_s is not None or row.attenuation_db is not None:
+            notes.append("the row's band_rad_s/attenuation_db govern; derived values shown for comparison")
+        res.at[label, "dist_band_rad_s"] = an.band_rad_s
+        res.at[label, "dist_attenuation_db"] = an.attenuation_db
+        res.at[label, "dist_amplitude"] = an.amplitude
+        res.at[label, "dist_std"] = an.std
+        res.at[label, "dist_peak"] = an.peak
+        res.at[label, "dist_trend_per_s"] = an.trend
+        res.at[label, "dist_note"] = "; ".join(notes)
+
+
+def add_residuals(audit) -> None:
+    """Pipeline stage: residual columns for rows with an analysed record and a model.
+
+    Adds :data:`RESIDUAL_COLUMNS`; :class:`Residual` objects go to
+    ``audit.extras['residuals'][row.index]``. Run after :func:`analyse_records`
+    (and after the frequency stage: rows whose ``stable`` is False are skipped).
+    """
+    res = audit.results
+    records = audit.extras.get("records", {})
+    store = audit.extras.setdefault("residuals", {})
+    for c in RESIDUAL_COLUMNS:
+        if c not in res.columns:
+            res[c] = np.nan if c != "residual_ok" else None
+    res["residual_ok"] = res["residual_ok"].astype(object)
+    rows, models, analyses, allowed = [], [], [], []
+    for row in audit.inventory.rows:
+        an = records.get(row.index)
+        m = audit.models[row.index] if row.index < len(audit.models) else None
+        if an is None or m is None:
+            continue
+        label = res.index[row.index]
+        if "stable" in res.columns and res.at[label, "stable"] is False:
+            _append(res, label, "dist_note", "closed loop unstable: no residual")
+            continue
+        rows.append(row)
+        models.append(m)
+        analyses.append(an)
+        allowed.append(row.allowed_amplitude)
+    if not rows:
+        return
+    out = _residuals(models, analyses, allowed)
+    for row, r in zip(rows, out):
+        label = res.index[row.index]
+        store[row.index] = r
+        res.at[label, "residual_amplitude"] = r.residual_amplitude
+        res.at[label, "residual_std"] = r.residual_std
+        res.at[label, "residual_std_freq"] = r.residual_std_freq
+        res.at[label, "residual_ok"] = r.residual_ok
+        if r.note:
+            _append(res, label, "dist_note", r.note)
+
+
+# --------------------------------------------------------------------------- command
+
+def plot_spectrum(an: RecordAnalysis, out: str | Path, title: str = "") -> None:
+    """Write an SVG of the spectrum with the band edge marked (deterministic output)."""
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    with matplotlib.rc_context({"svg.hashsalt": "plant-audit", "svg.fonttype": "path"}):
+        fig, ax = plt.subplots(figsize=(6.4, 3.6))
+        keep = an.freqs > 0
+        ax.loglog(an.freqs[keep], np.maximum(an.psd[keep], 1e-300), color="0.2", lw=1.2, label="Welch spectrum")
+        if math.isfinite(an.band_rad_s) and an.band_rad_s > 0:
+            ax.axvline(an.band_rad_s, color="tab:blue", ls="--", lw=1.2,
+                       label=f"band edge {an.band_rad_s:.3g} rad/s")
+        ax.set_xlabel("frequency [rad/s]")
+        ax.set_ylabel("PSD [%$^2$ s/rad]")
+        ax.set_title(title, fontsize=10)
+        ax.grid(True, which="both", lw=0.3, color="0.85")
+        ax.legend(fontsize=8)
+        fig.tight_layout()
+        fig.savefig(out, format="svg", metadata={"Date": None})
+        plt.close(fig)
+
+
+def disturbance_command(path: str, allowed: float, out: str | None = None) -> int:
+    """``plant-audit disturbance RECORD.csv --allowed X [--plot PATH]``.
+
+    Prints the derived requirement and writes the spectrum plot (default
+    ``<stem>-spectrum.svg`` beside the record). Returns 0, or 2 with a one-line
+    message on stderr for a bad record.
+    """
+    try:
+        rec = read_record(path)
+    except RecordError as exc:
+        print(f"plant-audit disturbance: {exc}", file=sys.stderr)
+        return 2
+    an = analyse_record(rec, allowed)
+    target = Path(out) if out else Path(path).with_name(Path(path).stem + "-spectrum.svg")
+    print(f"record          {rec.name}  ({len(rec.t)} samples every {rec.dt:g} s)")
+    print(f"band wd         {an.band_rad_s:.4g} rad/s  (resolution {an.resolution_rad_s:.3g} rad/s)")
+    print(f"attenuation A   {an.attenuation_db:.3g} dB  (allowed amplitude {allowed:g} % of range)")
+    print(f"amplitude       {an.amplitude:.4g} % of range (99.7th percentile of |d - mean|)")
+    print(f"std             {an.std:.4g} % of range")
+    print(f"peak            {an.peak:.4g} % of range")
+    print(f"trend           {an.trend:.4g} % of range per s (removed)")
+    for note in an.notes:
+        print(f"note            {note}")
+    try:
+        plot_spectrum(an, target, title=Path(path).name)
+    except OSError as exc:
+        print(f"plant-audit disturbance: cannot write {target}: {exc.strerror}", file=sys.stderr)
+        return 2
+    print(f"plot            {target}")
+    return 0
