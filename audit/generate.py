@@ -231,7 +231,8 @@ def _one_loop(rng: np.random.Generator, area: Area, kind: str, tag: str) -> dict
     if rng.random() < 0.1:
         row["d_filter"] = 0.125
     scale = p["_theta"] + 0.1 * max(p["_tau"], 1.0)
-    row["sample_s"] = _sig(min(float(rng.choice([0.25, 0.5, 1.0, 2.0, 5.0])), max(0.1, 0.2 * scale)), 2)
+    if rng.random() < 0.85:      # blank: a continuous (analogue or very fast) controller
+        row["sample_s"] = _sig(min(float(rng.choice([0.25, 0.5, 1.0, 2.0, 5.0])), max(0.1, 0.2 * scale)), 2)
     if rng.random() < 0.2:
         row["pv_filter_s"] = _sig(_loguniform(rng, 0.05, 0.5) * max(p["_theta"], 0.5))
     if rng.random() < 0.35:
