@@ -575,7 +575,8 @@ def add_residuals(audit) -> None:
         if an is None or m is None:
             continue
         label = res.index[row.index]
-        if "stable" in res.columns and res.at[label, "stable"] is False:
+        st = res.at[label, "stable"] if "stable" in res.columns else None
+        if st is not None and not pd.isna(st) and not bool(st):
             _append(res, label, "dist_note", "closed loop unstable: no residual")
             continue
         rows.append(row)

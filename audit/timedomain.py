@@ -917,8 +917,7 @@ def step_figures(models: Sequence[LoopModel | None], policy: Policy = Policy(),
     n = len(models)
     cols = {c: np.full(n, np.nan) for c in STEP_COLUMNS[:-1]}
     notes = [""] * n
-    stab = None if stable is None else [None if (s is None or (isinstance(s, float) and math.isnan(s))) else bool(s)
-                                        for s in stable]
+    stab = None if stable is None else [None if pd.isna(s) else bool(s) for s in stable]
     todo: list[int] = []
     for i, m in enumerate(models):
         if m is None:
@@ -1056,8 +1055,7 @@ def add_step_results(audit) -> None:
     res = audit.results
     stable = None
     if "stable" in res.columns:
-        stable = [None if (v is None or (isinstance(v, float) and math.isnan(v))) else bool(v)
-                  for v in res["stable"].tolist()]
+        stable = [None if pd.isna(v) else bool(v) for v in res["stable"].tolist()]
     figs = step_figures(audit.models, audit.inventory.policy, stable)
     for c in STEP_COLUMNS:
         col = figs[c].to_numpy()
