@@ -1,0 +1,296 @@
+"""Rendering: the one jinja2 environment, report.html, report.pdf and results.xlsx.
+
+The report model (:mod:`audit.report`) is turned into one self-contained HTML
+page (inline CSS and SVG, no script, nothing fetched from anywhere). The PDF is
+the same page laid out by WeasyPrint with the print style sheet; WeasyPrint may
+read ``data:`` URIs and files inside the output folder and nothing else
+(:class:`OutputFolderFetcher`).
+
+Many loops: every loop needing attention gets a detail section in the HTML; the
+PDF carries the first :data:`PDF_DETAIL_LIMIT` of them in work-list order and
+says so. Plots are drawn only for detail sections.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import functools
+import math
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from concurrent.futures import ProcessPoolExecutor
+from typing import Any, Callable, Iterator
+from urllib.parse import urlsplit
+from urllib.request import url2pathname
+
+import jinja2
+from markupsafe import Markup
+
+from .report import STATUS_ORDER, Report, build_report
+
+TEMPLATES = Path(__file__).resolve().parent.parent / "templates"
+"""Folder of the report templates (top level of the repository)."""
+
+PDF_DETAIL_LIMIT = 100
+"""Most detail sections in report.pdf (work-list order); the HTML has them all."""
+
+PLOT_LIMIT = 100
+"""Detail sections with plots, in work-list order (HTML and PDF); the rest show their figures in tables."""
+
+PDF_TABLE_LIMIT = 600
+"""Most lines of the all-loops table and of the work list in report.pdf."""
+
+PAPERS = {"a4": "A4", "letter": "letter"}
+
+STATUS_SYMBOLS: dict[str, str] = {
+    "unstable": "\u2716", "fails": "\u25b2", "marginal": "\u25c6", "invalid": "\u25cb",
+    "not evaluated": "\u2013", "passes": "\u2713",
+}
+"""A shape per status, shown beside the word (never colour alone)."""
+
+VERDICT_SYMBOLS: dict[str, str] = {
+    "within": "\u2713", "stable": "\u2713", "near": "\u25c6", "beyond": "\u25b2", "unstable": "\u2716",
+}
+
+
+# ----------------------------------------------------------------------------- filters
+
+
+def fmt_num(value: Any, digits: int = 3) -> str:
+    """A number as text for the report.
+
+    Parameters
+    ----------
+    value : Any
+        None/NaN gives an en dash, infinities the infinity sign, booleans yes/no,
+        text is returned as it is (the template escapes it).
+    digits : int
+        Significant digits. [-]
+    """
+    if value is None:
+        return "\u2013"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        if math.isnan(value):
+            return "\u2013"
+        if math.isinf(value):
+            return "\u221e" if value > 0 else "\u2212\u221e"
+        a = abs(value)
+        if a == 0:
+            return "0"
+        if a >= 10 ** digits:
+            return f"{value:,.0f}".replace("-", "\u2212")
+        return f"{value:.{digits}g}".replace("-", "\u2212")
+    if isinstance(value, (tuple, list)):
+        return ", ".join(fmt_num(v, digits) for v in value)
+    try:
+        return fmt_num(float(value), digits) if not isinstance(value, str) else value
+    except (TypeError, ValueError):
+        return str(value)
+
+
+def fmt_status(status: str) -> str:
+    """Symbol and word of a status, e.g. ``'\u25b2 fails'``."""
+    sym = STATUS_SYMBOLS.get(status, "")
+    return f"{sym} {status}" if sym else status
+
+
+def fmt_verdict(verdict: str) -> str:
+    """Symbol and word of a check's verdict."""
+    sym = VERDICT_SYMBOLS.get(verdict, "")
+    return f"{sym} {verdict}" if sym else verdict
+
+
+def css_class(text: str) -> str:
+    """A status or verdict word as a CSS class name."""
+    return "s-" + "".join(ch if ch.isalnum() else "-" for ch in str(text).lower())
+
+
+@functools.lru_cache(maxsize=4)
+def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
+    """The one jinja2 environment: autoescape on for every template, strict undefined, filters registered.
+
+    Parameters
+    ----------
+    folder : str
+        Template folder.
+    """
+    env = jinja2.Environment(
+        loader=jinja2.FileSystemLoader(folder),
+        autoescape=True,
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+        keep_trailing_newline=True,
+    )
+    env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class)
+    return env
+
+
+# ----------------------------------------------------------------------------- html
+
+
+@dataclass(frozen=True)
+class Rendered:
+    """The drawings of a report, as markup ready to inline, keyed by loop anchor."""
+
+    loops: dict[str, tuple[tuple[str, Markup], ...]]
+    status_mix: Markup | None
+    trend: Markup | None
+
+
+def draw(report: Report, mapper: Callable = map) -> Rendered:
+    """Draw the plots of the report: every detail section that carries plot data, the summary charts.
+
+    Parameters
+    ----------
+    report : Report
+        The report model.
+    mapper : callable
+        ``map`` or a process pool's ``map``, applied to :func:`audit.plots.loop_drawings`.
+    """
+    from . import plots
+
+    todo = [d for d in report.details if d.plots is not None]
+    loops = {}
+    for d, drawings in zip(todo, mapper(plots.loop_drawings, [d.plots for d in todo])):
+        # matplotlib escapes all text it writes into the SVG, so the markup is ours alone
+        loops[d.anchor] = tuple((dr.caption, Markup(dr.svg)) for dr in drawings)
+    mix = None
+    if report.by_area:
+        mix = Markup(plots.status_mix(report.by_area, report.statuses).svg)
+    trend = None
+    h = report.history
+    if h is not None and len(h.trend_dates) >= 1 and h.trend:
+        trend = Markup(plots.status_trend(h.trend_dates, h.trend).svg)
+    return Rendered(loops, mix, trend)
+
+
+def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False) -> str:
+    """The report as one self-contained HTML page.
+
+    Parameters
+    ----------
+    report : Report
+        The report model.
+    rendered : Rendered
+        Its drawings (:func:`draw`).
+    paper : str
+        ``a4`` or ``letter`` (the page size of the print style sheet).
+    for_print : bool
+        The PDF's variant: at most :data:`PDF_DETAIL_LIMIT` detail sections and
+        :data:`PDF_TABLE_LIMIT` lines per long table, each cut said in the text.
+    """
+    details = report.details
+    table_limit = None
+    if for_print:
+        details = details[:PDF_DETAIL_LIMIT]
+        table_limit = PDF_TABLE_LIMIT
+    return environment().get_template("base.html.j2").render(
+        r=report,
+        details=details,
+        drawings=rendered,
+        paper=PAPERS.get(paper, "A4"),
+        for_print=for_print,
+        table_limit=table_limit,
+        detail_anchors=frozenset(d.anchor for d in details),
+        status_order=STATUS_ORDER,
+    )
+
+
+# ----------------------------------------------------------------------------- pdf
+
+
+@dataclass(frozen=True)
+class OutputFolderFetcher:
+    """A WeasyPrint URL fetcher that reads ``data:`` URIs and files inside ``root``, and refuses all else."""
+
+    root: Path
+
+    def __call__(self, url: str, timeout: float = 10, ssl_context: Any = None, http_headers: Any = None) -> dict:
+        from weasyprint.urls import default_url_fetcher
+
+        scheme = urlsplit(url).scheme.lower()
+        if scheme == "data":
+            return default_url_fetcher(url, timeout=timeout)
+        if scheme == "file":
+            path = Path(url2pathname(urlsplit(url).path)).resolve()
+            root = self.root.resolve()
+            if path.is_relative_to(root) and path.is_file():
+                return {"string": path.read_bytes(), "redirected_url": url}
+        raise ValueError(f"refused to fetch {url!r}: the report reads only data: URIs and its output folder")
+
+
+def write_pdf(html: str, path: Path, out_dir: Path) -> Path:
+    """Lay out ``html`` with WeasyPrint into ``path``.
+
+    Parameters
+    ----------
+    html : str
+        The print variant of the page (:func:`render_html` with ``for_print``).
+    path : Path
+        The PDF to write.
+    out_dir : Path
+        The output folder: the base URL and the only place files may be read from.
+    """
+    import weasyprint
+
+    doc = weasyprint.HTML(string=html, base_url=str(out_dir.resolve()) + "/",
+                          url_fetcher=OutputFolderFetcher(out_dir))
+    doc.write_pdf(path)
+    return path
+
+
+# ----------------------------------------------------------------------------- outputs
+
+
+@contextlib.contextmanager
+def _mapper(jobs: int) -> Iterator[Callable]:
+    """``map``, or a process pool's ``map`` when more than one job is allowed."""
+    if jobs is None or jobs <= 1:
+        yield map
+        return
+    with ProcessPoolExecutor(max_workers=jobs) as ex:
+        yield functools.partial(ex.map, chunksize=2)
+
+
+def write_outputs(audit) -> dict[str, Path]:
+    """Write report.html, report.pdf (unless ``options.pdf`` is false) and results.xlsx.
+
+    Parameters
+    ----------
+    audit : Audit
+        A finished run.
+
+    Returns
+    -------
+    dict
+        File name -> path written, in ``audit.options.out_dir``.
+    """
+    from .xlsx_out import write_results_xlsx
+
+    out = Path(audit.options.out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    t0 = time.perf_counter()
+    limit = getattr(audit.options, "plot_limit", PLOT_LIMIT)
+    with _mapper(audit.options.jobs) as mapper:
+        report = build_report(audit, plot_limit=limit, mapper=mapper)
+        rendered = draw(report, mapper=mapper)
+    written: dict[str, Path] = {}
+    html = render_html(report, rendered, paper=audit.options.paper)
+    (out / "report.html").write_text(html, encoding="utf-8")
+    written["report.html"] = out / "report.html"
+    audit.timings["report.html"] = time.perf_counter() - t0
+    if audit.options.pdf:
+        t0 = time.perf_counter()
+        pdf_html = render_html(report, rendered, paper=audit.options.paper, for_print=True)
+        written["report.pdf"] = write_pdf(pdf_html, out / "report.pdf", out)
+        audit.timings["report.pdf"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    written["results.xlsx"] = write_results_xlsx(audit, report, out / "results.xlsx")
+    audit.timings["results.xlsx"] = time.perf_counter() - t0
+    return written

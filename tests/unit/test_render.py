@@ -1,0 +1,134 @@
+"""Rendering: filters, the jinja2 environment, the restricted fetcher, deterministic SVG, the HTML page.
+
+Regression tests of this tool's own presentation rules (common practice), apart from
+the two checks marked as validation.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+
+import numpy as np
+import pytest
+
+from audit import plots
+from audit.render import (OutputFolderFetcher, draw, environment, fmt_num, fmt_status, render_html)
+from audit.report import Tally, build_report
+
+from .test_report_support import HOSTILE_AREA, HOSTILE_SERVICE, HOSTILE_TAG, make_audit
+
+
+@pytest.mark.parametrize("value, text", [
+    (None, "\u2013"), (math.nan, "\u2013"), (math.inf, "\u221e"), (-math.inf, "\u2212\u221e"),
+    (True, "yes"), (3, "3"), (1.23456, "1.23"), (-0.5, "\u22120.5"), (12345.6, "12,346"),
+    (0.0, "0"), (2.5e-5, "2.5e\u221205"), ((1.0, 0.5), "1, 0.5"), ("FC-1", "FC-1"), (np.float64(2.0), "2"),
+])
+def test_number_filter(value, text):
+    assert fmt_num(value) == text
+
+
+def test_status_is_given_by_word_and_symbol():
+    for s in ("unstable", "fails", "marginal", "passes", "invalid"):
+        word_and_symbol = fmt_status(s)
+        assert word_and_symbol.endswith(s) and len(word_and_symbol) > len(s) + 1
+
+
+def test_environment_escapes_whatever_the_template_name():
+    env = environment()
+    assert env.autoescape is True
+    assert env.from_string("{{ x }}").render(x="<script>") == "&lt;script&gt;"
+    assert {"num", "status", "verdict", "css"} <= set(env.filters)
+
+
+def test_fetcher_reads_data_uris_and_the_output_folder_only(tmp_path):
+    inside = tmp_path / "out"
+    inside.mkdir()
+    (inside / "a.css").write_text("p{}")
+    (tmp_path / "secret.txt").write_text("no")
+    f = OutputFolderFetcher(inside)
+    assert f((inside / "a.css").as_uri())["string"] == b"p{}"
+    got = f("data:text/plain;base64,aGk=")
+    assert (got.get("string") or got["file_obj"].read()) == b"hi"
+    for url in ("http://example.invalid/font.woff", "https://example.invalid/x.png",
+                (tmp_path / "secret.txt").as_uri(), (inside / ".." / "secret.txt").as_uri(), "ftp://x/y"):
+        with pytest.raises(ValueError, match="refused"):
+            f(url)
+
+
+@pytest.fixture(scope="module")
+def page(tmp_path_factory):
+    audit = make_audit(tmp_path_factory.mktemp("out"))
+    report = build_report(audit, plot_limit=2)
+    return audit, report, render_html(report, draw(report))
+
+
+def test_html_escapes_inventory_text(page):
+    _, _, html = page
+    assert HOSTILE_TAG not in html and "<b>" not in html
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
+    assert "&lt;b&gt;" in html
+    assert "=HYPERLINK(&#34;http://example.invalid/x&#34;" in html or HOSTILE_SERVICE not in html
+    assert len(re.findall(r"<script", html, flags=re.I)) == 0
+
+
+def test_html_is_self_contained(page):
+    _, _, html = page
+    assert not re.search(r"""(src|href)\s*=\s*["']?(https?:|//)""", html, flags=re.I)
+    assert "@import" not in html and "url(http" not in html
+    assert "<link" not in html
+
+
+def test_html_names_every_loop_and_carries_the_caution(page):
+    audit, _, html = page
+    for r in audit.inventory.rows:
+        assert (r.tag if r.tag != HOSTILE_TAG else "&lt;script&gt;alert(1)&lt;/script&gt;") in html
+    for words in ("Advisory only", "management-of-change", "safety instrumented function", "Local rules govern",
+                  "licensed"):
+        assert words in html
+
+
+def test_html_ids_are_unique(page):
+    _, _, html = page
+    ids = re.findall(r'\sid="([^"]+)"', html)
+    assert len(ids) == len(set(ids)), [i for i in ids if ids.count(i) > 1][:5]
+    for target in re.findall(r'href="#([^"]+)"', html):
+        assert target in ids, target
+
+
+def test_ranking_fallback_is_said(page):
+    assert "ranking stage did not run" in page[2]
+
+
+def test_svg_is_deterministic_and_ids_are_prefixed(page):
+    _, report, _ = page
+    d = report.details[0]
+    a, b = plots.loop_drawings(d.plots), plots.loop_drawings(d.plots)
+    assert [x.svg for x in a] == [x.svg for x in b]
+    for dr in a:
+        assert dr.svg.startswith("<svg") and "<?xml" not in dr.svg and "<metadata" not in dr.svg
+        assert "dc:date" not in dr.svg
+        for i in re.findall(r'\sid="([^"]+)"', dr.svg):
+            assert i.startswith(d.anchor) or i.startswith(f"plot-{d.anchor}")
+
+
+def test_chart_labels_from_the_inventory_are_inert():
+    t = Tally(HOSTILE_AREA, 3, (("fails", 1), ("passes", 2)))
+    svg = plots.status_mix([t], ["fails", "passes"]).svg
+    assert "<b>" not in svg and "&lt;b&gt;" in svg
+    assert "$x$" in svg  # shown literally, not parsed as mathtext
+
+
+def test_print_variant_caps_detail_sections(page, monkeypatch):
+    import audit.render as render
+    _, report, _ = page
+    monkeypatch.setattr(render, "PDF_DETAIL_LIMIT", 1)
+    html = render_html(report, draw(report), for_print=True)
+    assert html.count('<section class="loop"') == 1
+    assert "first 1 of the\n    3 loops" in html or "first 1 of the 3 loops" in " ".join(html.split())
+
+
+def test_two_renderings_are_identical(page):
+    audit, _, html = page
+    report = build_report(audit, plot_limit=2)
+    assert render_html(report, draw(report)) == html
