@@ -39,7 +39,7 @@ import csv
 import datetime as _dt
 import math
 import sys
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Sequence
 
@@ -55,6 +55,7 @@ TIME_COLUMNS = ("time_s", "time_min", "timestamp")
 VALUE_COLUMNS = ("value", "value_eu")
 MAX_SHOWN = 20
 AMPLITUDE_PERCENTILE = 99.7
+DISAGREE = 0.10          # relative difference of the two residual stds that earns a note [-]
 
 DIST_COLUMNS = ("dist_band_rad_s", "dist_attenuation_db", "dist_amplitude", "dist_std", "dist_peak",
                 "dist_trend_per_s", "dist_note")
@@ -449,6 +450,11 @@ def _residual_from(t: np.ndarray, d: np.ndarray, kern: np.ndarray, s0: float, mo
         S = model.S(w)
         sf = float(math.sqrt(np.sum(an.psd[1:] * np.abs(S) ** 2) * an.resolution_rad_s))
     ok = None if allowed is None or not allowed > 0 else bool(amp <= allowed)
+    if math.isfinite(sf) and sf > 0 and abs(std / sf - 1.0) > DISAGREE:
+        note = "; ".join(x for x in (note, f"time- and frequency-domain residual std differ by "
+                                           f"{100 * abs(std / sf - 1):.0f} %: the record has variance near its "
+                                           f"Nyquist frequency (sampled slowly for this loop); read both with care")
+                         if x)
     return Residual(t, d, y, amp, std, sf, ok, note)
 
 

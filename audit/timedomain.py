@@ -69,7 +69,6 @@ RERUNS = 2               # horizon x4 at most this many times
 RERUN_CAP = 8 * N_TARGET  # most steps of a rerun (a longer one is cut and reported as not settled)
 SETTLED_FRACTION = 0.75  # a response must settle before this fraction of the horizon
 
-_STATS: list = []
 STEP_COLUMNS = ("load_iae_s", "load_ie_s", "load_peak", "load_t_peak_s", "load_settle_s", "load_offset",
                 "sp_overshoot_pct", "sp_rise_s", "sp_settle_s", "sp_offset", "step_horizon_s", "step_note")
 
@@ -853,7 +852,6 @@ def _run_kind(batch: Batch, kind: str, pct: float, horizons: np.ndarray, n_cap: 
             h = np.array([plans[i].h for i in sel])
             sub = batch.take(sel)
             res = simulate(sub, h, int(nb))
-            _STATS.append((int(nb), len(sel)))
             for b0 in range(0, len(sel), FIGURE_CHUNK):
                 cs = slice(b0, b0 + FIGURE_CHUNK)
                 ss = sel[cs]
