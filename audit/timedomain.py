@@ -61,7 +61,7 @@ from .loop import Controller, LoopModel, Rational
 from .policy import Policy
 
 N_TARGET = 1000          # steps per horizon aimed at
-N_CAP = 2 ** 16          # most steps of one simulation
+N_CAP = 16 * N_TARGET     # most steps of one simulation (a longer one is cut and reported)
 MEMORY_BUDGET = 128e6    # bytes of stored responses per simulated chunk
 FIGURE_CHUNK = 1024      # loops per block of figure computations (bounds temporaries)
 HORIZON_FACTOR = 4.0     # first horizon = HORIZON_FACTOR * Tc
