@@ -141,6 +141,27 @@ def evaluate_frequency(audit: "Audit") -> None:
     res["findings"] = findings
 
 
+def judge_residuals(audit: "Audit") -> None:
+    """A predicted residual above the allowed amplitude breaks the rejection requirement.
+
+    The record of the disturbance passed through S (exact delay) is what the loop as tuned would
+    leave; when its amplitude exceeds ``allowed_amplitude`` the loop fails, whatever the band check
+    said (the record is the more direct evidence).
+    """
+    res = audit.results
+    if "residual_ok" not in res.columns:
+        return
+    for i, row in enumerate(audit.inventory.rows):
+        ok = res.at[i, "residual_ok"]
+        if ok is None or pd.isna(ok) or bool(ok) or res.at[i, "status"] in ("invalid", "unstable"):
+            continue
+        amp = float(res.at[i, "residual_amplitude"])
+        words = f"predicted residual {amp:.3g} % > allowed {row.allowed_amplitude:.3g} %"
+        old = str(res.at[i, "findings"] or "")
+        res.at[i, "findings"] = f"{words}; {old}" if old else words
+        res.at[i, "status"] = "fails"
+
+
 STAGES: tuple[tuple[str, str, str], ...] = (
     # (name, module, function) in order; every stage takes the Audit
     ("models", "audit.pipeline", "build_models"),
@@ -149,6 +170,7 @@ STAGES: tuple[tuple[str, str, str], ...] = (
     ("cascade", "audit.cascade", "add_cascade_checks"),
     ("steps", "audit.timedomain", "add_step_results"),
     ("residuals", "audit.disturbance", "add_residuals"),
+    ("residual_check", "audit.pipeline", "judge_residuals"),
     ("proposals", "audit.tuning", "add_proposals"),
     ("priority", "audit.priority", "add_priority"),
 )

@@ -72,7 +72,8 @@ LOOPS: list[dict] = [
     L("PIC-104", "Rising main pressure", IP, "high", "fopdt", gain=0.8, tau1_s=2, dead_time_s=0.3, sample_s=0.2,
       form="parallel", kp=0.6, ki_per_s=0.3, action="reverse", band_rad_s=0.02, attenuation_db=6, dcs_node="PS1"),
     L("LIC-105", "Storm tank level", IP, "low", "ipdt", gain=0.001, dead_time_s=10, sample_s=2, form="ideal",
-      kc=2, ti_min=30, action="reverse", dcs_node="PS2"),
+      kc=2, ti_min=30, action="reverse", disturbance_file="records/broadband.csv", allowed_amplitude=1,
+      pv_lo=0, pv_hi=4, dcs_node="PS2"),
     L("FIC-106", "Storm return pump flow", IP, "low", "fopdt", gain=1.0, tau1_s=5, dead_time_s=1, sample_s=0.5,
       form="ideal", kc=0.5, ti_s=5, action="reverse", dcs_node="PS2"),
     # fragile: an integral time of seconds on an integrating level
@@ -89,8 +90,7 @@ LOOPS: list[dict] = [
 
     # ---- Aeration: air header and lane air flows (fast), dissolved oxygen and ammonia (analysers)
     L("PIC-201", "Air main header pressure", AE, "high", "fopdt", gain=0.6, tau1_s=8, dead_time_s=1, sample_s=0.5,
-      form="ideal", kc=1.5, ti_s=10, action="reverse", disturbance_file="records/broadband.csv",
-      allowed_amplitude=2, dcs_node="BLW"),
+      form="ideal", kc=1.5, ti_s=10, action="reverse", dcs_node="BLW"),
     L("FIC-211", "Lane 1 air flow", AE, "medium", "fopdt", gain=1.5, tau1_s=4, dead_time_s=1, sample_s=0.5,
       form="ideal", kc=0.6, ti_s=4, action="reverse", band_rad_s=0.05, attenuation_db=6, dcs_node="AE1"),
     L("FIC-212", "Lane 2 air flow", AE, "medium", "fopdt", gain=1.5, tau1_s=4, dead_time_s=1, sample_s=0.5,
