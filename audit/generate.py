@@ -197,7 +197,7 @@ def _tuning(rng: np.random.Generator, p: dict[str, Any], form: str) -> dict[str,
         kc, ti = tau / (k * (tc + theta)), min(tau, 4.0 * (tc + theta))
     td = p.get("_tau2", 0.0) if rng.random() < 0.6 else 0.0
     # drift: most loops within a factor of two either way, some far off
-    kc *= float(np.exp(rng.normal(0.15, 0.55)))
+    kc *= float(np.exp(rng.normal(0.0, 0.5)))
     ti *= float(np.exp(rng.normal(0.0, 0.35)))
     if rng.random() < 0.08:
         ti = 0.0       # integral action switched off (P or PD only)
