@@ -1,0 +1,137 @@
+"""Site benchmark: ``plant-audit run`` on synthetic inventories of growing size.
+
+Usage::
+
+    python benchmarks/site.py [--sizes 100 1000 10000] [--jobs 1] [--no-pdf] [--seed 1]
+
+For each size a seeded inventory is generated (audit.generate, .xlsx) and audited by
+:func:`audit.runner.run_audit` in a fresh process (so each peak memory is its own), with
+every output written (results.csv/json, report.html, report.pdf unless --no-pdf,
+results.xlsx) and no history. Stage times come from ``Audit.timings``; peak memory is the
+process's maximum resident set size (``resource.getrusage``), worker processes listed
+apart. Printed: one table row per size with the time of each stage, the total, the time
+per loop (constant when cost grows linearly with loops), proposals per failing loop and
+peak memory. A benchmark that prints figures, not a timed test.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+#: Stage columns of the table: (heading, keys of Audit.timings added together).
+COLUMNS = (
+    ("read", ("read",)),
+    ("models", ("models", "records", "cascade")),
+    ("evaluate", ("evaluate",)),
+    ("steps", ("steps",)),
+    ("proposals", ("proposals",)),
+    ("priority", ("residuals", "priority")),
+    ("csv+json", ("csv+json",)),
+    ("HTML", ("report.html",)),
+    ("PDF", ("report.pdf",)),
+    ("xlsx", ("results.xlsx",)),
+)
+
+
+def child(inventory: str, out_dir: str, jobs: int, pdf: bool) -> dict:
+    """Audit one inventory in this process; stage times [s], peak memory [MiB] and counts."""
+    import warnings
+
+    from audit.pipeline import AuditOptions
+    from audit.runner import run_audit
+
+    warnings.simplefilter("ignore", RuntimeWarning)
+    opts = AuditOptions(out_dir=out_dir, date="2026-01-05", site="Benchmark plant", pdf=pdf, jobs=jobs,
+                        quiet=True, record_history=False)
+    t0 = time.perf_counter()
+    audit, _ = run_audit(inventory, opts)
+    wall = time.perf_counter() - t0
+    tm = dict(audit.timings)
+    render = sum(tm.get(k, 0.0) for k in ("report.html", "report.pdf", "results.xlsx"))
+    tm["csv+json"] = max(tm.get("write", 0.0) - render, 0.0)
+    status = audit.results["status"].value_counts().to_dict()
+    return {
+        "loops": len(audit.results), "wall": wall, "timings": tm, "status": status,
+        "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+        "workers_peak_mib": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024,
+    }
+
+
+def run_size(n: int, seed: int, jobs: int, pdf: bool, tmp: Path) -> dict:
+    """Generate an inventory of ``n`` loops and audit it in a fresh process."""
+    from audit.generate import write_synthetic_inventory
+
+    inv = tmp / f"site_{n}.xlsx"
+    t0 = time.perf_counter()
+    write_synthetic_inventory(inv, n, seed)
+    gen = time.perf_counter() - t0
+    cmd = [sys.executable, __file__, "--child", str(inv), str(tmp / f"out_{n}"), "--jobs", str(jobs)]
+    if not pdf:
+        cmd.append("--no-pdf")
+    proc = subprocess.run(cmd, capture_output=True, text=True, check=False)
+    if proc.returncode != 0:
+        raise SystemExit(f"audit of {n} loops failed:\n{proc.stderr[-3000:]}")
+    res = json.loads(proc.stdout.strip().splitlines()[-1])
+    res["generate"] = gen
+    return res
+
+
+def table(results: list[dict]) -> str:
+    """The figures as a Markdown table."""
+    head = ["loops"] + [c for c, _ in COLUMNS] + ["total", "ms/loop", "ms/failing loop (proposals)",
+                                                  "peak MiB"]
+    lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
+    for r in results:
+        tm = r["timings"]
+        cells = [f"{r['loops']:,}"]
+        for _, keys in COLUMNS:
+            got = [tm[k] for k in keys if k in tm]
+            cells.append(f"{sum(got):.2f}" if got else "-")
+        failing = sum(v for k, v in r["status"].items() if k in ("fails", "unstable"))
+        prop = tm.get("proposals")
+        cells += [f"{r['wall']:.1f}", f"{1000 * r['wall'] / r['loops']:.2f}",
+                  f"{1000 * prop / failing:.1f} ({failing:,})" if prop is not None and failing else "-",
+                  f"{r['peak_mib']:.0f}" + (f" (+workers {r['workers_peak_mib']:.0f})" if r["workers_peak_mib"] else "")]
+        lines.append("| " + " | ".join(cells) + " |")
+    return "\n".join(lines)
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description="plant-audit run on synthetic inventories of growing size.")
+    ap.add_argument("--sizes", type=int, nargs="+", default=[100, 1000, 10000])
+    ap.add_argument("--jobs", type=int, default=1)
+    ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--no-pdf", action="store_true")
+    ap.add_argument("--child", nargs=2, metavar=("INVENTORY", "OUT"), help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.child:
+        print(json.dumps(child(args.child[0], args.child[1], args.jobs, not args.no_pdf)))
+        return 0
+    from engine import machine
+
+    print(f"machine: {machine()}")
+    print(f"jobs {args.jobs}, pdf {not args.no_pdf}, seed {args.seed}")
+    results = []
+    with tempfile.TemporaryDirectory() as tmp:
+        for n in args.sizes:
+            r = run_size(n, args.seed, args.jobs, not args.no_pdf, Path(tmp))
+            results.append(r)
+            st = ", ".join(f"{v} {k}" for k, v in sorted(r["status"].items()))
+            print(f"{n} loops: generated in {r['generate']:.1f} s; audited in {r['wall']:.1f} s; {st}", flush=True)
+    print()
+    print(table(results))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
