@@ -176,8 +176,8 @@ def _gains(ax, fd: FrequencyData) -> None:
     ax.set_xlim(fd.w[0], fd.w[-1])
     ax.set_xlabel("frequency [rad/s]")
     ax.set_ylabel("gain [dB]")
-    ax.set_title("Gains of L, S and T", loc="left", fontsize=8)
-    ax.legend(loc="best")
+    ax.set_title("Gains of L, S and T", loc="left", fontsize=8, y=1.0, pad=3)
+    ax.legend(loc="upper right")
 
 
 def _window(L: np.ndarray, half: float = 6.0) -> np.ndarray:
@@ -204,7 +204,7 @@ def _nyquist(ax, fd: FrequencyData) -> None:
     ax.set_aspect("equal", adjustable="box")
     ax.set_xlabel("real part [-]")
     ax.set_ylabel("imaginary part [-]")
-    ax.set_title("Nyquist curve of L", loc="left", fontsize=8)
+    ax.set_title("Nyquist curve of L", loc="left", fontsize=8, y=1.0, pad=3)
     ax.legend(loc="lower right", fontsize=6.5)
 
 
@@ -218,7 +218,7 @@ def _compare(ax, fd: FrequencyData, other: np.ndarray, name: str, colour: str, s
     ax.set_xlim(fd.w[0], fd.w[-1])
     ax.set_xlabel("frequency [rad/s]")
     ax.set_ylabel("|S| [dB]")
-    ax.set_title(title, loc="left", fontsize=8)
+    ax.set_title(title, loc="left", fontsize=8, y=1.0, pad=3)
     ax.legend(loc="lower right")
 
 
@@ -227,20 +227,20 @@ def _step(ax, st: StepData) -> None:
     if st.proposed_t is not None and st.proposed_y is not None:
         ax.plot(st.proposed_t, st.proposed_y, color=GREEN, linestyle="-.", label="proposed")
     what = "Unit load step at the process input" if st.kind == "load" else "Unit set-point step"
-    ax.set_title(what, loc="left", fontsize=8)
+    ax.set_title(what, loc="left", fontsize=8, y=1.0, pad=3)
     ax.set_xlabel("time [s]")
     ax.set_ylabel("process value [-]")
     if st.proposed_y is not None:
-        ax.legend(loc="best")
+        ax.legend(loc="upper right")
 
 
 def _residual(ax, rd: ResidualData) -> None:
     ax.plot(rd.t, rd.d, color=GREY, linewidth=0.8, label="disturbance record d")
     ax.plot(rd.t, rd.y, color=BLUE, linewidth=1.2, label="predicted closed-loop residual")
-    ax.set_title("Disturbance record against the predicted residual", loc="left", fontsize=8)
+    ax.set_title("Disturbance record against the predicted residual", loc="left", fontsize=8, y=1.0, pad=3)
     ax.set_xlabel("time [s]")
     ax.set_ylabel("[% of PV range]")
-    ax.legend(loc="best")
+    ax.legend(loc="upper right")
 
 
 @_styled

@@ -38,7 +38,7 @@ PDF_DETAIL_LIMIT = 100
 PLOT_LIMIT = 100
 """Detail sections with plots, in work-list order (HTML and PDF); the rest show their figures in tables."""
 
-PDF_TABLE_LIMIT = 600
+PDF_TABLE_LIMIT = 300
 """Most lines of the all-loops table and of the work list in report.pdf."""
 
 PAPERS = {"a4": "A4", "letter": "letter"}
