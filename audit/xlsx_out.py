@@ -25,6 +25,7 @@ from openpyxl.utils import get_column_letter
 
 from .columns import RESULT_COLUMNS
 from .report import Report
+from .output import plain
 from .safety import is_formula_like
 
 HEADER_FONT = Font(bold=True, color="FFFFFF")
@@ -46,22 +47,12 @@ def cell_value(value: Any) -> Any:
     None/NaN -> None (blank), infinities -> ``'inf'``/``'-inf'`` (text), numpy
     scalars -> Python scalars, text stripped of characters XML cannot hold.
     """
-    if value is None or value is pd.NA or value is pd.NaT:
-        return None
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        v = float(value)
-        if math.isnan(v):
-            return None
-        if math.isinf(v):
-            return "inf" if v > 0 else "-inf"
-        return v
     if isinstance(value, (tuple, list)):
         return ILLEGAL_CHARACTERS_RE.sub("", ", ".join(str(x) for x in value))
-    return ILLEGAL_CHARACTERS_RE.sub("", str(value))
+    v = plain(value)   # None/NaN -> None, inf -> "inf", numpy scalars -> Python
+    if isinstance(v, (dict, list)):
+        v = str(v)
+    return ILLEGAL_CHARACTERS_RE.sub("", v) if isinstance(v, str) else v
 
 
 def put(ws, row: int, col: int, value: Any, number_format: str | None = None):
