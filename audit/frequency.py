@@ -31,7 +31,7 @@ import pandas as pd
 from .loop import LoopModel
 
 #: |L| below which the tail of the frequency axis is not sampled densely. [-]
-TAIL_LEVEL = 1e-3
+TAIL_LEVEL = 1e-2
 #: Largest delay phase between neighbouring grid points. [rad]
 DELAY_STEP = 0.3
 #: Largest step in ln(w) between neighbouring grid points. [-]

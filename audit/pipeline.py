@@ -103,11 +103,12 @@ def build_models(audit: "Audit") -> None:
 
 def evaluate_frequency(audit: "Audit") -> None:
     """Frequency-domain figures, limits in force, status and findings of every row."""
-    from .frequency import FIGURE_COLUMNS, evaluate
+    from .frequency import FIGURE_COLUMNS
+    from .parallel import evaluate_parallel
     from .verdict import judge, limits_in_force
 
     res = audit.results
-    figs = evaluate(audit.models, res["band_rad_s"].to_numpy(float))
+    figs = evaluate_parallel(audit.models, res["band_rad_s"].to_numpy(float), audit.options.jobs)
     for c in FIGURE_COLUMNS:
         if c == "engine_note":
             continue
