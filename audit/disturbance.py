@@ -551,6 +551,11 @@ def analyse_records(audit) -> None:
         notes = list(an.notes)
         if row.band_rad_s is not None or row.attenuation_db is not None:
             notes.append("the row's band_rad_s/attenuation_db govern; derived values shown for comparison")
+        elif an.needs_attenuation and np.isfinite(an.band_rad_s) and np.isfinite(an.attenuation_db):
+            # no requirement on the row: the record's derived requirement is the one in force
+            res.at[label, "band_rad_s"] = an.band_rad_s
+            res.at[label, "attenuation_db"] = an.attenuation_db
+            notes.append("the requirement derived from the record is in force (band_rad_s, attenuation_db)")
         res.at[label, "dist_band_rad_s"] = an.band_rad_s
         res.at[label, "dist_attenuation_db"] = an.attenuation_db
         res.at[label, "dist_amplitude"] = an.amplitude
