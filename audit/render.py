@@ -25,6 +25,7 @@ from urllib.parse import urlsplit
 from urllib.request import url2pathname
 
 import jinja2
+import numpy as np
 from markupsafe import Markup
 
 from .report import STATUS_ORDER, Report, build_report
@@ -105,6 +106,18 @@ def fmt_verdict(verdict: str) -> str:
     return f"{sym} {verdict}" if sym else verdict
 
 
+def fmt_px(value: Any) -> str:
+    """A chart coordinate or length as SVG text: 0.1 px, never '-0.0' (same input, same bytes). [px]"""
+    text = f"{float(value):.1f}"
+    return "0.0" if text == "-0.0" else text
+
+
+def fmt_points(points: Any) -> str:
+    """An (n, 2) array of chart pixels as the text of an SVG ``points`` attribute (0.1 px)."""
+    arr = np.round(np.asarray(points, float), 1) + 0.0     # + 0.0 turns -0.0 into 0.0
+    return " ".join(f"{x:.1f},{y:.1f}" for x, y in arr.tolist())
+
+
 def css_class(text: str) -> str:
     """A status or verdict word as a CSS class name."""
     return "s-" + "".join(ch if ch.isalnum() else "-" for ch in str(text).lower())
@@ -127,7 +140,8 @@ def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
         lstrip_blocks=True,
         keep_trailing_newline=True,
     )
-    env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class)
+    env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class, px=fmt_px,
+                       pts=fmt_points)
     return env
 
 
@@ -136,37 +150,53 @@ def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
 
 @dataclass(frozen=True)
 class Rendered:
-    """The drawings of a report, as markup ready to inline, keyed by loop anchor."""
+    """The drawings of a report, as markup ready to inline: per loop anchor, (caption, SVG) pairs."""
 
     loops: dict[str, tuple[tuple[str, Markup], ...]]
     status_mix: Markup | None
     trend: Markup | None
 
 
+def render_chart(chart) -> Markup:
+    """One chart (:class:`audit.plots.Chart`) as an ``<svg>`` element, written by its template.
+
+    The chart templates are autoescaped like every other, so text from the inventory
+    (area names, tags) stays inert.
+    """
+    return Markup(environment().get_template(chart.template).render(chart=chart).strip())
+
+
+def _loop_svgs(plots) -> tuple[tuple[str, str], ...]:
+    """Charts of one loop as (caption, SVG text): chart data and templates, no matplotlib."""
+    from .plots import loop_charts
+
+    return tuple((c.caption, str(render_chart(c))) for c in loop_charts(plots))
+
+
 def draw(report: Report, mapper: Callable = map) -> Rendered:
-    """Draw the plots of the report: every detail section that carries plot data, the summary charts.
+    """Draw the charts of the report: every detail section that carries plot data, the summary charts.
 
     Parameters
     ----------
     report : Report
         The report model.
     mapper : callable
-        ``map`` or a process pool's ``map``, applied to :func:`audit.plots.loop_drawings`.
+        ``map`` or a process pool's ``map``, applied over the loops with plot data.
     """
     from . import plots
 
     todo = [d for d in report.details if d.plots is not None]
     loops = {}
-    for d, drawings in zip(todo, mapper(plots.loop_drawings, [d.plots for d in todo])):
-        # matplotlib escapes all text it writes into the SVG, so the markup is ours alone
-        loops[d.anchor] = tuple((dr.caption, Markup(dr.svg)) for dr in drawings)
+    for d, svgs in zip(todo, mapper(_loop_svgs, [d.plots for d in todo])):
+        # written by the autoescaping chart templates
+        loops[d.anchor] = tuple((caption, Markup(svg)) for caption, svg in svgs)
     mix = None
     if report.by_area:
-        mix = Markup(plots.status_mix(report.by_area, report.statuses).svg)
+        mix = render_chart(plots.status_mix(report.by_area, report.statuses))
     trend = None
     h = report.history
     if h is not None and len(h.trend_dates) >= 1 and h.trend:
-        trend = Markup(plots.status_trend(h.trend_dates, h.trend).svg)
+        trend = render_chart(plots.status_trend(h.trend_dates, h.trend))
     return Rendered(loops, mix, trend)
 
 

@@ -554,26 +554,30 @@ def _entered(row: LoopRow) -> tuple[Item, ...]:
 
 
 def plot_frequencies(model: LoopModel, refs: list[Any]) -> np.ndarray:
-    """A log grid covering the loop's characteristic frequencies.
+    """A log grid covering the loop's characteristic frequencies, with those frequencies on it.
 
     Parameters
     ----------
     model : LoopModel
         The loop (its time constants and dead time set the scale when ``refs`` is empty).
     refs : list
-        Frequencies the plot must show (crossovers, band edge). [rad/s]
+        Frequencies the plot must show (crossovers, the Ms peak, band edge). [rad/s]
 
     Returns
     -------
     ndarray
-        :data:`PLOT_POINTS` frequencies, ascending. [rad/s]
+        At most :data:`PLOT_POINTS` frequencies, ascending, from a whole decade to a whole
+        decade, the finite positive ``refs`` among them (so the Ms peak is drawn at its
+        computed height). [rad/s]
     """
-    good = [float(r) for r in refs if _finite(r) and r > 0]
+    good = sorted({float(r) for r in refs if _finite(r) and r > 0})
     if not good:
         p = model.process
         good = [1.0 / max(model.delay, p.tau1, p.tau2, 1e-3)]
-    lo, hi = min(good) / 300.0, max(good) * 100.0
-    return np.logspace(math.log10(lo), math.log10(hi), PLOT_POINTS)
+    lo = math.floor(math.log10(min(good) / 300.0))
+    hi = math.ceil(math.log10(max(good) * 100.0))
+    grid = np.logspace(lo, hi, PLOT_POINTS - len(good))
+    return np.unique(np.concatenate([grid, good]))
 
 
 def proposed_model(base: LoopModel, proposal: Any) -> LoopModel | None:
@@ -657,58 +661,96 @@ def _arrays(obj: Any, *names: str) -> tuple[np.ndarray | None, ...]:
     return tuple(out)
 
 
-def _step_source() -> Callable[[LoopModel, str], Any] | None:
+def _step_source() -> Callable[[list[LoopModel], str], list[Any]] | None:
+    """:func:`audit.timedomain.step_traces_many`, or None when the time-domain stage is not in this build."""
     try:
         mod = importlib.import_module("audit.timedomain")
     except ImportError:
         return None
-    return getattr(mod, "step_traces", None)
+    return getattr(mod, "step_traces_many", None)
 
 
 TRACE_POINTS = 800
-"""Most points kept per plotted time trace. [-]"""
+"""Most points kept per time trace in the report model (the chart thins further). [-]"""
 
 TRACE_CUT = 20.0
 """A diverging trace is cut where its magnitude first exceeds this many unit steps. [-]"""
 
 
 def _thin(t: np.ndarray, *ys: np.ndarray | None, cut: bool = True) -> tuple[np.ndarray | None, ...]:
-    """Every k-th point (at most :data:`TRACE_POINTS`), the trace cut where it diverges."""
+    """At most :data:`TRACE_POINTS` points: the ends and, in each run of points, the lowest and highest
+    of every trace (peaks survive); the trace cut where it diverges."""
     n = len(t)
     if cut and ys and ys[0] is not None:
         big = np.flatnonzero(~np.isfinite(ys[0]) | (np.abs(ys[0]) > TRACE_CUT))
         if big.size:
             n = max(int(big[0]) + 1, 2)
-    k = max(1, -(-n // TRACE_POINTS))
-    idx = np.arange(0, n, k)
+    real = [y[:n] for y in ys if y is not None]
+    if n <= TRACE_POINTS or not real:
+        idx = np.arange(n)
+    else:
+        buckets = max(1, TRACE_POINTS // (2 * len(real)) - 1)
+        k = -(-n // buckets)
+        base = np.arange(buckets) * k
+        keep = [np.array([0, n - 1])]
+        for y in real:
+            v = np.nan_to_num(np.concatenate([y, np.full(buckets * k - n, y[-1])]), nan=0.0).reshape(buckets, k)
+            keep += [np.minimum(base + v.argmin(axis=1), n - 1), np.minimum(base + v.argmax(axis=1), n - 1)]
+        idx = np.unique(np.concatenate(keep))
     return (t[idx],) + tuple(None if y is None else y[idx] for y in ys)
 
 
-def _steps(model: LoopModel, proposed: LoopModel | None, source, notes: list[str]) -> tuple[StepData, ...]:
-    if source is None:
-        notes.append("Step responses are not shown: the time-domain stage is not available in this build.")
-        return ()
-    out = []
-    for kind in ("load", "setpoint"):
-        try:
-            t, y, u = _arrays(source(model, kind), "t", "y", "u")
-            pt = py = None
-            if proposed is not None:
-                pt, py = _arrays(source(proposed, kind), "t", "y")
-        except Exception as exc:  # a failing simulation leaves the rest of the report intact
-            notes.append(f"The {kind} step response could not be computed: {exc}.")
-            continue
-        if t is None or y is None or len(t) != len(y) or len(t) < 2:
-            continue
-        t2, y2, u2 = _thin(t, y, u if u is not None and len(u) == len(t) else None)
-        if len(t2) < len(t) and t2[-1] < t[-1] - 1e-12 * abs(t[-1]) and np.abs(y2).max() > TRACE_CUT / 2:
-            notes.append(f"The {kind} step response grows without bound; its plot stops at t = {t2[-1]:.4g} s.")
+def _step_data(kind: str, tr: Any, ptr: Any, notes: list[str]) -> StepData | None:
+    """One step response for the plots from its trace (and the proposed tuning's), or None with a note."""
+    t, y, u = _arrays(tr, "t", "y", "u")
+    why = _text(getattr(tr, "note", ""))
+    if why or t is None or y is None or len(t) != len(y) or len(t) < 2:
+        notes.append(f"The {kind} step response could not be computed: {why or 'no trace'}.")
+        return None
+    t2, y2, u2 = _thin(t, y, u if u is not None and len(u) == len(t) else None)
+    if len(t2) and t2[-1] < t[-1] - 1e-12 * abs(t[-1]) and np.abs(y2).max() > TRACE_CUT / 2:
+        notes.append(f"The {kind} step response grows without bound; its plot stops at t = {t2[-1]:.4g} s.")
+    pt = py = None
+    if ptr is not None and not _text(getattr(ptr, "note", "")):
+        pt, py = _arrays(ptr, "t", "y")
         if pt is not None and py is not None and len(pt) == len(py) and len(pt) >= 2:
             pt, py = _thin(pt, py)
         else:
             pt = py = None
-        out.append(StepData(kind, t2, y2, u2, pt, py))
-    return tuple(out)
+    return StepData(kind, t2, y2, u2, pt, py)
+
+
+def _batched_steps(jobs: list["PlotJob"]) -> dict[str, tuple[tuple[StepData, ...], tuple[str, ...]]]:
+    """Step responses of every loop with plots, present and proposed tuning, in one simulation per kind.
+
+    Returns
+    -------
+    dict
+        Plot key -> (step data, notes about what could not be computed).
+    """
+    notes: dict[str, list[str]] = {j.key: [] for j in jobs}
+    steps: dict[str, list[StepData]] = {j.key: [] for j in jobs}
+    source = _step_source()
+    if source is None:
+        for j in jobs:
+            notes[j.key].append("Step responses are not shown: the time-domain stage is not available in this build.")
+    elif jobs:
+        models = [j.model for j in jobs]
+        with_prop = [k for k, j in enumerate(jobs) if j.proposed is not None]
+        models += [jobs[k].proposed for k in with_prop]
+        for kind in ("load", "setpoint"):
+            try:
+                traces = list(source(models, kind))
+            except Exception as exc:  # a failing simulation leaves the rest of the report intact
+                for j in jobs:
+                    notes[j.key].append(f"The {kind} step response could not be computed: {exc}.")
+                continue
+            prop = dict(zip(with_prop, traces[len(jobs):]))
+            for k, j in enumerate(jobs):
+                st = _step_data(kind, traces[k], prop.get(k), notes[j.key])
+                if st is not None:
+                    steps[j.key].append(st)
+    return {k: (tuple(steps[k]), tuple(notes[k])) for k in notes}
 
 
 def _residual(audit, index: int) -> ResidualData | None:
@@ -735,10 +777,12 @@ class PlotJob:
     attenuation_db: float | None   # [dB]
     inner_tag: str
     residual: ResidualData | None
+    steps: tuple[StepData, ...] = ()     # from :func:`_batched_steps`
+    notes: tuple[str, ...] = ()          # what could not be computed
 
 
 def plot_data(job: PlotJob) -> tuple[LoopPlots, tuple[str, ...]]:
-    """The curves of one loop: exact frequency responses and the step responses.
+    """The curves of one loop: exact frequency responses; the step responses come in the job.
 
     Parameters
     ----------
@@ -760,9 +804,7 @@ def plot_data(job: PlotJob) -> tuple[LoopPlots, tuple[str, ...]]:
         pS = 1.0 / (1.0 + pL) if pL is not None else None
     freq = FrequencyData(w, Lw, S, T, job.ms_max, job.band_rad_s, job.attenuation_db, inner_S, job.inner_tag,
                          pL, pS)
-    notes: list[str] = []
-    steps = _steps(model, proposed, _step_source(), notes)
-    return LoopPlots(job.key, freq, steps, job.residual), tuple(notes)
+    return LoopPlots(job.key, freq, job.steps, job.residual), job.notes
 
 
 def _plot_job(audit, i: int, row: LoopRow, model: LoopModel, res: _Results, proposed: LoopModel | None,
@@ -902,7 +944,8 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     plot_limit : int | None
         Detail sections, in work-list order, that carry plot data; None for all.
     mapper : callable
-        ``map`` or a process pool's ``map``: applied to :func:`plot_data` over the loops with plots.
+        ``map`` or a process pool's ``map``: applied to :func:`plot_data` over the loops with plots
+        (the step responses of all of them are simulated together first, in this process).
 
     Returns
     -------
@@ -918,6 +961,8 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     anchors = {loop_anchor(rows[i]) for i in order}
     pairs = [_detail(audit, i, res, statuses[i], plot_limit is None or k < plot_limit) for k, i in enumerate(order)]
     jobs = [job for _, job in pairs if job is not None]
+    batched = _batched_steps(jobs)                  # one vectorised simulation per kind for all loops
+    jobs = [replace(j, steps=batched[j.key][0], notes=batched[j.key][1]) for j in jobs]
     drawn = dict(zip([j.key for j in jobs], mapper(plot_data, jobs)))
     details = tuple(d if d.anchor not in drawn else
                     replace(d, plots=drawn[d.anchor][0], notes=drawn[d.anchor][1] + d.notes) for d, _ in pairs)
