@@ -77,6 +77,54 @@ def _evaluate_chunk(models: list[LoopModel | None], band: np.ndarray) -> pd.Data
     return evaluate(models, band)
 
 
+def _steps_chunk(models: list[LoopModel | None], policy, stable: list) -> pd.DataFrame:
+    from .timedomain import step_figures
+    return step_figures(models, policy, stable)
+
+
+def map_chunks(fn, models: Sequence[LoopModel | None], per_loop: Sequence[Sequence], jobs: int,
+               extra: tuple = ()) -> pd.DataFrame:
+    """``fn(models, *per_loop_args, *extra)`` over cascade-safe chunks in ``jobs`` processes.
+
+    ``fn`` returns one DataFrame row per model; the rows are put back in order. With one job
+    (or too few loops to pay for workers) ``fn`` runs once, here, on everything.
+
+    Parameters
+    ----------
+    fn : callable
+        A module-level function (picklable) of (models, *per-loop arguments, *extra).
+    models : sequence of LoopModel or None
+        The loops.
+    per_loop : sequence of sequences
+        Arguments with one entry per loop (split with the loops).
+    jobs : int
+        Worker processes. [-]
+    extra : tuple
+        Arguments passed whole to every call.
+    """
+    models = list(models)
+    n = len(models)
+    jobs = max(1, int(jobs))
+    if jobs == 1 or n < 2 * MIN_LOOPS_PER_JOB:
+        return fn(models, *per_loop, *extra) if not extra else fn(models, *extra, *per_loop)
+    jobs = min(jobs, n // MIN_LOOPS_PER_JOB)
+    parts = _chunks(cascade_groups(models), jobs * CHUNKS_PER_JOB)
+    args = [[models[i] for i in p] for p in parts]
+    split = [[[seq[i] for i in p] for p in parts] for seq in per_loop]
+    with ProcessPoolExecutor(max_workers=jobs) as pool:
+        if extra:
+            futs = [pool.submit(fn, a, *extra, *(s[k] for s in split)) for k, a in enumerate(args)]
+        else:
+            futs = [pool.submit(fn, a, *(s[k] for s in split)) for k, a in enumerate(args)]
+        frames = [f.result() for f in futs]
+    order = np.concatenate(parts)
+    df = pd.concat(frames, ignore_index=True)
+    df.index = order
+    df = df.sort_index()
+    df.index = pd.RangeIndex(n)
+    return df
+
+
 def evaluate_parallel(models: Sequence[LoopModel | None], band_rad_s=None, jobs: int = 1) -> pd.DataFrame:
     """:func:`audit.frequency.evaluate` over ``jobs`` processes; the same result.
 
@@ -98,16 +146,23 @@ def evaluate_parallel(models: Sequence[LoopModel | None], band_rad_s=None, jobs:
     n = len(models)
     band = np.full(n, np.nan) if band_rad_s is None else np.array(
         [np.nan if b is None else float(b) for b in band_rad_s], float)
-    jobs = max(1, int(jobs))
-    if jobs == 1 or n < 2 * MIN_LOOPS_PER_JOB:
-        return evaluate(models, band)
-    jobs = min(jobs, n // MIN_LOOPS_PER_JOB)
-    parts = _chunks(cascade_groups(models), jobs * CHUNKS_PER_JOB)
-    with ProcessPoolExecutor(max_workers=jobs) as pool:
-        frames = list(pool.map(_evaluate_chunk, [[models[i] for i in p] for p in parts], [band[p] for p in parts]))
-    order = np.concatenate(parts)
-    df = pd.concat(frames, ignore_index=True)
-    df.index = order
-    df = df.sort_index()
-    df.index = pd.RangeIndex(n)
-    return df
+    return map_chunks(_evaluate_chunk, models, [band], jobs)
+
+
+def step_figures_parallel(models: Sequence[LoopModel | None], policy, stable=None, jobs: int = 1) -> pd.DataFrame:
+    """:func:`audit.timedomain.step_figures` over ``jobs`` processes; the same result.
+
+    Parameters
+    ----------
+    models : sequence of LoopModel or None
+        The loops.
+    policy : Policy
+        Settling band and other settings.
+    stable : sequence of bool or None, optional
+        Closed-loop stability per loop, when known.
+    jobs : int
+        Worker processes. [-]
+    """
+    models = list(models)
+    st = [None] * len(models) if stable is None else list(stable)
+    return map_chunks(_steps_chunk, models, [st], jobs, extra=(policy,))

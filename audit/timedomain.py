@@ -1122,7 +1122,8 @@ def add_step_results(audit) -> None:
     stable = None
     if "stable" in res.columns:
         stable = [None if pd.isna(v) else bool(v) for v in res["stable"].tolist()]
-    figs = step_figures(audit.models, audit.inventory.policy, stable)
+    from .parallel import step_figures_parallel
+    figs = step_figures_parallel(audit.models, audit.inventory.policy, stable, getattr(audit.options, "jobs", 1))
     for c in STEP_COLUMNS:
         col = figs[c].to_numpy()
         res[c] = pd.Series(col, index=res.index, dtype=object if c == "step_note" else float)
