@@ -83,7 +83,7 @@ def _steps_chunk(models: list[LoopModel | None], policy, stable: list) -> pd.Dat
 
 
 def map_chunks(fn, models: Sequence[LoopModel | None], per_loop: Sequence[Sequence], jobs: int,
-               extra: tuple = ()) -> pd.DataFrame:
+               extra: tuple = (), chunks_per_job: int = CHUNKS_PER_JOB) -> pd.DataFrame:
     """``fn(models, *per_loop_args, *extra)`` over cascade-safe chunks in ``jobs`` processes.
 
     ``fn`` returns one DataFrame row per model; the rows are put back in order. With one job
@@ -101,6 +101,8 @@ def map_chunks(fn, models: Sequence[LoopModel | None], per_loop: Sequence[Sequen
         Worker processes. [-]
     extra : tuple
         Arguments passed whole to every call.
+    chunks_per_job : int
+        Chunks per worker (more balance the load; fewer save per-call overhead). [-]
     """
     models = list(models)
     n = len(models)
@@ -108,7 +110,7 @@ def map_chunks(fn, models: Sequence[LoopModel | None], per_loop: Sequence[Sequen
     if jobs == 1 or n < 2 * MIN_LOOPS_PER_JOB:
         return fn(models, *per_loop, *extra) if not extra else fn(models, *extra, *per_loop)
     jobs = min(jobs, n // MIN_LOOPS_PER_JOB)
-    parts = _chunks(cascade_groups(models), jobs * CHUNKS_PER_JOB)
+    parts = _chunks(cascade_groups(models), jobs * chunks_per_job)
     args = [[models[i] for i in p] for p in parts]
     split = [[[seq[i] for i in p] for p in parts] for seq in per_loop]
     with ProcessPoolExecutor(max_workers=jobs) as pool:
@@ -165,4 +167,5 @@ def step_figures_parallel(models: Sequence[LoopModel | None], policy, stable=Non
     """
     models = list(models)
     st = [None] * len(models) if stable is None else list(stable)
-    return map_chunks(_steps_chunk, models, [st], jobs, extra=(policy,))
+    # one chunk per worker: the simulation's cost per time step is mostly fixed per call
+    return map_chunks(_steps_chunk, models, [st], jobs, extra=(policy,), chunks_per_job=1)
