@@ -8,7 +8,10 @@ read ``data:`` URIs and files inside the output folder and nothing else
 
 Many loops: every loop needing attention gets a detail section in the HTML; the
 PDF carries the first :data:`PDF_DETAIL_LIMIT` of them in work-list order and
-says so. Plots are drawn only for detail sections.
+says so. Charts are drawn only for the first :data:`PLOT_LIMIT` detail sections:
+:mod:`audit.plots` computes their data (scaled coordinates, ticks, legends) and the
+chart templates (``templates/charts/``) write them as inline SVG with the title and
+legend as page text, once for both the HTML and the PDF.
 """
 
 from __future__ import annotations
