@@ -126,6 +126,18 @@ def inner_loop_column_letter(inventory=None, rows: Sequence[LoopRow] = ()) -> st
 
     Looks for an inventory mapping ``column_letters`` (canonical column -> letter),
     then for any problem the inventory already located in that column.
+
+    Parameters
+    ----------
+    inventory : Inventory or None
+        The inventory read; its ``column_letters`` mapping is used when it has one.
+    rows : sequence of LoopRow
+        Rows whose errors and warnings are searched for a cell in the ``inner_loop`` column.
+
+    Returns
+    -------
+    str or None
+        Column letter (e.g. ``"K"``), None when unknown.
     """
     letters = getattr(inventory, "column_letters", None)
     if isinstance(letters, Mapping) and letters.get("inner_loop"):
@@ -314,6 +326,16 @@ def build_models(audit) -> list[LoopModel | None]:
     Rows with cascade errors get model None and their problems appended to
     ``audit.results['message']`` ('; ' separated, each once). The links are kept in
     ``audit.extras['cascade']`` (:class:`CascadeLinks`) for :func:`add_cascade_checks`.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run; its inventory rows are read, its ``results`` and ``extras`` changed in place.
+
+    Returns
+    -------
+    list of LoopModel or None
+        One per inventory row, in order.
     """
     rows = audit.inventory.rows
     links = link_cascades(rows, inner_loop_column_letter(audit.inventory, rows))
@@ -515,6 +537,12 @@ def add_cascade_checks(audit) -> None:
     Adds ``inner_loop`` (as entered), ``cascade_basis``, ``cascade_ratio`` [-] and
     ``cascade_ok``; appends pair findings to ``findings`` and updates ``status`` of
     outer rows (rules in the module docstring).
+
+    Parameters
+    ----------
+    audit : Audit
+        The run, after the frequency stage; its ``results`` are changed in place. The
+        policy's ``cascade_ratio_min`` [-] and ``marginal_pct`` [%] apply.
     """
     rows = audit.inventory.rows
     res = audit.results

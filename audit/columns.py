@@ -12,6 +12,20 @@ from dataclasses import dataclass
 
 @dataclass(frozen=True)
 class Column:
+    """One results column.
+
+    Attributes
+    ----------
+    name : str
+        Column header in the CSV, JSON and workbook.
+    unit : str
+        Unit as written in the glossary (``s``, ``rad/s``, ``deg``, ``dB``, ``-``, ...).
+    meaning : str
+        One-sentence meaning for the glossary and README.
+    stage : str
+        Stage that adds the column.
+    """
+
     name: str
     unit: str
     meaning: str
@@ -127,12 +141,37 @@ RESULT_COLUMNS: tuple[Column, ...] = (
 
 
 def column_names(stage: str | None = None) -> list[str]:
-    """Names of the results columns, all or those of one stage, in table order."""
+    """Names of the results columns, all or those of one stage, in table order.
+
+    Parameters
+    ----------
+    stage : str or None
+        Only the columns added by this stage; every column when None.
+
+    Returns
+    -------
+    list of str
+    """
     return [c.name for c in RESULT_COLUMNS if stage is None or c.stage == stage]
 
 
 def column(name: str) -> Column:
-    """The column called ``name``."""
+    """The column called ``name``.
+
+    Parameters
+    ----------
+    name : str
+        Column header, e.g. ``"gm_db"``.
+
+    Returns
+    -------
+    Column
+
+    Raises
+    ------
+    KeyError
+        When no results column has that name.
+    """
     for c in RESULT_COLUMNS:
         if c.name == name:
             return c
@@ -140,7 +179,19 @@ def column(name: str) -> Column:
 
 
 def markdown_table(stage: str | None = None) -> str:
-    """The results columns as a Markdown table (for the README)."""
+    """The results columns as a Markdown table (for the README).
+
+    Parameters
+    ----------
+    stage : str or None
+        Only the columns added by this stage (``inventory``, ``frequency``, ``time``,
+        ``disturbance``, ``proposal``, ``priority``, ``cascade``); every column when None.
+
+    Returns
+    -------
+    str
+        The table, one line per column (name, unit, meaning), ``|`` in meanings escaped.
+    """
     lines = ["| column | unit | meaning |", "|---|---|---|"]
     for c in RESULT_COLUMNS:
         if stage is None or c.stage == stage:

@@ -334,13 +334,38 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
 # --------------------------------------------------------------------------- analysis
 
 def welch_segment(n: int) -> int:
-    """Welch segment length for ``n`` samples: 2**floor(log2(n/4)), within [min(n, 32), n]. [-]"""
+    """Welch segment length for ``n`` samples: 2**floor(log2(n/4)), within [min(n, 32), n]. [-]
+
+    Parameters
+    ----------
+    n : int
+        Number of samples in the record. [-]
+
+    Returns
+    -------
+    int
+        Samples per segment. [-]
+    """
     seg = 2 ** int(math.floor(math.log2(max(n / 4.0, 1.0))))
     return int(min(n, max(seg, min(n, 32))))
 
 
 def detrend(t: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, float]:
-    """x minus its least-squares straight line; returns (residual, slope [units/s])."""
+    """x minus its least-squares straight line; returns (residual, slope [units/s]).
+
+    Parameters
+    ----------
+    t : ndarray
+        Sample times. [s]
+    x : ndarray
+        Samples, same length as ``t``. [% of PV range]
+
+    Returns
+    -------
+    tuple of (ndarray, float)
+        The residual (mean and trend removed) [% of PV range] and the slope of the
+        removed line [% of PV range per s]; slope 0 when all times are equal.
+    """
     tc = t - t.mean()
     den = float(np.dot(tc, tc))
     slope = float(np.dot(tc, x - x.mean()) / den) if den > 0 else 0.0
@@ -348,7 +373,18 @@ def detrend(t: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, float]:
 
 
 def amplitude_of(x: np.ndarray) -> float:
-    """The amplitude statistic: 99.7th percentile of |x - mean(x)|. [same unit as x]"""
+    """The amplitude statistic: 99.7th percentile of |x - mean(x)|. [same unit as x]
+
+    Parameters
+    ----------
+    x : ndarray
+        Samples, e.g. a disturbance or a residual. [% of PV range]
+
+    Returns
+    -------
+    float
+        The amplitude, in the unit of ``x``. [% of PV range]
+    """
     return float(np.percentile(np.abs(x - np.mean(x)), AMPLITUDE_PERCENTILE))
 
 
@@ -465,11 +501,14 @@ def predict_residual(model: LoopModel, record: Record | RecordAnalysis, allowed_
     Parameters
     ----------
     model : LoopModel
+        The loop as tuned (process, controller, dead time, PV filter, inner loop).
     record : Record or RecordAnalysis
         The disturbance as logged in manual (a Record is analysed first). Mean and
         trend are removed, as in :func:`analyse_record`.
     allowed_amplitude : float or None
-        [% of PV range]
+        Largest acceptable amplitude of the PV deviation; None when not given. [% of PV range]
+    policy : Policy
+        Used only to analyse a :class:`Record` (``band_energy_fraction`` applies). [-]
 
     Notes
     -----
@@ -524,6 +563,13 @@ def analyse_records(audit) -> None:
     Adds :data:`DIST_COLUMNS`; stores each :class:`RecordAnalysis` in
     ``audit.extras['records'][row.index]``. A bad record puts its message in
     ``dist_note`` and appends it to ``message``; the row's other results stay.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run; record paths are confined to the inventory's folder. Its ``results`` and
+        ``extras`` are changed in place; a derived requirement (``band_rad_s`` [rad/s],
+        ``attenuation_db`` [dB]) is put in force when the row gives none.
     """
     res = audit.results
     inv = audit.inventory
@@ -571,6 +617,11 @@ def add_residuals(audit) -> None:
     Adds :data:`RESIDUAL_COLUMNS`; :class:`Residual` objects go to
     ``audit.extras['residuals'][row.index]``. Run after :func:`analyse_records`
     (and after the frequency stage: rows whose ``stable`` is False are skipped).
+
+    Parameters
+    ----------
+    audit : Audit
+        The run, with its models built; ``results`` and ``extras`` are changed in place.
     """
     res = audit.results
     records = audit.extras.get("records", {})
@@ -611,7 +662,18 @@ def add_residuals(audit) -> None:
 # --------------------------------------------------------------------------- command
 
 def plot_spectrum(an: RecordAnalysis, out: str | Path, title: str = "") -> None:
-    """Write an SVG of the spectrum with the band edge marked (deterministic output)."""
+    """Write an SVG of the spectrum with the band edge marked (deterministic output).
+
+    Parameters
+    ----------
+    an : RecordAnalysis
+        Analysed record: its Welch spectrum (``freqs`` [rad/s], ``psd``
+        [%^2 s/rad]) and band edge ``band_rad_s`` [rad/s].
+    out : str or Path
+        SVG file to write (overwritten).
+    title : str
+        Title above the plot; none when empty.
+    """
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
@@ -638,6 +700,20 @@ def disturbance_command(path: str, allowed: float, out: str | None = None) -> in
     Prints the derived requirement and writes the spectrum plot (default
     ``<stem>-spectrum.svg`` beside the record). Returns 0, or 2 with a one-line
     message on stderr for a bad record.
+
+    Parameters
+    ----------
+    path : str
+        Disturbance record (CSV) to read.
+    allowed : float
+        Largest acceptable amplitude of the PV deviation. [% of PV range]
+    out : str or None
+        SVG file for the spectrum plot; ``<stem>-spectrum.svg`` beside the record when None.
+
+    Returns
+    -------
+    int
+        Exit code: 0 on success, 2 for a bad record or an unwritable plot.
     """
     try:
         rec = read_record(path)

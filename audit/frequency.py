@@ -101,6 +101,17 @@ def build_batch(models: Sequence[LoopModel | None]) -> tuple[Batch, np.ndarray]:
     """Flatten loops (and their inner loops) into a :class:`Batch`.
 
     Returns the batch and, for each model, its entry index (-1 for None).
+
+    Parameters
+    ----------
+    models : sequence of LoopModel or None
+        One model per row; None for a row that cannot be evaluated. An inner-loop
+        model object shared by several outer loops becomes one entry.
+
+    Returns
+    -------
+    tuple of (Batch, ndarray of int)
+        The batch and, per model, the index of its entry (-1 for None).
     """
     entries, top, inner_of = _flatten(models)
     if not entries:
@@ -125,7 +136,23 @@ def _polyval_rows(coef: np.ndarray, idx: np.ndarray, s: np.ndarray) -> np.ndarra
 
 
 def eval_L(batch: Batch, idx: np.ndarray, w: np.ndarray) -> np.ndarray:
-    """L(jw) of entries ``idx`` at frequencies ``w`` (same shape), exact delay. [-]"""
+    """L(jw) of entries ``idx`` at frequencies ``w`` (same shape), exact delay. [-]
+
+    Parameters
+    ----------
+    batch : Batch
+        Loops flattened by :func:`build_batch`.
+    idx : ndarray of int
+        Entry of the batch for each point.
+    w : ndarray
+        Frequency of each point, same shape as ``idx``. [rad/s]
+
+    Returns
+    -------
+    ndarray of complex
+        L(jw) pointwise, with e^{-jw theta} evaluated exactly and an inner loop's
+        closed-loop response included. [-]
+    """
     idx = np.asarray(idx, int)
     w = np.asarray(w, float)
     s = 1j * w

@@ -23,14 +23,40 @@ from .safety import neutralise_formula
 
 
 def output_columns(results: pd.DataFrame, extra_columns: tuple[str, ...] = ()) -> list[str]:
-    """Known results columns present in the table, in table order, then the row's own extra columns."""
+    """Known results columns present in the table, in table order, then the row's own extra columns.
+
+    Parameters
+    ----------
+    results : pandas.DataFrame
+        The results table.
+    extra_columns : tuple of str
+        The inventory's unknown headers, carried to the results; those present and
+        not already known are appended in this order.
+
+    Returns
+    -------
+    list of str
+        Column names to write.
+    """
     known = [c.name for c in RESULT_COLUMNS if c.name in results.columns]
     extras = [c for c in extra_columns if c in results.columns and c not in known]
     return known + extras
 
 
 def plain(value: Any) -> Any:
-    """A JSON-safe Python value: inf -> "inf", NaN/None/NA -> None, numpy scalars -> Python."""
+    """A JSON-safe Python value: inf -> "inf", NaN/None/NA -> None, numpy scalars -> Python.
+
+    Parameters
+    ----------
+    value : Any
+        A results value; lists, tuples and dicts are converted element by element,
+        anything else not a number becomes text.
+
+    Returns
+    -------
+    Any
+        None, bool, int, float, str, list or dict.
+    """
     if value is None or value is pd.NA or value is pd.NaT:
         return None
     if isinstance(value, (bool, np.bool_)):
@@ -52,7 +78,19 @@ def plain(value: Any) -> Any:
 
 
 def csv_cell(value: Any) -> str:
-    """Text of one CSV cell."""
+    """Text of one CSV cell.
+
+    Parameters
+    ----------
+    value : Any
+        A results value (numpy or Python scalar, text, None/NaN).
+
+    Returns
+    -------
+    str
+        Blank for None/NaN, ``true``/``false`` for booleans, ``repr`` of floats
+        (``inf``/``-inf`` kept), and text with formula-like content neutralised.
+    """
     v = plain(value)
     if v is None:
         return ""
@@ -68,7 +106,17 @@ def csv_cell(value: Any) -> str:
 
 
 def write_csv(path: Path, results: pd.DataFrame, columns: list[str]) -> None:
-    """Write results.csv."""
+    """Write results.csv.
+
+    Parameters
+    ----------
+    path : Path
+        File to write (UTF-8, overwritten).
+    results : pandas.DataFrame
+        The results table, one row per inventory row.
+    columns : list of str
+        Columns to write, in order (see :func:`output_columns`); the header row.
+    """
     with open(path, "w", newline="", encoding="utf-8") as fh:
         wr = csv.writer(fh)
         wr.writerow(columns)
@@ -77,7 +125,19 @@ def write_csv(path: Path, results: pd.DataFrame, columns: list[str]) -> None:
 
 
 def write_json(path: Path, results: pd.DataFrame, columns: list[str], meta: dict[str, Any]) -> None:
-    """Write results.json (strict JSON)."""
+    """Write results.json (strict JSON).
+
+    Parameters
+    ----------
+    path : Path
+        File to write (UTF-8, overwritten).
+    results : pandas.DataFrame
+        The results table, one row per inventory row.
+    columns : list of str
+        Columns to write, in order (see :func:`output_columns`); listed under ``columns``.
+    meta : dict
+        What identifies the run (``Audit.meta``); its keys go at the top level.
+    """
     rows = [{c: plain(v) for c, v in zip(columns, rec)}
             for rec in results[columns].itertuples(index=False, name=None)]
     doc = {**plain(meta), "columns": columns, "loops": rows}

@@ -66,7 +66,23 @@ class Audit:
 
 
 def audit_date(option: str | None) -> str:
-    """The audit date as ISO text (``--date`` makes runs reproducible)."""
+    """The audit date as ISO text (``--date`` makes runs reproducible).
+
+    Parameters
+    ----------
+    option : str or None
+        The ``--date`` option, an ISO date (YYYY-MM-DD); today when None or empty.
+
+    Returns
+    -------
+    str
+        The date as YYYY-MM-DD.
+
+    Raises
+    ------
+    ValueError
+        When ``option`` is not an ISO date.
+    """
     if option:
         return _dt.date.fromisoformat(option).isoformat()
     return _dt.date.today().isoformat()
@@ -76,7 +92,20 @@ Stage = Callable[[Audit], None]
 
 
 def base_results(inv: Inventory) -> pd.DataFrame:
-    """The identity columns of every row, the row's problems, and its own extra columns."""
+    """The identity columns of every row, the row's problems, and its own extra columns.
+
+    Parameters
+    ----------
+    inv : Inventory
+        The inventory read; every row gives one results row, in order.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``row``, ``tag``, ``service``, ``area``, ``criticality``, ``message``,
+        ``band_rad_s`` [rad/s] and ``attenuation_db`` [dB] (as entered, NaN when blank),
+        then the inventory's extra columns.
+    """
     recs = []
     for r in inv.rows:
         msgs = [str(p) for p in r.errors] + [f"warning: {p}" for p in r.warnings]
@@ -96,13 +125,27 @@ def base_results(inv: Inventory) -> pd.DataFrame:
 
 
 def build_models(audit: "Audit") -> None:
-    """A LoopModel for every valid row (None for invalid rows); cascades composed."""
+    """A LoopModel for every valid row (None for invalid rows); cascades composed.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run; its ``models`` are set in place.
+    """
     from .cascade import build_models as _build
     audit.models = _build(audit)
 
 
 def evaluate_frequency(audit: "Audit") -> None:
-    """Frequency-domain figures, limits in force, status and findings of every row."""
+    """Frequency-domain figures, limits in force, status and findings of every row.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run, after :func:`build_models`; the figure columns, ``ms_max`` [-],
+        ``gm_min_db`` [dB], ``pm_min_deg`` [deg], ``band_required_db`` [dB], ``band_ok``,
+        ``status`` and ``findings`` are added to its ``results`` in place.
+    """
     from .frequency import FIGURE_COLUMNS
     from .parallel import evaluate_parallel
     from .verdict import judge, limits_in_force
@@ -148,6 +191,12 @@ def judge_residuals(audit: "Audit") -> None:
     The record of the disturbance passed through S (exact delay) is what the loop as tuned would
     leave; when its amplitude exceeds ``allowed_amplitude`` the loop fails, whatever the band check
     said (the record is the more direct evidence).
+
+    Parameters
+    ----------
+    audit : Audit
+        The run, after :func:`audit.disturbance.add_residuals`; ``status`` and ``findings`` of its ``results``
+        are updated in place. Nothing happens without a ``residual_ok`` column.
     """
     res = audit.results
     if "residual_ok" not in res.columns:
@@ -178,7 +227,16 @@ STAGES: tuple[tuple[str, str, str], ...] = (
 
 
 def run_stages(audit: "Audit", progress: Callable[[str], None] | None = None) -> None:
-    """Run every stage in order, timing each."""
+    """Run every stage in order, timing each.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run (from :func:`new_audit`); each stage adds to it in place, and the
+        stage's wall time [s] goes into ``audit.timings``.
+    progress : callable or None
+        Called with each stage's name before the stage runs; nothing when None.
+    """
     import importlib
     import time
 
@@ -191,6 +249,19 @@ def run_stages(audit: "Audit", progress: Callable[[str], None] | None = None) ->
 
 
 def new_audit(inv: Inventory, options: AuditOptions) -> Audit:
-    """An Audit with identity columns only, ready for the stages."""
+    """An Audit with identity columns only, ready for the stages.
+
+    Parameters
+    ----------
+    inv : Inventory
+        The inventory read.
+    options : AuditOptions
+        What the user asked for; ``options.date`` fixes the audit date.
+
+    Returns
+    -------
+    Audit
+        With ``results`` from :func:`base_results` and no models yet (None per row).
+    """
     return Audit(inventory=inv, options=options, models=[None] * len(inv.rows),
                  results=base_results(inv), date=audit_date(options.date))

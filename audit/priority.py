@@ -99,7 +99,22 @@ def _txt(rec: Mapping[str, Any], key: str) -> str:
 
 
 def severity(rec: Mapping[str, Any]) -> str:
-    """Severity class of one results row (status, limits in force and figures)."""
+    """Severity class of one results row (status, limits in force and figures).
+
+    Parameters
+    ----------
+    rec : mapping
+        One row of the results table: ``status``, the figures ``ms`` [-], ``gm_db`` [dB],
+        ``pm_deg`` [deg], ``gm_low`` [-] and the limits in force ``ms_max`` [-],
+        ``gm_min_db`` [dB], ``pm_min_deg`` [deg].
+
+    Returns
+    -------
+    str
+        ``unstable``, ``invalid``, ``marginal`` or ``passes`` as the status says; for a
+        failing row ``fails robustness`` when a robustness limit is broken (both ways for the
+        gain margin), else ``misses requirement``; any other status gives ``fails robustness``.
+    """
     status = _txt(rec, "status")
     if status in ("unstable", "invalid", "marginal", "passes"):
         return status
@@ -113,7 +128,21 @@ def severity(rec: Mapping[str, Any]) -> str:
 
 
 def benefit(rec: Mapping[str, Any]) -> float:
-    """Expected benefit in [0, 1] of the proposal of one results row (see the module notes)."""
+    """Expected benefit in [0, 1] of the proposal of one results row (see the module notes).
+
+    Parameters
+    ----------
+    rec : mapping
+        One row of the results table with the figures before (``ms`` [-], ``band_s_db`` [dB],
+        ``load_iae_s`` [s]) and after the proposal (``proposal_ms`` [-],
+        ``proposal_band_s_db`` [dB], ``proposal_iae_s`` [s]) and ``status``.
+
+    Returns
+    -------
+    float
+        The largest relative improvement, clipped to [0, 1]; 0 without a proposal,
+        1 for an unstable loop with one. [-]
+    """
     after_ms = _num(rec, "proposal_ms")
     if not math.isfinite(after_ms):
         return 0.0
@@ -206,6 +235,13 @@ def priority_of(rec: Mapping[str, Any], policy: Policy) -> Priority:
 def work_list(results: pd.DataFrame, policy: Policy) -> pd.DataFrame:
     """Score and rank every row; the work list is the rows with a rank.
 
+    Parameters
+    ----------
+    results : pandas.DataFrame
+        The results table with the frequency and proposal (and optionally step) columns.
+    policy : Policy
+        Criticality weights ``weight_high``, ``weight_medium``, ``weight_low``. [-]
+
     Returns
     -------
     pandas.DataFrame
@@ -231,7 +267,14 @@ def work_list(results: pd.DataFrame, policy: Policy) -> pd.DataFrame:
 
 
 def add_priority(audit) -> None:
-    """Pipeline stage: add :data:`PRIORITY_COLUMNS` to ``audit.results``."""
+    """Pipeline stage: add :data:`PRIORITY_COLUMNS` to ``audit.results``.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run, after the proposals stage; ``results`` is changed in place and the
+        inventory's policy gives the criticality weights.
+    """
     wl = work_list(audit.results, audit.inventory.policy)
     for c in PRIORITY_COLUMNS:
         audit.results[c] = wl[c]

@@ -10,7 +10,20 @@ from .pipeline import STAGES, Audit, AuditOptions, new_audit, run_stages
 
 
 def run_audit(inventory_path: str, options: AuditOptions) -> tuple[Audit, dict[str, Path]]:
-    """Read the inventory, run every stage, write every output; return the Audit and the files written."""
+    """Read the inventory, run every stage, write every output; return the Audit and the files written.
+
+    Parameters
+    ----------
+    inventory_path : str
+        The loop inventory workbook (or CSV) to read.
+    options : AuditOptions
+        What the user asked for (output folder, date, jobs, history, quiet, ...).
+
+    Returns
+    -------
+    tuple of (Audit, dict of str to Path)
+        The finished run and the files written, by name (e.g. ``"results.csv"``).
+    """
     from .cli import Progress
     from .inventory import read_inventory
 
@@ -38,7 +51,18 @@ def run_audit(inventory_path: str, options: AuditOptions) -> tuple[Audit, dict[s
 
 
 def write_outputs(audit: Audit) -> dict[str, Path]:
-    """results.csv, results.json, then the report and workbook."""
+    """results.csv, results.json, then the report and workbook.
+
+    Parameters
+    ----------
+    audit : Audit
+        The finished run; files go into ``audit.options.out_dir`` (created when missing).
+
+    Returns
+    -------
+    dict of str to Path
+        The files written, by name.
+    """
     out = Path(audit.options.out_dir)
     out.mkdir(parents=True, exist_ok=True)
     cols = output_columns(audit.results, audit.inventory.extra_columns)

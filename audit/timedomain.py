@@ -79,6 +79,19 @@ def controller_poly(c: Controller) -> tuple[list[float], list[float]]:
     """num(s), den(s) of C(s), the same function as :attr:`Controller.rational`, built directly.
 
     Raises ValueError when C is improper (derivative without filter).
+
+    Parameters
+    ----------
+    c : Controller
+        The controller (parallel, series or ideal form) in project units: gains [-],
+        integral and derivative times [s], integral gain ``ki`` [1/s], derivative gain ``kd`` [s],
+        derivative filter factor ``alpha`` [-].
+
+    Returns
+    -------
+    tuple of (list of float, list of float)
+        Numerator and denominator coefficients, descending in s, numerator padded to
+        the denominator's length.
     """
     a = c.alpha
     if c.form == "parallel":
@@ -160,12 +173,34 @@ class Batch:
         return self.A.shape[0]
 
     def take(self, idx) -> "Batch":
+        """The loops ``idx`` of the batch, in that order.
+
+        Parameters
+        ----------
+        idx : array_like of int
+            Loop indices.
+
+        Returns
+        -------
+        Batch
+        """
         idx = np.asarray(idx, int)
         return Batch(*(getattr(self, f)[idx] for f in Batch.__dataclass_fields__))
 
     @staticmethod
     def concat(parts: list["Batch"]) -> "Batch":
-        """Stack batches, padding states (decaying, unexcited) and channels (unused)."""
+        """Stack batches, padding states (decaying, unexcited) and channels (unused).
+
+        Parameters
+        ----------
+        parts : list of Batch
+            Batches with the same number of outputs.
+
+        Returns
+        -------
+        Batch
+            The loops of all parts, in order, padded to the largest state and channel counts.
+        """
         ns = max([1] + [p.A.shape[1] for p in parts])
         m = max([1] + [p.Cq.shape[1] for p in parts])
         ny = parts[0].Cy.shape[1]
@@ -371,6 +406,19 @@ def build_batch(models: Sequence[LoopModel], kind: str) -> tuple[Batch | None, d
     Loops that cannot be built (improper controller, ...) are left out and listed
     with the reason in the second return value (index -> message); the batch rows
     follow the order of the remaining models.
+
+    Parameters
+    ----------
+    models : sequence of LoopModel
+        The loops (inner loops of cascades included through ``inner``).
+    kind : str
+        ``load`` (unit step at the process input), ``setpoint`` (unit set-point step) or
+        ``output`` (disturbance at the process output, through S).
+
+    Returns
+    -------
+    tuple of (Batch or None, dict of int to str)
+        The batch (None when no loop could be built) and the loops left out, by index.
     """
     graphs: dict[int, tuple[_Graph, list[dict]]] = {}
     groups: dict[tuple, list[int]] = {}
@@ -444,7 +492,19 @@ def _scales(r: Rational) -> float:
 
 
 def characteristic_time(m: LoopModel) -> float:
-    """A time by which the loop's step responses should have largely settled, /HORIZON_FACTOR. [s]"""
+    """A time by which the loop's step responses should have largely settled, /HORIZON_FACTOR. [s]
+
+    Parameters
+    ----------
+    m : LoopModel
+        The loop: dead time, PV filter, derivative time, process lags (or rational
+        time scales), inner loop and the integrating or self-regulating gains all add.
+
+    Returns
+    -------
+    float
+        Characteristic time Tc, 1 s when the sum is not finite and positive. [s]
+    """
     c = m.controller
     kc = c.kp if c.form == "parallel" else c.kc
     ki = c.integral_gain
@@ -507,6 +567,26 @@ def plan_step(delays: Sequence[float], horizon: float, soft: Sequence[float] = (
     delay (and every ``soft`` time, when possible) is a whole number of steps when
     the delays are commensurate; the step divides ``divisor`` when given. Beyond
     ``n_cap`` steps the horizon is cut (``truncated``). Times in [s].
+
+    Parameters
+    ----------
+    delays : sequence of float
+        Delays of the loop's channels; zero or negative ones are ignored. [s]
+    horizon : float
+        Time to simulate. [s]
+    soft : sequence of float
+        Times worth making a whole number of steps, when possible. [s]
+    divisor : float or None
+        A time the step must divide (e.g. a record's sample interval); none when None. [s]
+    n_target : int
+        Steps per horizon aimed at. [-]
+    n_cap : int
+        Most steps of one simulation. [-]
+
+    Returns
+    -------
+    _Plan
+        Step ``h`` [s], number of steps ``n_steps`` [-] and ``truncated``.
     """
     req = [float(d) for d in delays if d > 0.0]
     h0 = horizon / n_target
@@ -552,6 +632,16 @@ def expm_batch(M: np.ndarray) -> np.ndarray:
 
     Scaling and squaring with a degree-16 Taylor polynomial on matrices scaled to
     infinity-norm <= 1/2 (truncation below 1e-19 relative) [4]_.
+
+    Parameters
+    ----------
+    M : ndarray, shape (L, n, n)
+        Stacked square matrices (e.g. A h, a state matrix times a step [s]). [-]
+
+    Returns
+    -------
+    ndarray, shape (L, n, n)
+        exp(M[i]) for each i. [-]
 
     References
     ----------
@@ -685,7 +775,19 @@ def simulate(batch: Batch, h: np.ndarray, n_steps: int, ext: Callable[[int], np.
 
 
 def final_values(batch: Batch) -> np.ndarray:
-    """Steady outputs after a unit step (every delay is 1 at s = 0), shape (outputs, loops); NaN when none."""
+    """Steady outputs after a unit step (every delay is 1 at s = 0), shape (outputs, loops); NaN when none.
+
+    Parameters
+    ----------
+    batch : Batch
+        Loops broken at their delays (see :class:`Batch`).
+
+    Returns
+    -------
+    ndarray, shape (outputs, loops)
+        Final value of each output (0 the PV, 1 the controller output) per unit of the
+        step; NaN for a loop with no steady state (singular closed-loop matrix). [-]
+    """
     L, ns, m = len(batch), batch.A.shape[1], batch.Cq.shape[1]
     K = np.linalg.solve(np.eye(m)[None] - batch.Dq[:, :, :m], np.concatenate([batch.Cq, batch.Dq[:, :, m:]], axis=2))
     Acl = batch.A + batch.B[:, :, :m] @ K[:, :, :ns]
@@ -702,7 +804,27 @@ def final_values(batch: Batch) -> np.ndarray:
 
 def plan_batch(batch: Batch, horizons: np.ndarray, divisors: np.ndarray | None = None,
                n_target: int = N_TARGET, n_cap: int = N_CAP) -> list[_Plan]:
-    """:func:`plan_step` for every loop of a batch."""
+    """:func:`plan_step` for every loop of a batch.
+
+    Parameters
+    ----------
+    batch : Batch
+        The loops; their ``delays`` [s] and ``soft`` times [s] are used.
+    horizons : ndarray
+        Time to simulate, one per loop. [s]
+    divisors : ndarray or None
+        A time each loop's step must divide (e.g. a record's sample interval), one per
+        loop; none when None. [s]
+    n_target : int
+        Steps per horizon aimed at. [-]
+    n_cap : int
+        Most steps of one simulation; a longer horizon is cut. [-]
+
+    Returns
+    -------
+    list of _Plan
+        Step [s], number of steps and whether the horizon was cut, one per loop.
+    """
     out = []
     for i in range(len(batch)):
         d = batch.delays[i]
@@ -1117,6 +1239,12 @@ def add_step_results(audit) -> None:
     """Pipeline stage: add :data:`STEP_COLUMNS` to ``audit.results`` (rows with a model).
 
     Uses the ``stable`` column when an earlier stage has added it.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run, with its models built; ``results`` is changed in place. The policy's
+        ``settle_band_pct`` [%] and ``options.jobs`` (worker processes) apply.
     """
     res = audit.results
     stable = None

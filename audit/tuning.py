@@ -205,7 +205,19 @@ class Figures:
 
     @staticmethod
     def of(fig: Mapping[str, Any]) -> "Figures":
-        """From a row of :func:`audit.frequency.evaluate` or of the results table."""
+        """From a row of :func:`audit.frequency.evaluate` or of the results table.
+
+        Parameters
+        ----------
+        fig : mapping
+            A row with ``stable``, ``ms`` [-], ``gm_db`` [dB], ``gm_low`` [-], ``pm_deg`` [deg],
+            ``dm_s`` [s], ``band_s_db`` [dB] and ``iae`` [s]; missing or non-numeric values
+            become NaN (``stable`` False).
+
+        Returns
+        -------
+        Figures
+        """
         def g(k):
             v = fig.get(k) if hasattr(fig, "get") else fig[k]
             try:
@@ -617,14 +629,42 @@ def round_sig(x: float, digits: int = 3, direction: int = 0) -> float:
 
 def rounded(s: Settings, conventions: Mapping[str, str]) -> Settings:
     """The settings as the engineer would type them: three significant figures in the row's terms,
-    the gain and the integral action rounded towards the more robust side."""
+    the gain and the integral action rounded towards the more robust side.
+
+    Parameters
+    ----------
+    s : Settings
+        Settings in project units in the row's form.
+    conventions : mapping
+        ``LoopRow.conventions`` (e.g. ``{"kc": "pb_pct", "ti": "reset_rpm", "td": "td_min"}``);
+        missing or unknown entries fall back to project units.
+
+    Returns
+    -------
+    Settings
+        The rounded settings, back in project units.
+    """
     t = row_terms(s, conventions)
     r = {c: (None if v is None else round_sig(v, 3, _TERM_INFO[c][3])) for c, v in t.items()}
     return from_row_terms(r, s.form, s.method, s.alpha)
 
 
 def settings_text(terms: Mapping[str, float | None], form: str) -> str:
-    """Settings in words, e.g. ``PB 85.0 %, reset 0.238 repeats/min, Td 0.500 min (series form)``."""
+    """Settings in words, e.g. ``PB 85.0 %, reset 0.238 repeats/min, Td 0.500 min (series form)``.
+
+    Parameters
+    ----------
+    terms : mapping
+        Settings in the row's own columns and units, convention -> value (from
+        :func:`row_terms`); None for an absent term.
+    form : str
+        Controller form named at the end (``ideal``, ``series`` or ``parallel``).
+
+    Returns
+    -------
+    str
+        One label, value and unit per term, comma-separated.
+    """
     parts = []
     for c, v in terms.items():
         _, label, unit, _ = _TERM_INFO[c]
@@ -658,6 +698,17 @@ def characteristic_w(model: LoopModel) -> float | None:
 
     For a process with non-negative low-frequency phase this is its phase crossover w180;
     None when the phase never gets there (no dead time or lag bounds the gain).
+
+    Parameters
+    ----------
+    model : LoopModel
+        The loop; its controller is replaced by C = 1 (sign, process, PV filter, dead time,
+        half the sample period and inner loop are kept).
+
+    Returns
+    -------
+    float or None
+        The frequency, on a grid of 2401 points from 1e-7 to 1e5 rad/s. [rad/s]
     """
     w = np.logspace(-7, 5, 2401)
     ph = np.unwrap(np.angle(_unit_loop(model).L(w)))
@@ -935,7 +986,18 @@ def _optimum_candidates(P: np.ndarray, w: np.ndarray, wc: float, alpha: float, l
 
 
 def effective_extra_delay(model: LoopModel) -> float:
-    """Dead time the loop adds to its process model for the rules: Ts/2 + PV filter lag. [s]"""
+    """Dead time the loop adds to its process model for the rules: Ts/2 + PV filter lag. [s]
+
+    Parameters
+    ----------
+    model : LoopModel
+        The loop: its sample period ``sample`` [s] and PV filter time constant ``pv_filter`` [s].
+
+    Returns
+    -------
+    float
+        The extra dead time. [s]
+    """
     return 0.5 * model.sample + model.pv_filter
 
 
@@ -1009,6 +1071,22 @@ def judge_candidate(fig: Figures, lim: Limits, req: Requirement) -> tuple[bool, 
     three significant figures). ``spare`` is the smallest relative slack over the limits and the
     requirement: (ms_max - Ms)/ms_max, (GM - gm_min)/gm_min, (PM - pm_min)/pm_min and
     (required level - band level)/A. [-]
+
+    Parameters
+    ----------
+    fig : Figures
+        Exact figures of the candidate: ``ms`` [-], ``gm_db`` [dB], ``gm_low`` [-],
+        ``pm_deg`` [deg], ``band_s_db`` [dB].
+    lim : Limits
+        Robustness limits in force: ``ms_max`` [-], ``gm_min_db`` [dB], ``pm_min_deg`` [deg].
+    req : Requirement
+        Rejection requirement in force (``band_rad_s`` [rad/s], ``attenuation_db`` [dB]);
+        always met when inactive.
+
+    Returns
+    -------
+    tuple of (bool, bool, float)
+        Meets the limits, meets the requirement, and ``spare`` (-inf when unstable). [-]
     """
     down = -20 * math.log10(fig.gm_low) if _finite(fig.gm_low) and fig.gm_low > 0 else math.inf
     gm = fig.gm_db if not math.isnan(fig.gm_db) else math.inf
@@ -1038,7 +1116,19 @@ def _dc_sign(proc: Process) -> float:
 
 
 def action_is_wrong(model: LoopModel) -> bool:
-    """True when the controller action and gain sign give positive feedback at low frequency."""
+    """True when the controller action and gain sign give positive feedback at low frequency.
+
+    Parameters
+    ----------
+    model : LoopModel
+        The loop: its ``sign`` (controller action), the sign of the process's low-frequency
+        gain and the sign of the controller gain (the integral gain when the gain is zero).
+
+    Returns
+    -------
+    bool
+        True for positive feedback; False when it is negative or a sign is zero.
+    """
     c = model.controller
     g = c.kp if c.form == "parallel" else c.kc
     if not g:
@@ -1051,6 +1141,21 @@ def limiting_factor(model: LoopModel, req: Requirement) -> str:
 
     The effective dead time theta_e = theta + Ts/2 + tau_f + (inverse response) bounds the useful
     bandwidth to about 1/theta_e; a right-half-plane zero z bounds it to about z/2.
+
+    Parameters
+    ----------
+    model : LoopModel
+        The loop: process dead time [s], sample period [s], PV filter time constant [s],
+        negative lead [s], right-half-plane zeros z (as 1/z [s]) and inner loop are weighed.
+    req : Requirement
+        Rejection requirement in force; its band edge ``band_rad_s`` [rad/s] is quoted
+        when active.
+
+    Returns
+    -------
+    str
+        The largest contribution to the effective dead time, the bandwidth it allows
+        [rad/s] and the remedies.
 
     References
     ----------
@@ -1118,7 +1223,22 @@ def _get(rec: Mapping[str, Any] | None, key: str):
 
 
 def limits_for(row: LoopRow, figures_row: Mapping[str, Any] | None, policy: Policy) -> Limits:
-    """Limits in force: the results row's, else the row's overrides, else the policy's."""
+    """Limits in force: the results row's, else the row's overrides, else the policy's.
+
+    Parameters
+    ----------
+    row : LoopRow
+        The inventory row; its overrides ``ms_max`` [-], ``gm_min_db`` [dB], ``pm_min_deg``
+        [deg] apply where the results row has none.
+    figures_row : mapping or None
+        The row of the results table with the limits in force, or None.
+    policy : Policy
+        Default limits ``ms_max`` [-], ``gm_min_db`` [dB], ``pm_min_deg`` [deg].
+
+    Returns
+    -------
+    Limits
+    """
     def pick(k):
         v = _get(figures_row, k)
         if v is None:
@@ -1128,7 +1248,21 @@ def limits_for(row: LoopRow, figures_row: Mapping[str, Any] | None, policy: Poli
 
 
 def requirement_for(row: LoopRow, figures_row: Mapping[str, Any] | None) -> Requirement:
-    """Rejection requirement in force: the results row's (which may come from a disturbance record), else the row's."""
+    """Rejection requirement in force: the results row's (which may come from a disturbance record), else the row's.
+
+    Parameters
+    ----------
+    row : LoopRow
+        The inventory row; its ``band_rad_s`` [rad/s] and ``attenuation_db`` [dB] apply
+        when the results row has no ``band_rad_s`` column.
+    figures_row : mapping or None
+        The row of the results table with ``band_rad_s`` [rad/s] and ``attenuation_db``
+        [dB], or None.
+
+    Returns
+    -------
+    Requirement
+    """
     wd, a = _get(figures_row, "band_rad_s"), _get(figures_row, "attenuation_db")
     if figures_row is None or "band_rad_s" not in figures_row:
         wd, a = row.band_rad_s, row.attenuation_db
@@ -1136,7 +1270,21 @@ def requirement_for(row: LoopRow, figures_row: Mapping[str, Any] | None) -> Requ
 
 
 def current_settings(row: LoopRow, model: LoopModel) -> Settings:
-    """The row's present settings as :class:`Settings` in the row's form."""
+    """The row's present settings as :class:`Settings` in the row's form.
+
+    Parameters
+    ----------
+    row : LoopRow
+        The inventory row (not used for the values; kept for a uniform call).
+    model : LoopModel
+        The loop; its controller gives the settings (parallel gains are held as their
+        ideal equivalents: gain [-], integral time [s], derivative time [s]).
+
+    Returns
+    -------
+    Settings
+        With method ``current``.
+    """
     c = model.controller
     if c.form == "parallel":
         return Settings("current", "parallel", c.kp, (c.kp / c.ki if c.ki else None), (c.kd / c.kp if c.kp else 0.0),
@@ -1354,7 +1502,21 @@ def _changes_text(p: Proposal) -> str:
 
 
 def proposal_record(p: Proposal | None) -> dict[str, Any]:
-    """The results columns of one proposal (:data:`PROPOSAL_COLUMNS`)."""
+    """The results columns of one proposal (:data:`PROPOSAL_COLUMNS`).
+
+    Parameters
+    ----------
+    p : Proposal or None
+        The outcome for one loop; None for a loop with no proposal (blank text, NaN figures).
+
+    Returns
+    -------
+    dict
+        Column -> value; settings in project units (``proposal_kc`` [-], ``proposal_ti_s``
+        [s], ``proposal_td_s`` [s]) and predicted figures (``proposal_ms`` [-],
+        ``proposal_gm_db`` [dB], ``proposal_pm_deg`` [deg], ``proposal_dm_s`` [s],
+        ``proposal_band_s_db`` [dB], ``proposal_iae_s`` [s]).
+    """
     rec: dict[str, Any] = {c: math.nan for c in PROPOSAL_COLUMNS}
     for c in ("verdict", "proposal_method", "proposal_form", "proposal_settings", "proposal_changes",
               "limiting_factor", "proposal_note"):
@@ -1383,6 +1545,12 @@ def add_proposals(audit) -> None:
     every evaluated row (``all``) or for none (``none``). Adds :data:`PROPOSAL_COLUMNS` to
     ``audit.results`` and stores the :class:`Proposal` objects in
     ``audit.extras['proposals'][row.index]``.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run, after the frequency (and cascade) stages; ``options.propose`` selects the
+        rows, the inventory's policy gives the limits; ``results`` and ``extras`` change in place.
     """
     res = audit.results
     rows = audit.inventory.rows

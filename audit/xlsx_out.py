@@ -46,6 +46,16 @@ def cell_value(value: Any) -> Any:
 
     None/NaN -> None (blank), infinities -> ``'inf'``/``'-inf'`` (text), numpy
     scalars -> Python scalars, text stripped of characters XML cannot hold.
+
+    Parameters
+    ----------
+    value : Any
+        A results value; a list or tuple becomes comma-separated text.
+
+    Returns
+    -------
+    Any
+        None, bool, int, float or str.
     """
     if isinstance(value, (tuple, list)):
         return ILLEGAL_CHARACTERS_RE.sub("", ", ".join(str(x) for x in value))
@@ -56,7 +66,27 @@ def cell_value(value: Any) -> Any:
 
 
 def put(ws, row: int, col: int, value: Any, number_format: str | None = None):
-    """Write one cell; formula-like text becomes an explicit, quote-prefixed string cell."""
+    """Write one cell; formula-like text becomes an explicit, quote-prefixed string cell.
+
+    Parameters
+    ----------
+    ws : openpyxl.worksheet.worksheet.Worksheet
+        Sheet to write into.
+    row : int
+        Row number, 1-based.
+    col : int
+        Column number, 1-based.
+    value : Any
+        A results value, converted by :func:`cell_value`.
+    number_format : str or None
+        Excel number format for a float (``"0.0000"`` switches to ``"0.00E+00"`` for
+        0 < |value| < 1e-3); none when None.
+
+    Returns
+    -------
+    openpyxl.cell.cell.Cell
+        The cell written.
+    """
     v = cell_value(value)
     cell = ws.cell(row=row, column=col)
     cell.value = v
@@ -93,7 +123,17 @@ def _table(ws, headers: Sequence[str], rows: Iterable[Sequence[Any]], formats: S
 
 
 def loop_columns(results: pd.DataFrame) -> list[str]:
-    """Every results column: the documented ones in table order, then the rest in results order."""
+    """Every results column: the documented ones in table order, then the rest in results order.
+
+    Parameters
+    ----------
+    results : pandas.DataFrame
+        The results table.
+
+    Returns
+    -------
+    list of str
+    """
     known = [c.name for c in RESULT_COLUMNS if c.name in results.columns]
     return known + [c for c in results.columns if c not in known]
 
