@@ -44,6 +44,7 @@ class Progress:
                              f"({time.perf_counter() - self.t0:.1f} s)\n")
 
     def close(self) -> None:
+        """End the progress display (a final line on a terminal)."""
         if not self.quiet and self.tty:
             sys.stderr.write(f"\r[{'#' * 30}] done in {time.perf_counter() - self.t0:.1f} s{' ' * 10}\n")
 
@@ -153,7 +154,13 @@ def history(db, tag, site, as_csv):
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Run the command line with ``argv`` (default sys.argv[1:]); return the exit code."""
+    """Run the command line and return the exit code.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        The arguments after the program name (default ``sys.argv[1:]``).
+    """
     from .history import HistoryError
     from .inventory import InventoryError
 

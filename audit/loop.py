@@ -48,7 +48,13 @@ class Rational:
 
     @staticmethod
     def of(num, den) -> "Rational":
-        """Build from sequences, trimming leading zeros."""
+        """Build from sequences, trimming leading zeros.
+
+        Parameters
+        ----------
+        num, den : sequence of float
+            Numerator and denominator coefficients, descending powers of s (s in [1/s]).
+        """
         return Rational(_lead_trimmed(num) or (0.0,), _lead_trimmed(den))
 
     def __mul__(self, other: "Rational") -> "Rational":
@@ -76,7 +82,13 @@ ONE = Rational((1.0,), (1.0,))
 
 
 def lag(tau: float) -> Rational:
-    """First-order lag 1/(tau s + 1); tau in [s]. A zero tau gives 1."""
+    """First-order lag 1/(tau s + 1); a zero tau gives 1.
+
+    Parameters
+    ----------
+    tau : float
+        Time constant. [s]
+    """
     return ONE if not tau else Rational.of([1.0], [tau, 1.0])
 
 
@@ -207,6 +219,7 @@ class Controller:
 
     @property
     def has_integral(self) -> bool:
+        """True when the controller has integral action."""
         return self.integral_gain != 0.0
 
 
@@ -214,7 +227,18 @@ def series_to_ideal(kc: float, ti: float, td: float) -> tuple[float, float, floa
     """Series (interacting) settings to ideal (non-interacting), filter aside.
 
     kc' = kc (1 + td/ti), ti' = ti + td, td' = ti td/(ti + td)  (Astrom & Hagglund 1995, eq. 3.10).
-    Returns (kc [-], ti [s], td [s]).
+
+    Parameters
+    ----------
+    kc : float
+        Series controller gain. [-]
+    ti, td : float
+        Series integral and derivative times. [s]
+
+    Returns
+    -------
+    tuple of float
+        Ideal (kc [-], ti [s], td [s]).
     """
     return kc * (1.0 + td / ti), ti + td, ti * td / (ti + td)
 
@@ -222,7 +246,17 @@ def series_to_ideal(kc: float, ti: float, td: float) -> tuple[float, float, floa
 def ideal_to_series(kc: float, ti: float, td: float) -> tuple[float, float, float] | None:
     """Ideal settings to series; exists only when ti >= 4 td (Astrom & Hagglund 1995, eq. 3.11).
 
-    Returns (kc [-], ti [s], td [s]) or None when no series equivalent exists.
+    Parameters
+    ----------
+    kc : float
+        Ideal controller gain. [-]
+    ti, td : float
+        Ideal integral and derivative times. [s]
+
+    Returns
+    -------
+    tuple of float or None
+        Series (kc [-], ti [s], td [s]), or None when no series equivalent exists.
     """
     if td == 0:
         return kc, ti, 0.0
@@ -234,12 +268,42 @@ def ideal_to_series(kc: float, ti: float, td: float) -> tuple[float, float, floa
 
 
 def ideal_to_parallel(kc: float, ti: float | None, td: float) -> tuple[float, float, float]:
-    """kp = kc, ki = kc/ti, kd = kc td. Returns (kp [-], ki [1/s], kd [s])."""
+    """kp = kc, ki = kc/ti, kd = kc td.
+
+    Parameters
+    ----------
+    kc : float
+        Controller gain. [-]
+    ti : float or None
+        Integral time; None for no integral action. [s]
+    td : float
+        Derivative time. [s]
+
+    Returns
+    -------
+    tuple of float
+        (kp [-], ki [1/s], kd [s]).
+    """
     return kc, (kc / ti if ti else 0.0), kc * td
 
 
 def parallel_to_ideal(kp: float, ki: float, kd: float) -> tuple[float, float | None, float]:
-    """kc = kp, ti = kp/ki, td = kd/kp. Returns (kc [-], ti [s] or None, td [s])."""
+    """kc = kp, ti = kp/ki, td = kd/kp.
+
+    Parameters
+    ----------
+    kp : float
+        Proportional gain. [-]
+    ki : float
+        Integral gain. [1/s]
+    kd : float
+        Derivative gain. [s]
+
+    Returns
+    -------
+    tuple
+        (kc [-], ti [s] or None, td [s]).
+    """
     return kp, (kp / ki if ki else None), (kd / kp if kp else 0.0)
 
 
@@ -282,7 +346,13 @@ class LoopModel:
         return (self.controller.rational * self.process.rational * lag(self.pv_filter)).scale(self.sign)
 
     def with_controller(self, controller: Controller) -> "LoopModel":
-        """The same loop with other settings (for proposals)."""
+        """The same loop with other settings (for proposals).
+
+        Parameters
+        ----------
+        controller : Controller
+            The settings to put in place of the present ones.
+        """
         return replace(self, controller=controller)
 
     def L(self, w: np.ndarray) -> np.ndarray:
@@ -294,35 +364,73 @@ class LoopModel:
         return out
 
     def T_sp(self, w: np.ndarray) -> np.ndarray:
-        """Set-point-to-PV response L/(F (1 + L)) (the PV filter acts in the feedback path)."""
+        """Set-point-to-PV response L/(F (1 + L)) (the PV filter acts in the feedback path).
+
+        Parameters
+        ----------
+        w : ndarray
+            Frequencies. [rad/s]
+        """
         Lw = self.L(w)
         F = lag(self.pv_filter)(1j * np.asarray(w, float))
         return Lw / (F * (1.0 + Lw))
 
     def S(self, w: np.ndarray) -> np.ndarray:
-        """Sensitivity 1/(1 + L(jw))."""
+        """Sensitivity 1/(1 + L(jw)).
+
+        Parameters
+        ----------
+        w : ndarray
+            Frequencies. [rad/s]
+        """
         return 1.0 / (1.0 + self.L(w))
 
     def T(self, w: np.ndarray) -> np.ndarray:
-        """Complementary sensitivity L/(1 + L)."""
+        """Complementary sensitivity L/(1 + L).
+
+        Parameters
+        ----------
+        w : ndarray
+            Frequencies. [rad/s]
+        """
         Lw = self.L(w)
         return Lw / (1.0 + Lw)
 
 
 def controller_from_row(row: LoopRow) -> Controller:
-    """The controller of a validated row."""
+    """The controller of a validated row.
+
+    Parameters
+    ----------
+    row : LoopRow
+        A row without errors.
+    """
     if row.form == "parallel":
         return Controller("parallel", kp=row.kp or 0.0, ki=row.ki or 0.0, kd=row.kd or 0.0, alpha=row.d_filter)
     return Controller(row.form, kc=row.kc or 0.0, ti=row.ti or None, td=row.td or 0.0, alpha=row.d_filter)
 
 
 def process_from_row(row: LoopRow) -> Process:
-    """The process model of a validated row."""
+    """The process model of a validated row.
+
+    Parameters
+    ----------
+    row : LoopRow
+        A row without errors.
+    """
     return make_process(row.model, row.gain, row.tau1, row.tau2, row.lead, row.dead_time, row.num, row.den)
 
 
 def model_from_row(row: LoopRow, inner: LoopModel | None = None) -> LoopModel:
-    """The loop of a validated row (``inner`` for a cascade's outer loop with inner_pv)."""
+    """The loop of a validated row.
+
+    Parameters
+    ----------
+    row : LoopRow
+        A row without errors.
+    inner : LoopModel, optional
+        For a cascade's outer loop with ``inner_pv``: the inner loop.
+    """
     return LoopModel(
         tag=row.tag or f"row {row.excel_row}",
         process=process_from_row(row),

@@ -12,7 +12,13 @@ FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
 
 
 def is_formula_like(text: str) -> bool:
-    """True when a spreadsheet program could take ``text`` for a formula."""
+    """True when a spreadsheet program could take ``text`` for a formula.
+
+    Parameters
+    ----------
+    text : str
+        Free text from the inventory or the results.
+    """
     return isinstance(text, str) and text.startswith(FORMULA_STARTS)
 
 
@@ -21,6 +27,11 @@ def neutralise_formula(text: str) -> str:
 
     Numbers written by the tool itself (e.g. ``-3.2``) never pass through here;
     only free text does.
+
+    Parameters
+    ----------
+    text : str
+        Free text from the inventory or the results.
     """
     if is_formula_like(text):
         return "'" + text

@@ -25,7 +25,15 @@ STATUS_ORDER = ("invalid", "unstable", "fails", "marginal", "passes")
 
 
 def limits_in_force(row: LoopRow, policy: Policy) -> dict[str, float]:
-    """ms_max [-], gm_min_db [dB], pm_min_deg [deg] for one row (row overrides policy)."""
+    """ms_max [-], gm_min_db [dB], pm_min_deg [deg] for one row (row overrides policy).
+
+    Parameters
+    ----------
+    row : LoopRow
+        The row, with its own overrides or None.
+    policy : Policy
+        The policy in force.
+    """
     return {
         "ms_max": row.ms_max if row.ms_max is not None else policy.ms_max,
         "gm_min_db": row.gm_min_db if row.gm_min_db is not None else policy.gm_min_db,
@@ -104,5 +112,11 @@ def judge(fig: pd.Series, lim: dict[str, float], attenuation_db: float | None, m
 
 
 def status_rank(status: str) -> int:
-    """0 for the worst status (invalid) ... 4 for passes."""
+    """0 for the worst status (invalid) ... 4 for passes.
+
+    Parameters
+    ----------
+    status : str
+        One of :data:`STATUS_ORDER`.
+    """
     return STATUS_ORDER.index(status)
