@@ -445,7 +445,7 @@ def _text_width(text: str, size: float = FONT_SMALL) -> float:
 
 
 MARGIN_LEFT = 50.0
-MARGIN_RIGHT = 12.0
+MARGIN_RIGHT = 20.0
 MARGIN_TOP = 8.0
 MARGIN_BOTTOM = 34.0
 
