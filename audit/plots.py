@@ -375,7 +375,15 @@ def decade_label(k: int) -> str:
 
 
 def nice_step(span: float, target: int = 5) -> float:
-    """A round tick step (1, 2, 2.5 or 5 times a power of ten) giving about ``target`` ticks."""
+    """A round tick step (1, 2, 2.5 or 5 times a power of ten) giving about ``target`` ticks.
+
+    Parameters
+    ----------
+    span : float
+        Length of the axis in data units.
+    target : int
+        Number of ticks wanted. [-]
+    """
     if not (span > 0 and math.isfinite(span)):
         return 1.0
     raw = span / target
@@ -387,7 +395,15 @@ def nice_step(span: float, target: int = 5) -> float:
 
 
 def tick_label(v: float, step: float) -> str:
-    """A tick value with just enough decimals for ``step``; minus sign, never '-0'."""
+    """A tick value with just enough decimals for ``step``; minus sign, never '-0'.
+
+    Parameters
+    ----------
+    v : float
+        The tick value, in data units.
+    step : float
+        The tick step, in the same units.
+    """
     dec = max(0, -math.floor(math.log10(step) + 1e-9))
     if abs(step / 10.0 ** math.floor(math.log10(step) + 1e-9) - 2.5) < 1e-6:
         dec += 1
@@ -399,7 +415,17 @@ def tick_label(v: float, step: float) -> str:
 
 
 def linear_range(lo: float, hi: float, target: int = 5, snap: bool = True) -> tuple[float, float, list[float]]:
-    """A linear axis covering [lo, hi]: (lo, hi, tick values), the ends snapped to ticks when ``snap``."""
+    """A linear axis covering [lo, hi]: (lo, hi, tick values), the ends snapped to ticks when ``snap``.
+
+    Parameters
+    ----------
+    lo, hi : float
+        Data range to cover.
+    target : int
+        Number of ticks wanted. [-]
+    snap : bool
+        Extend the ends to whole ticks.
+    """
     if not (math.isfinite(lo) and math.isfinite(hi)):
         lo, hi = 0.0, 1.0
     if hi - lo <= 1e-12 * max(1.0, abs(hi), abs(lo)):
@@ -555,6 +581,8 @@ def compare_chart(fd: FrequencyData, other: np.ndarray, key: str, title: str, la
         Chart key, title, legend label of ``other``.
     style : Style
         How ``other`` is drawn.
+    base_label : str
+        Legend label of the loop's own |S|.
     """
     a, b = _db(fd.S), _db(other)
     levels = [20.0 * math.log10(fd.ms_max)] + ([-fd.attenuation_db] if fd.attenuation_db is not None else [])
@@ -607,6 +635,13 @@ def nyquist_chart(fd: FrequencyData, key: str) -> Chart:
 
     Both axes have the same scale; the view is chosen around -1 (see :func:`_nyquist_view`) and the
     curve is cut where it leaves it.
+
+    Parameters
+    ----------
+    fd : FrequencyData
+        The loop's frequency response (L as tuned, and as proposed when there is a proposal) and Ms limit.
+    key : str
+        Unique prefix of the chart's ids in the page.
     """
     f0 = _frame(210.0)
     aspect = (f0.y1 - f0.y0) / (f0.x1 - f0.x0)
@@ -670,7 +705,15 @@ def _time_chart(key: str, title: str, desc: str, ytitle: str, lines: Sequence[tu
 
 
 def step_chart(st: StepData, key: str) -> Chart:
-    """A load or set-point step response, as tuned and (when there is one) as proposed."""
+    """A load or set-point step response, as tuned and (when there is one) as proposed.
+
+    Parameters
+    ----------
+    st : StepData
+        The traces (time [s], response [-]) of one kind, as tuned and proposed.
+    key : str
+        Unique prefix of the chart's ids in the page.
+    """
     lines = [("as tuned", S_AS_TUNED, st.t, st.y)]
     if st.proposed_t is not None and st.proposed_y is not None:
         lines.append(("proposed", PROPOSED, st.proposed_t, st.proposed_y))
@@ -683,7 +726,15 @@ def step_chart(st: StepData, key: str) -> Chart:
 
 
 def residual_chart(rd: ResidualData, key: str) -> Chart:
-    """A disturbance record against the closed-loop residual predicted through S."""
+    """A disturbance record against the closed-loop residual predicted through S.
+
+    Parameters
+    ----------
+    rd : ResidualData
+        Time [s], record and residual [% of PV range].
+    key : str
+        Unique prefix of the chart's ids in the page.
+    """
     return _time_chart(key, "Disturbance record and predicted residual",
                        "The logged disturbance and the residual the loop as tuned would leave (through S).",
                        "deviation [% of PV range]",
@@ -783,7 +834,17 @@ def status_mix(tallies: Sequence[Tally], statuses: Sequence[str], key: str = "st
 
 def status_trend(dates: Sequence[str], trend: Sequence[tuple[str, Sequence[int]]],
                  key: str = "status-trend") -> Chart:
-    """Vertical stacked bars: loops per status at each recorded audit, oldest first."""
+    """Vertical stacked bars: loops per status at each recorded audit, oldest first.
+
+    Parameters
+    ----------
+    dates : sequence of str
+        Audit dates, oldest first.
+    trend : sequence of (status, counts)
+        For each status, its number of loops at each date. [-]
+    key : str
+        Unique prefix of the chart's ids in the page.
+    """
     statuses = [s for s, _ in trend]
     n = max(len(dates), 1)
     f = _frame(150.0, width=2 * WIDTH - 120, left=MARGIN_LEFT)

@@ -111,7 +111,13 @@ def fmt_verdict(verdict: str) -> str:
 
 
 def fmt_px(value: Any) -> str:
-    """A chart coordinate or length as SVG text: 0.1 px, never '-0.0' (same input, same bytes). [px]"""
+    """A chart coordinate or length as SVG text: 0.1 px, never '-0.0' (same input, same bytes).
+
+    Parameters
+    ----------
+    value : float
+        Coordinate or length. [px]
+    """
     text = f"{float(value):.1f}"
     return "0.0" if text == "-0.0" else text
 
@@ -123,7 +129,13 @@ def fmt_points(points: Any) -> str:
 
 
 def css_class(text: str) -> str:
-    """A status or verdict word as a CSS class name."""
+    """A status or verdict word as a CSS class name.
+
+    Parameters
+    ----------
+    text : str
+        The word, e.g. ``unstable`` or ``not achievable by tuning``.
+    """
     return "s-" + "".join(ch if ch.isalnum() else "-" for ch in str(text).lower())
 
 

@@ -359,7 +359,13 @@ def loop_anchor(row: LoopRow) -> str:
 
 
 def row_anchor(row: LoopRow) -> str:
-    """Id of a loop's line in the table of all loops."""
+    """Id of a loop's line in the table of all loops.
+
+    Parameters
+    ----------
+    row : LoopRow
+        The inventory row.
+    """
     return f"all-r{row.excel_row}"
 
 
