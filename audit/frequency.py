@@ -35,7 +35,7 @@ TAIL_LEVEL = 1e-2
 #: Largest delay phase between neighbouring grid points. [rad]
 DELAY_STEP = 0.3
 #: Largest step in ln(w) between neighbouring grid points. [-]
-LOG_STEP = 0.02
+LOG_STEP = 0.05
 #: Grid points processed in one block (memory bound). [-]
 BLOCK_POINTS = 2_000_000
 #: Points per loop at most. [-]
