@@ -33,7 +33,7 @@ from .loop import LoopModel
 #: |L| below which the tail of the frequency axis is not sampled densely. [-]
 TAIL_LEVEL = 1e-2
 #: Largest delay phase between neighbouring grid points. [rad]
-DELAY_STEP = 0.3
+DELAY_STEP = 0.5
 #: Largest step in ln(w) between neighbouring grid points. [-]
 LOG_STEP = 0.05
 #: Grid points processed in one block (memory bound). [-]
@@ -570,10 +570,15 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
                          linf / np.abs(1.0 + st.l_inf_real[ents]))
         s_0 = np.where(k > 0, 0.0, 1.0 / np.abs(1.0 + L0))
         t_0 = np.where(k > 0, 1.0, np.abs(L0) / np.abs(1.0 + L0))
+    # on [w_i, w_i+1] the curve stays within about half a chord of its ends (the turn per step is
+    # small), so |1 + L| >= min(ends) - 0.6 |L_i+1 - L_i|: an upper bound of |S| per interval
+    lb = np.minimum(np.abs(one_plus[i0]), np.abs(one_plus[i0 + 1])) - 0.6 * np.abs(L[i0 + 1] - L[i0])
+    s_upper = 1.0 / np.maximum(lb, 1e-300)
+    t_upper = (np.maximum(absL[i0], absL[i0 + 1]) + 0.6 * np.abs(L[i0 + 1] - L[i0])) * s_upper
     out["ms"], out["w_ms_rad_s"] = _peak(batch, ent_pt, seg, w, absS, i0, n, s_0, s_inf,
-                                         lambda Lv, _w: 1.0 / np.abs(1.0 + Lv))
+                                         lambda Lv, _w: 1.0 / np.abs(1.0 + Lv), upper=s_upper)
     out["mt"], out["w_mt_rad_s"] = _peak(batch, ent_pt, seg, w, absT, i0, n, t_0, t_inf,
-                                         lambda Lv, _w: np.abs(Lv) / np.abs(1.0 + Lv))
+                                         lambda Lv, _w: np.abs(Lv) / np.abs(1.0 + Lv), upper=t_upper)
 
     # ---- bandwidth: first rise of |S| through 1/sqrt(2) ----
     thr = 1.0 / np.sqrt(2.0)
@@ -595,21 +600,41 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     return out
 
 
-def _peak(batch, ent_pt, seg, w, vals, i0, n, v0, vinf, fun):
-    """sup over w >= 0 of a magnitude, limits at 0 and infinity included."""
+def _top_by_seg(idx: np.ndarray, score: np.ndarray, seg: np.ndarray, k: int) -> np.ndarray:
+    """The ``k`` entries of ``idx`` with the highest ``score`` in each segment."""
+    if idx.size == 0:
+        return idx
+    order = np.lexsort((-score, seg))
+    cs = seg[order]
+    rank = np.arange(cs.size) - np.searchsorted(cs, cs, side="left")
+    return idx[order][rank < k]
+
+
+def _peak(batch, ent_pt, seg, w, vals, i0, n, v0, vinf, fun, upper=None):
+    """sup over w >= 0 of a magnitude, limits at 0 and infinity included.
+
+    Brackets searched: [w_i-1, w_i+1] around the highest grid maxima, and, when ``upper``
+    (an upper bound of the magnitude on each grid interval [w_i, w_i+1], i in ``i0``) is given,
+    every interval whose bound exceeds the grid maximum: a narrow peak between two grid points
+    cannot hide there.
+    """
     both = _interior(i0)  # points with a left and a right neighbour in the segment
     locmax = both[(vals[both] >= vals[both - 1]) & (vals[both] > vals[both + 1])]
     gmax = _seg_max(vals, seg, n)
     cand = locmax[vals[locmax] >= 0.8 * gmax[seg[locmax]]]
-    # at most 8 candidates per loop, the highest
-    if cand.size:
-        order = np.lexsort((-vals[cand], seg[cand]))
-        cs = seg[cand][order]
-        rank = np.arange(cs.size) - np.searchsorted(cs, cs, side="left")
-        cand = cand[order][rank < 8]
-    wpk, fpk = _golden_max(batch, ent_pt[cand], w[cand - 1], w[cand + 1], fun)
-    best = _seg_max(fpk, seg[cand], n) if cand.size else np.full(n, -np.inf)
-    arg = _arg_by_seg(fpk, seg[cand], n) if cand.size else np.full(n, -1)
+    cand = _top_by_seg(cand, vals[cand], seg[cand], 8)       # the highest 8 per loop
+    a, b = w[cand - 1], w[cand + 1]
+    ent_c = ent_pt[cand]
+    seg_c = seg[cand]
+    if upper is not None:
+        hid = i0[upper > gmax[seg[i0]] * (1.0 + 1e-12)]
+        hid = _top_by_seg(hid, upper[np.searchsorted(i0, hid)], seg[hid], 8)
+        a, b = np.concatenate([a, w[hid]]), np.concatenate([b, w[hid + 1]])
+        ent_c, seg_c = np.concatenate([ent_c, ent_pt[hid]]), np.concatenate([seg_c, seg[hid]])
+        cand = np.concatenate([cand, hid])
+    wpk, fpk = _golden_max(batch, ent_c, a, b, fun)
+    best = _seg_max(fpk, seg_c, n) if cand.size else np.full(n, -np.inf)
+    arg = _arg_by_seg(fpk, seg_c, n) if cand.size else np.full(n, -1)
     value = np.where(np.isfinite(best), best, -np.inf)
     where = np.where(arg >= 0, wpk[np.maximum(arg, 0)] if cand.size else np.nan, np.nan)
     # grid values (ends of the sampled range) as a floor
