@@ -108,3 +108,19 @@ def test_band_requirement_with_dead_time():
     exact = 20 * math.log10(abs(m.S(np.array([wd]))[0]))
     assert f["band_s_db"] == pytest.approx(exact, abs=1e-9)
     assert f["band_s_db"] == pytest.approx(20 * math.log10(0.02), abs=0.01)
+
+
+def test_narrow_sensitivity_peak_is_found():
+    """Regression (found by comparing against a 3-million-point grid): an unstable loop whose
+    Nyquist curve passes within 0.016 of -1 at high frequency has a narrow |S| peak of about 65.6
+    between two grid points; the interval bound must catch it. Reference: the maximum of |S| on
+    a dense grid (common practice), which can only under-estimate the peak."""
+    P = make_process("fopdt", 0.4575492989618892, 1.004459716143385, dead_time=0.6108488539933529)
+    C = Controller("ideal", kc=11.40399604072938, ti=0.4906901069597777, td=0.25111492903584626, alpha=0.1)
+    m = LoopModel("spike", P, C, sign=-1.0)
+    f = evaluate([m]).iloc[0]
+    w = np.linspace(39.0, 40.5, 2_000_001)
+    dense = float(np.max(np.abs(m.S(w))))
+    assert dense > 60
+    assert f["ms"] >= dense * (1 - 1e-12)
+    assert f["ms"] == pytest.approx(dense, rel=1e-6)
