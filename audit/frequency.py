@@ -297,7 +297,7 @@ def _depth(batch: Batch) -> np.ndarray:
 # Vectorised refinement
 
 
-def _bisect(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun, iters: int = 60) -> np.ndarray:
+def _bisect(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun, iters: int = 50) -> np.ndarray:
     """Root of fun(L, w) in [a, b] per bracket (sign change assumed), by bisection."""
     if ent.size == 0:
         return a.copy()
@@ -316,7 +316,7 @@ _GOLD = (np.sqrt(5.0) - 1.0) / 2.0
 
 
 def _golden_max(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun,
-                iters: int = 70) -> tuple[np.ndarray, np.ndarray]:
+                iters: int = 48) -> tuple[np.ndarray, np.ndarray]:
     """Maximum of fun(L, w) on [a, b] per bracket by golden-section search."""
     if ent.size == 0:
         return a.copy(), a.copy()
@@ -390,8 +390,8 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
     c_min, c_max = st.c_min[ents], st.c_max[ents]
     w_lo = 1e-3 * c_min
     # coarse magnitude scan to find where |L| has fallen to the tail level for good
-    per_dec = 20
-    top = 1e5 * c_max
+    per_dec = 12
+    top = 1e4 * c_max
     ndec = np.log10(top / w_lo)
     npts = np.ceil(ndec * per_dec).astype(int) + 1
     seg = np.repeat(np.arange(ents.size), npts)
@@ -403,6 +403,12 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
     above = mag >= thr[seg]
     last = _seg_max(np.where(above, pos, -1), seg, ents.size, -1)
     w_hi = np.where(last >= 0, w_lo * 10.0 ** ((last + 1) / per_dec), w_lo * 100.0) * 2.0
+    # still above the tail level at the end of the scan: beyond every corner |L| falls at least
+    # as 1/w (strictly proper loops), so it is below the level by w_end |L(w_end)| / level
+    end_above = (last == npts - 1) & (st.l_inf[ents] == 0)
+    if end_above.any():
+        mag_end = mag[start + npts - 1]
+        w_hi = np.where(end_above, top * np.maximum(mag_end / thr, 1.0) * 2.0, w_hi)
     w_hi = np.maximum(w_hi, 100.0 * w_lo)
     # one more turn of the delay spiral: its first crossing of the negative real axis is the
     # largest-|L| crossing of the tail, which sets the gain margin when none lies further in
