@@ -634,6 +634,7 @@ def _peak(batch, ent_pt, seg, w, vals, i0, n, v0, vinf, fun, upper=None):
     seg_c = seg[cand]
     if upper is not None:
         hid = i0[upper > gmax[seg[i0]] * (1.0 + 1e-12)]
+        hid = hid[~np.isin(hid, cand) & ~np.isin(hid, cand - 1)]   # not already inside a bracket
         hid = _top_by_seg(hid, upper[np.searchsorted(i0, hid)], seg[hid], 8)
         a, b = np.concatenate([a, w[hid]]), np.concatenate([b, w[hid + 1]])
         ent_c, seg_c = np.concatenate([ent_c, ent_pt[hid]]), np.concatenate([seg_c, seg[hid]])
