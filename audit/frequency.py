@@ -36,6 +36,8 @@ TAIL_LEVEL = 1e-2
 DELAY_STEP = 0.5
 #: Largest step in ln(w) between neighbouring grid points. [-]
 LOG_STEP = 0.05
+#: Step in ln(w) below a tenth of the lowest corner frequency. [-]
+LOW_STEP = 0.25
 #: Grid points processed in one block (memory bound). [-]
 BLOCK_POINTS = 2_000_000
 #: Points per loop at most. [-]
@@ -418,22 +420,30 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
     with np.errstate(divide="ignore"):
         w_b = np.where(tdelay[ents] > 0, DELAY_STEP / (np.maximum(tdelay[ents], 1e-300) * h_log), np.inf)
     w_mid = np.minimum(w_b, w_hi)
-    n_log = np.ceil(np.log(w_mid / w_lo) / h_log).astype(int) + 1
+    # below a tenth of the lowest corner L follows its low-frequency asymptote c0 (jw)^-k with
+    # a negligible delay phase: nothing turns there, a coarse log step suffices
+    w_a = np.minimum(0.1 * c_min, w_mid)
+    n_low = np.where(w_a > w_lo, np.ceil(np.log(w_a / w_lo) / LOW_STEP), 0).astype(int)
+    n_log = n_low + np.ceil(np.log(w_mid / np.maximum(w_a, w_lo)) / h_log).astype(int) + 1
     n_lin = np.where(w_hi > w_b, np.ceil((w_hi - w_mid) * tdelay[ents] / DELAY_STEP), 0).astype(int)
     over = (n_log + n_lin) > MAX_POINTS
     if over.any():
         n_lin = np.where(over, np.maximum(MAX_POINTS - n_log, 0), n_lin)
-    return w_lo, w_hi, w_mid, h_log, n_log, n_lin, over
+    return w_lo, w_hi, w_mid, h_log, n_log, n_lin, over, np.maximum(w_a, w_lo), n_low
 
 
-def _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin):
+def _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin, w_a, n_low):
     counts = n_log + n_lin
     seg = np.repeat(np.arange(counts.size), counts)
     start = np.cumsum(counts) - counts
     pos = np.arange(seg.size) - start[seg]
     nl = n_log[seg]
-    step_log = np.log(w_mid / w_lo) / np.maximum(n_log - 1, 1)
-    w_log = w_lo[seg] * np.exp(np.minimum(pos, nl - 1) * step_log[seg])
+    n0 = n_low[seg]
+    step_low = np.log(w_a / w_lo) / np.maximum(n_low, 1)
+    step_log = np.log(w_mid / w_a) / np.maximum(n_log - n_low - 1, 1)
+    w_low = w_lo[seg] * np.exp(np.minimum(pos, n0) * step_low[seg])
+    w_log = w_a[seg] * np.exp(np.clip(pos - n0, 0, None) * step_log[seg])
+    w_log = np.where(pos < n0, w_low, w_log)
     with np.errstate(invalid="ignore", divide="ignore"):
         step_lin = (w_hi - w_mid) / np.maximum(n_lin, 1)
     w_lin = w_mid[seg] + (pos - nl + 1) * step_lin[seg]
@@ -449,8 +459,8 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
                     band: np.ndarray, grid) -> dict[str, np.ndarray]:
     n = ents.size
     out: dict[str, np.ndarray] = {}
-    w_lo, w_hi, w_mid, h_log, n_log, n_lin, capped = grid
-    seg, w, start, counts = _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin)
+    w_lo, w_hi, w_mid, h_log, n_log, n_lin, capped, w_a, n_low = grid
+    seg, w, start, counts = _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin, w_a, n_low)
     ent_pt = ents[seg]
     L = eval_L(batch, ent_pt, w)
     one_plus = 1.0 + L
