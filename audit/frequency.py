@@ -35,7 +35,7 @@ TAIL_LEVEL = 1e-2
 #: Largest delay phase between neighbouring grid points. [rad]
 DELAY_STEP = 0.5
 #: Largest step in ln(w) between neighbouring grid points. [-]
-LOG_STEP = 0.05
+LOG_STEP = 0.06
 #: Step in ln(w) below a tenth of the lowest corner frequency. [-]
 LOW_STEP = 0.25
 #: Grid points processed in one block (memory bound). [-]
@@ -299,7 +299,7 @@ def _depth(batch: Batch) -> np.ndarray:
 # Vectorised refinement
 
 
-def _bisect(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun, iters: int = 50) -> np.ndarray:
+def _bisect(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun, iters: int = 46) -> np.ndarray:
     """Root of fun(L, w) in [a, b] per bracket (sign change assumed), by bisection."""
     if ent.size == 0:
         return a.copy()
@@ -318,7 +318,7 @@ _GOLD = (np.sqrt(5.0) - 1.0) / 2.0
 
 
 def _golden_max(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun,
-                iters: int = 48) -> tuple[np.ndarray, np.ndarray]:
+                iters: int = 40) -> tuple[np.ndarray, np.ndarray]:
     """Maximum of fun(L, w) on [a, b] per bracket by golden-section search."""
     if ent.size == 0:
         return a.copy(), a.copy()
