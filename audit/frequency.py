@@ -99,6 +99,22 @@ def _pad(polys: list[tuple[float, ...]]) -> np.ndarray:
     return out
 
 
+def _loop_polys(m: LoopModel) -> tuple[np.ndarray, np.ndarray]:
+    """num, den of sign C P F (as :attr:`LoopModel.rational`), built without Rational objects."""
+    from .timedomain import controller_poly
+    try:
+        cn, cd = controller_poly(m.controller)
+    except ValueError:
+        r = m.rational
+        return np.asarray(r.num, float), np.asarray(r.den, float)
+    pr = m.process.rational
+    num = np.convolve(np.trim_zeros(np.asarray(cn, float), "f"), pr.num)
+    den = np.convolve(np.asarray(cd, float), pr.den)
+    if m.pv_filter:
+        den = np.convolve(den, [m.pv_filter, 1.0])
+    return num * m.sign, den
+
+
 def build_batch(models: Sequence[LoopModel | None]) -> tuple[Batch, np.ndarray]:
     """Flatten loops (and their inner loops) into a :class:`Batch`.
 
@@ -119,10 +135,10 @@ def build_batch(models: Sequence[LoopModel | None]) -> tuple[Batch, np.ndarray]:
     if not entries:
         z = np.zeros((0, 1))
         return Batch(z, z, np.zeros(0), np.zeros(0, int), np.zeros(0)), top
-    rats = [m.rational for m in entries]
+    polys = [_loop_polys(m) for m in entries]
     batch = Batch(
-        num=_pad([r.num for r in rats]),
-        den=_pad([r.den for r in rats]),
+        num=_pad([p[0] for p in polys]),
+        den=_pad([p[1] for p in polys]),
         delay=np.array([m.delay for m in entries], float),
         inner=np.array(inner_of, int),
         pvf=np.array([m.pv_filter for m in entries], float),
