@@ -791,14 +791,17 @@ def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFram
                     for c, v in o.items():
                         res[c][blk] = v
         res["rhp_open"] = p_open.astype(float)
-    frame = {c: [] for c in FIGURE_COLUMNS}
-    for e in top:
-        for c in FIGURE_COLUMNS:
-            if e < 0:
-                frame[c].append(None if c in ("stable", "engine_note") else np.nan)
-            else:
-                v = res[c][e]
-                frame[c].append(bool(v) if c == "stable" else v)
+    ok = top >= 0
+    frame = {}
+    for c in FIGURE_COLUMNS:
+        if c in ("stable", "engine_note"):
+            col = np.full(nmod, None, object)
+            vals = res[c][top[ok]]
+            col[ok] = [bool(v) for v in vals] if c == "stable" else list(vals)
+        else:
+            col = np.full(nmod, np.nan)
+            col[ok] = np.asarray(res[c], float)[top[ok]]
+        frame[c] = col
     df = pd.DataFrame(frame, columns=list(FIGURE_COLUMNS))
     for c in ("rhp_closed", "rhp_open"):
         df[c] = pd.array(df[c].to_numpy(dtype=float), dtype="Float64").round().astype("Int64")

@@ -11,6 +11,7 @@ figures agree to about 1e-15 relative).
 
 from __future__ import annotations
 
+import multiprocessing
 from concurrent.futures import ProcessPoolExecutor
 from typing import Sequence
 
@@ -84,6 +85,18 @@ def _steps_chunk(models: list[LoopModel | None], policy, stable: list) -> pd.Dat
     return step_figures(models, policy, stable)
 
 
+_SHARED: tuple | None = None
+_CONTEXT = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
+
+
+def _run_shared(idx: np.ndarray) -> pd.DataFrame:
+    """Worker side of :func:`map_chunks`: the chunk ``idx`` of the loops shared at fork time."""
+    fn, models, per_loop, extra = _SHARED
+    sub = [models[i] for i in idx]
+    args = [[seq[i] for i in idx] for seq in per_loop]
+    return fn(sub, *extra, *args) if extra else fn(sub, *args)
+
+
 def map_chunks(fn, models: Sequence[LoopModel | None], per_loop: Sequence[Sequence], jobs: int,
                extra: tuple = (), chunks_per_job: int = CHUNKS_PER_JOB) -> pd.DataFrame:
     """``fn(models, *per_loop_args, *extra)`` over cascade-safe chunks in ``jobs`` processes.
@@ -113,14 +126,14 @@ def map_chunks(fn, models: Sequence[LoopModel | None], per_loop: Sequence[Sequen
         return fn(models, *per_loop, *extra) if not extra else fn(models, *extra, *per_loop)
     jobs = min(jobs, n // MIN_LOOPS_PER_JOB)
     parts = _chunks(cascade_groups(models), jobs * chunks_per_job)
-    args = [[models[i] for i in p] for p in parts]
-    split = [[[seq[i] for i in p] for p in parts] for seq in per_loop]
-    with ProcessPoolExecutor(max_workers=jobs) as pool:
-        if extra:
-            futs = [pool.submit(fn, a, *extra, *(s[k] for s in split)) for k, a in enumerate(args)]
-        else:
-            futs = [pool.submit(fn, a, *(s[k] for s in split)) for k, a in enumerate(args)]
-        frames = [f.result() for f in futs]
+    global _SHARED
+    _SHARED = (fn, models, [list(seq) for seq in per_loop], extra)
+    try:
+        # forked workers inherit the loops: only the chunks' indices cross the process boundary
+        with ProcessPoolExecutor(max_workers=jobs, mp_context=_CONTEXT) as pool:
+            frames = list(pool.map(_run_shared, parts))
+    finally:
+        _SHARED = None
     order = np.concatenate(parts)
     df = pd.concat(frames, ignore_index=True)
     df.index = order
