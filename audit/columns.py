@@ -140,21 +140,6 @@ RESULT_COLUMNS: tuple[Column, ...] = (
 )
 
 
-def column_names(stage: str | None = None) -> list[str]:
-    """Names of the results columns, all or those of one stage, in table order.
-
-    Parameters
-    ----------
-    stage : str or None
-        Only the columns added by this stage; every column when None.
-
-    Returns
-    -------
-    list of str
-    """
-    return [c.name for c in RESULT_COLUMNS if stage is None or c.stage == stage]
-
-
 def column(name: str) -> Column:
     """The column called ``name``.
 

@@ -29,6 +29,7 @@ import numpy as np
 import pandas as pd
 
 from .loop import LoopModel
+from .timedomain import controller_poly
 
 #: |L| below which the tail of the frequency axis is not sampled densely. [-]
 TAIL_LEVEL = 1e-2
@@ -101,7 +102,6 @@ def _pad(polys: list[tuple[float, ...]]) -> np.ndarray:
 
 def _loop_polys(m: LoopModel) -> tuple[np.ndarray, np.ndarray]:
     """num, den of sign C P F (as :attr:`LoopModel.rational`), built without Rational objects."""
-    from .timedomain import controller_poly
     try:
         cn, cd = controller_poly(m.controller)
     except ValueError:

@@ -26,7 +26,6 @@ JSON columns are strict JSON: infinities are written as the strings ``"inf"`` /
 
 from __future__ import annotations
 
-import collections.abc as _abc
 import csv
 import datetime as _dt
 import hashlib
@@ -40,14 +39,14 @@ from typing import Any, Callable, Iterable, Iterator, Mapping
 import sqlalchemy as sa
 from sqlalchemy.engine import Connection, Engine, make_url
 
+from .output import plain as strict_json_value  # the one strict-JSON conversion (re-exported)
+from .verdict import STATUS_ORDER
+
 SCHEMA_VERSION = 1
 """Version of the history schema this tool writes and reads."""
 
 DEFAULT_FILE_NAME = "audit-history.sqlite"
 """File name of the default SQLite history, in the inventory's folder."""
-
-STATUS_ORDER = ("invalid", "unstable", "fails", "marginal", "passes")
-"""Status words of the results table, worst first."""
 
 FAILING = frozenset({"unstable", "fails"})
 PASSING = frozenset({"marginal", "passes"})
@@ -471,62 +470,6 @@ class HistorySection:
 
 # ---------------------------------------------------------------------------------------------
 # Canonical values, fingerprints and words
-
-
-def strict_json_value(value: Any) -> Any:
-    """A value made strict-JSON safe: inf -> "inf", NaN/NA -> None, numpy scalars -> Python.
-
-    Parameters
-    ----------
-    value : Any
-        A cell or results value.
-
-    Returns
-    -------
-    Any
-        None, bool, int, float (finite), str, list or dict.
-    """
-    t = type(value)
-    if value is None or t is str or t is bool or t is int:
-        return value
-    if t is float:
-        if math.isnan(value):
-            return None
-        if math.isinf(value):
-            return "inf" if value > 0 else "-inf"
-        return value
-    if isinstance(value, (list, tuple)):
-        return [strict_json_value(v) for v in value]
-    if isinstance(value, _abc.Mapping):
-        return {str(k): strict_json_value(v) for k, v in value.items()}
-    if getattr(value, "ndim", 0) and hasattr(value, "tolist"):
-        return strict_json_value(value.tolist())  # an array
-    if hasattr(value, "item") and not isinstance(value, (str, bytes)):
-        try:
-            value = value.item()  # numpy scalar -> Python
-        except (TypeError, ValueError):
-            pass
-    if isinstance(value, bool):
-        return value
-    if isinstance(value, int):
-        return value
-    if isinstance(value, float):
-        if math.isnan(value):
-            return None
-        if math.isinf(value):
-            return "inf" if value > 0 else "-inf"
-        return value
-    if isinstance(value, str):
-        return value
-    try:
-        import pandas as pd  # local: pandas is heavy and only needed for its NA markers
-        if pd.isna(value):
-            return None
-    except (TypeError, ValueError):
-        pass
-    if isinstance(value, (_dt.date, _dt.datetime, _dt.time)):
-        return value.isoformat()
-    return str(value)
 
 
 def _dumps(value: Any) -> str:

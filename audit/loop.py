@@ -72,10 +72,6 @@ class Rational:
         s = np.asarray(s, dtype=complex)
         return np.polyval(self.num, s) / np.polyval(self.den, s)
 
-    @property
-    def relative_degree(self) -> int:
-        """deg(den) - deg(num)."""
-        return (len(self.den) - 1) - (len(self.num) - 1)
 
 
 ONE = Rational((1.0,), (1.0,))
@@ -217,10 +213,6 @@ class Controller:
             return self.ki or 0.0
         return self.kc / self.ti if self.ti else 0.0
 
-    @property
-    def has_integral(self) -> bool:
-        """True when the controller has integral action."""
-        return self.integral_gain != 0.0
 
 
 def series_to_ideal(kc: float, ti: float, td: float) -> tuple[float, float, float]:

@@ -10,10 +10,11 @@ version, the inventory's file name and SHA-256, and the policy in force.
 from __future__ import annotations
 
 import csv
+import datetime as _dt
 import json
 import math
 from pathlib import Path
-from typing import Any
+from typing import Any, Mapping
 
 import numpy as np
 import pandas as pd
@@ -44,37 +45,53 @@ def output_columns(results: pd.DataFrame, extra_columns: tuple[str, ...] = ()) -
 
 
 def plain(value: Any) -> Any:
-    """A JSON-safe Python value: inf -> "inf", NaN/None/NA -> None, numpy scalars -> Python.
+    """A strict-JSON-safe Python value: inf -> "inf", NaN/None/NA -> None, numpy scalars -> Python.
+
+    The one conversion used by results.json, results.csv, results.xlsx and the history store.
 
     Parameters
     ----------
     value : Any
-        A results value; lists, tuples and dicts are converted element by element,
-        anything else not a number becomes text.
+        A results or cell value; lists, tuples, arrays and mappings are converted element by
+        element, dates become ISO text, anything else not a number becomes text.
 
     Returns
     -------
     Any
-        None, bool, int, float, str, list or dict.
+        None, bool, int, float (finite), str, list or dict.
     """
-    if value is None or value is pd.NA or value is pd.NaT:
-        return None
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        v = float(value)
-        if math.isnan(v):
+    t = type(value)
+    if value is None or t is str or t is bool or t is int:
+        return value
+    if t is float:
+        if math.isnan(value):
             return None
-        if math.isinf(v):
-            return "inf" if v > 0 else "-inf"
-        return v
+        if math.isinf(value):
+            return "inf" if value > 0 else "-inf"
+        return value
     if isinstance(value, (list, tuple)):
         return [plain(v) for v in value]
-    if isinstance(value, dict):
+    if isinstance(value, Mapping):
         return {str(k): plain(v) for k, v in value.items()}
-    return str(value) if not isinstance(value, str) else value
+    if getattr(value, "ndim", 0) and hasattr(value, "tolist"):
+        return plain(value.tolist())  # an array
+    if hasattr(value, "item") and not isinstance(value, (str, bytes)):
+        try:
+            value = value.item()  # numpy scalar -> Python
+        except (TypeError, ValueError):
+            pass
+    if isinstance(value, (bool, int, str)):
+        return value
+    if isinstance(value, float):
+        return plain(value)
+    try:
+        if pd.isna(value):
+            return None
+    except (TypeError, ValueError):
+        pass
+    if isinstance(value, (_dt.date, _dt.datetime, _dt.time)):
+        return value.isoformat()
+    return str(value)
 
 
 def csv_cell(value: Any) -> str:

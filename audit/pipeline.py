@@ -88,8 +88,6 @@ def audit_date(option: str | None) -> str:
     return _dt.date.today().isoformat()
 
 
-Stage = Callable[[Audit], None]
-
 
 def base_results(inv: Inventory) -> pd.DataFrame:
     """The identity columns of every row, the row's problems, and its own extra columns.
@@ -157,6 +155,7 @@ def evaluate_frequency(audit: "Audit") -> None:
             continue
         res[c] = figs[c].to_numpy()
     policy = audit.inventory.policy
+    records = figs.to_dict("records")   # one mapping per row (row-wise iloc is slow at scale)
     status, findings, lims = [], [], {"ms_max": [], "gm_min_db": [], "pm_min_deg": []}
     req, ok = [], []
     for i, row in enumerate(audit.inventory.rows):
@@ -172,7 +171,7 @@ def evaluate_frequency(audit: "Audit") -> None:
             findings.append("row not evaluated: see message")
             ok.append(None)
             continue
-        fig = figs.iloc[i]
+        fig = records[i]
         ok.append(bool(fig["band_s_db"] <= -att) if has_band else None)
         st, words = judge(fig, lim, att if has_band else None, policy.marginal_pct)
         status.append(st)

@@ -55,7 +55,7 @@ def judge(fig: pd.Series, lim: dict[str, float], attenuation_db: float | None, m
 
     Parameters
     ----------
-    fig : Series
+    fig : Series or mapping
         Figures of the row (columns of :func:`audit.frequency.evaluate`).
     lim : dict
         Limits in force (:func:`limits_in_force`).
@@ -109,14 +109,3 @@ def judge(fig: pd.Series, lim: dict[str, float], attenuation_db: float | None, m
     if near:
         return "marginal", near
     return "passes", []
-
-
-def status_rank(status: str) -> int:
-    """0 for the worst status (invalid) ... 4 for passes.
-
-    Parameters
-    ----------
-    status : str
-        One of :data:`STATUS_ORDER`.
-    """
-    return STATUS_ORDER.index(status)
