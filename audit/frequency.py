@@ -72,6 +72,10 @@ class Batch:
     inner: np.ndarray
     pvf: np.ndarray
 
+    def __post_init__(self):
+        #: even and odd parts of num and den (see :class:`_Points`): E_n, O_n, E_d, O_d
+        self.split = (*_split_even_odd(self.num), *_split_even_odd(self.den))
+
 
 def _flatten(models: Sequence[LoopModel | None]) -> tuple[list[LoopModel], np.ndarray, list[int]]:
     entries: list[LoopModel] = []
@@ -100,19 +104,31 @@ def _pad(polys: list[tuple[float, ...]]) -> np.ndarray:
     return out
 
 
-def _loop_polys(m: LoopModel) -> tuple[np.ndarray, np.ndarray]:
+def _conv(a: Sequence[float], b: Sequence[float]) -> list[float]:
+    """Product of two short coefficient lists (descending), in plain Python (no per-call numpy cost)."""
+    out = [0.0] * (len(a) + len(b) - 1)
+    for i, x in enumerate(a):
+        for j, y in enumerate(b):
+            out[i + j] += x * y
+    return out
+
+
+def _loop_polys(m: LoopModel) -> tuple[list[float], list[float]]:
     """num, den of sign C P F (as :attr:`LoopModel.rational`), built without Rational objects."""
     try:
         cn, cd = controller_poly(m.controller)
     except ValueError:
         r = m.rational
-        return np.asarray(r.num, float), np.asarray(r.den, float)
+        return list(r.num), list(r.den)
     pr = m.process.rational
-    num = np.convolve(np.trim_zeros(np.asarray(cn, float), "f"), pr.num)
-    den = np.convolve(np.asarray(cd, float), pr.den)
+    i = 0
+    while i < len(cn) - 1 and cn[i] == 0.0:
+        i += 1
+    num = _conv(cn[i:], pr.num)
+    den = _conv(cd, pr.den)
     if m.pv_filter:
-        den = np.convolve(den, [m.pv_filter, 1.0])
-    return num * m.sign, den
+        den = _conv(den, (m.pv_filter, 1.0))
+    return [x * m.sign for x in num], den
 
 
 def build_batch(models: Sequence[LoopModel | None]) -> tuple[Batch, np.ndarray]:
@@ -146,11 +162,67 @@ def build_batch(models: Sequence[LoopModel | None]) -> tuple[Batch, np.ndarray]:
     return batch, top
 
 
-def _polyval_rows(coef: np.ndarray, idx: np.ndarray, s: np.ndarray) -> np.ndarray:
-    acc = np.zeros(s.shape, complex)
-    for j in range(coef.shape[1]):
-        acc = acc * s + coef[:, j][idx]
+def _split_even_odd(coef: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Rows of P(s) (descending) as E and O with P(jw) = E(-w^2) + j w O(-w^2), ascending in x = -w^2."""
+    asc = coef[:, ::-1]
+    return np.ascontiguousarray(asc[:, 0::2].T), np.ascontiguousarray(asc[:, 1::2].T)
+
+
+def _horner(cols: np.ndarray, x: np.ndarray, idx: np.ndarray | None = None) -> np.ndarray:
+    """sum_m c_m x^m pointwise (real); ``cols`` is (terms, rows), ascending in m.
+
+    With ``idx`` the coefficients of point i are ``cols[:, idx[i]]`` (gathered term by term);
+    without it ``cols`` holds one column per point.
+    """
+    if cols.shape[0] == 0:
+        return np.zeros(x.shape)
+    col = (lambda m: cols[m]) if idx is None else (lambda m: cols[m].take(idx))
+    acc = col(cols.shape[0] - 1)
+    acc = acc.copy() if idx is None else acc
+    for m in range(cols.shape[0] - 2, -1, -1):
+        acc *= x
+        acc += col(m)
     return acc
+
+
+class _Points:
+    """L(jw) at given entries and frequencies, exact delay.
+
+    The rational part is evaluated in real arithmetic from its even and odd parts,
+    N(jw) = E_n(-w^2) + j w O_n(-w^2) and likewise D(jw); the delay factor e^{-jw theta}
+    exactly. Entries with an inner loop get T_inner = L_i / (F (1 + L_i)) as a factor.
+    With ``reuse`` (iterations at fixed entries) the coefficients are gathered once;
+    otherwise term by term, which keeps memory low on a large grid.
+    """
+
+    def __init__(self, batch: Batch, idx: np.ndarray, reuse: bool = True):
+        idx = np.asarray(idx, int)
+        if reuse:
+            self.coef, self.idx = [c.take(idx, axis=1) for c in batch.split], None
+        else:
+            self.coef, self.idx = list(batch.split), idx
+        self.delay = batch.delay.take(idx)
+        inn = batch.inner.take(idx)
+        self.has = np.flatnonzero(inn >= 0)
+        self.inner = _Points(batch, inn[self.has], reuse) if self.has.size else None
+        self.pvf = batch.pvf.take(inn[self.has]) if self.has.size else None
+
+    def __call__(self, w: np.ndarray) -> np.ndarray:
+        w = np.asarray(w, float)
+        x = -(w * w)
+        en, on, ed, od = (_horner(c, x, self.idx) for c in self.coef)
+        num = np.empty(w.shape, complex)
+        num.real, num.imag = en, w * on
+        den = np.empty(w.shape, complex)
+        den.real, den.imag = ed, w * od
+        L = num / den
+        L *= np.exp(-1j * (w * self.delay))
+        if self.inner is not None:
+            wi = w[self.has]
+            Li = self.inner(wi)
+            F = 1.0 / (1.0 + 1j * wi * self.pvf)
+            L[self.has] = L[self.has] * Li / (F * (1.0 + Li))
+        return L
 
 
 def eval_L(batch: Batch, idx: np.ndarray, w: np.ndarray) -> np.ndarray:
@@ -171,19 +243,7 @@ def eval_L(batch: Batch, idx: np.ndarray, w: np.ndarray) -> np.ndarray:
         L(jw) pointwise, with e^{-jw theta} evaluated exactly and an inner loop's
         closed-loop response included. [-]
     """
-    idx = np.asarray(idx, int)
-    w = np.asarray(w, float)
-    s = 1j * w
-    L = _polyval_rows(batch.num, idx, s) / _polyval_rows(batch.den, idx, s)
-    L = L * np.exp(-1j * w * batch.delay[idx])
-    inn = batch.inner[idx]
-    has = inn >= 0
-    if has.any():
-        wi = w[has]
-        Li = eval_L(batch, inn[has], wi)
-        F = 1.0 / (1.0 + 1j * wi * batch.pvf[inn[has]])
-        L[has] = L[has] * Li / (F * (1.0 + Li))
-    return L
+    return _Points(batch, idx, reuse=False)(w)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -319,11 +379,12 @@ def _bisect(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun, it
     """Root of fun(L, w) in [a, b] per bracket (sign change assumed), by bisection."""
     if ent.size == 0:
         return a.copy()
-    fa = fun(eval_L(batch, ent, a), a)
+    at = _Points(batch, ent)
+    fa = fun(at(a), a)
     sa = fa > 0
     for _ in range(iters):
         m = 0.5 * (a + b)
-        fm = fun(eval_L(batch, ent, m), m)
+        fm = fun(at(m), m)
         same = (fm > 0) == sa
         a = np.where(same, m, a)
         b = np.where(same, b, m)
@@ -338,21 +399,22 @@ def _golden_max(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun
     """Maximum of fun(L, w) on [a, b] per bracket by golden-section search."""
     if ent.size == 0:
         return a.copy(), a.copy()
+    at = _Points(batch, ent)
     c = b - _GOLD * (b - a)
     d = a + _GOLD * (b - a)
-    fc = fun(eval_L(batch, ent, c), c)
-    fd = fun(eval_L(batch, ent, d), d)
+    fc = fun(at(c), c)
+    fd = fun(at(d), d)
     for _ in range(iters):
         left = fc >= fd           # the maximum lies in [a, d]
         b = np.where(left, d, b)
         a = np.where(left, a, c)
         x = np.where(left, b - _GOLD * (b - a), a + _GOLD * (b - a))
-        fx = fun(eval_L(batch, ent, x), x)
+        fx = fun(at(x), x)
         c, d, fc, fd = (np.where(left, x, d), np.where(left, c, x),
                         np.where(left, fx, fd), np.where(left, fc, fx))
     # evaluate both inner points and the bracket ends, keep the best
     cand_w = np.stack([a, b, c, d])
-    cand_f = np.stack([fun(eval_L(batch, ent, x), x) for x in cand_w])
+    cand_f = np.stack([fun(at(x), x) for x in cand_w])
     k = np.argmax(cand_f, axis=0)
     cols = np.arange(ent.size)
     return cand_w[k, cols], cand_f[k, cols]
@@ -481,7 +543,8 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     L = eval_L(batch, ent_pt, w)
     one_plus = 1.0 + L
     absL = np.abs(L)
-    absS = 1.0 / np.abs(one_plus)
+    abs1 = np.abs(one_plus)
+    absS = 1.0 / abs1
     absT = absL * absS
     same = seg[1:] == seg[:-1]
     i0 = np.flatnonzero(same)          # bracket [i0, i0 + 1] lies in one segment
@@ -524,7 +587,7 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     z = p_open - 2 * n_net + m
     # neutral-type loops: |L(inf)| >= 1 with a delay cannot be stable
     neutral = (st.l_inf[ents] >= 1.0) & (tdelay[ents] > 0)
-    min_dist = _seg_min(np.abs(one_plus), seg, n)
+    min_dist = _seg_min(abs1, seg, n)
     marginal = (min_dist < 1e-9) | (st.axis_poles[ents] > 0)
     out["rhp_closed"] = np.maximum(z, 0)
     out["stable"] = (z == 0) & ~neutral & ~marginal
@@ -602,15 +665,13 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
                          linf / np.abs(1.0 + st.l_inf_real[ents]))
         s_0 = np.where(k > 0, 0.0, 1.0 / np.abs(1.0 + L0))
         t_0 = np.where(k > 0, 1.0, np.abs(L0) / np.abs(1.0 + L0))
-    # on [w_i, w_i+1] the curve stays within about half a chord of its ends (the turn per step is
-    # small), so |1 + L| >= min(ends) - 0.6 |L_i+1 - L_i|: an upper bound of |S| per interval
-    lb = np.minimum(np.abs(one_plus[i0]), np.abs(one_plus[i0 + 1])) - 0.6 * np.abs(L[i0 + 1] - L[i0])
-    s_upper = 1.0 / np.maximum(lb, 1e-300)
-    t_upper = (np.maximum(absL[i0], absL[i0 + 1]) + 0.6 * np.abs(L[i0 + 1] - L[i0])) * s_upper
-    out["ms"], out["w_ms_rad_s"] = _peak(batch, ent_pt, seg, w, absS, i0, n, s_0, s_inf,
-                                         lambda Lv, _w: 1.0 / np.abs(1.0 + Lv), upper=s_upper)
-    out["mt"], out["w_mt_rad_s"] = _peak(batch, ent_pt, seg, w, absT, i0, n, t_0, t_inf,
-                                         lambda Lv, _w: np.abs(Lv) / np.abs(1.0 + Lv), upper=t_upper)
+    p1a, p1b, la, lb = abs1[i0], abs1[i0 + 1], absL[i0], absL[i0 + 1]
+    dL = np.abs(L[i0 + 1] - L[i0])
+    out["ms"], out["w_ms_rad_s"] = _peak(batch, ent_pt, seg, w, L, absS, i0, n, s_0, s_inf,
+                                         lambda Lv, _w: 1.0 / np.abs(1.0 + Lv), _s_upper(p1a, p1b, dL), _s_bound)
+    out["mt"], out["w_mt_rad_s"] = _peak(batch, ent_pt, seg, w, L, absT, i0, n, t_0, t_inf,
+                                         lambda Lv, _w: np.abs(Lv) / np.abs(1.0 + Lv),
+                                         _t_upper(p1a, p1b, la, lb, dL), _t_bound)
 
     # ---- bandwidth: first rise of |S| through 1/sqrt(2) ----
     thr = 1.0 / np.sqrt(2.0)
@@ -642,34 +703,96 @@ def _top_by_seg(idx: np.ndarray, score: np.ndarray, seg: np.ndarray, k: int) -> 
     return idx[order][rank < k]
 
 
-def _peak(batch, ent_pt, seg, w, vals, i0, n, v0, vinf, fun, upper=None):
+def _s_upper(p1a: np.ndarray, p1b: np.ndarray, d: np.ndarray) -> np.ndarray:
+    """Upper bound of |S| on an interval [w_a, w_b] from |1 + L| at its ends and d = |L_b - L_a|.
+
+    Between neighbouring grid points the curve turns little, so it stays within about half
+    a chord of its ends: |1 + L| >= min(|1 + L_a|, |1 + L_b|) - 0.6 |L_b - L_a| on the interval.
+    """
+    return 1.0 / np.maximum(np.minimum(p1a, p1b) - 0.6 * d, 1e-300)
+
+
+def _t_upper(p1a: np.ndarray, p1b: np.ndarray, la: np.ndarray, lb: np.ndarray, d: np.ndarray) -> np.ndarray:
+    """Upper bound of |T| on an interval from |1 + L|, |L| at its ends and d = |L_b - L_a| (the tighter of two).
+
+    |T| = |L| |S| <= (max |L| + 0.6 d) * bound of |S|, loose where |L| is large; and
+    |T| = 1 / |1 + 1/L| with the same chord argument applied to the curve 1/L (which turns as
+    much as L does and is small exactly where |L| is large): |1/L_b - 1/L_a| = d / (|L_a| |L_b|).
+    """
+    t_l = (np.maximum(la, lb) + 0.6 * d) * _s_upper(p1a, p1b, d)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t_g = 1.0 / np.maximum(np.minimum(p1a / la, p1b / lb) - 0.6 * d / (la * lb), 1e-300)
+    return np.fmin(t_l, t_g)
+
+
+def _s_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
+    """:func:`_s_upper` from L at the ends of each interval."""
+    return _s_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(Lb - La))
+
+
+def _t_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
+    """:func:`_t_upper` from L at the ends of each interval."""
+    return _t_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(La), np.abs(Lb), np.abs(Lb - La))
+
+
+def _screen(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, La: np.ndarray, Lb: np.ndarray,
+            target: np.ndarray, bound, rounds: int = 4) -> np.ndarray:
+    """Which intervals [a, b] may hold a value above ``target``: halve them ``rounds`` times.
+
+    An interval stays while one of its pieces has ``bound`` above the target; every halving
+    costs one evaluation per piece still in play and halves the chord slack of the bound.
+    Returns a boolean mask over the intervals.
+    """
+    keep = np.zeros(a.size, bool)
+    owner = np.arange(a.size)
+    live = bound(La, Lb) > target * (1.0 + 1e-12)
+    owner, a, b, La, Lb, target, ent = (x[live] for x in (owner, a, b, La, Lb, target, ent))
+    for _ in range(rounds):
+        if owner.size == 0:
+            break
+        m = 0.5 * (a + b)
+        Lm = eval_L(batch, ent, m)
+        owner, ent, target = (np.concatenate([x, x]) for x in (owner, ent, target))
+        a, b, La, Lb = np.concatenate([a, m]), np.concatenate([m, b]), np.concatenate([La, Lm]), np.concatenate([Lm, Lb])
+        live = bound(La, Lb) > target * (1.0 + 1e-12)
+        owner, a, b, La, Lb, target, ent = (x[live] for x in (owner, a, b, La, Lb, target, ent))
+    keep[owner] = True
+    return keep
+
+
+def _peak(batch, ent_pt, seg, w, L, vals, i0, n, v0, vinf, fun, upper, bound):
     """sup over w >= 0 of a magnitude, limits at 0 and infinity included.
 
-    Brackets searched: [w_i-1, w_i+1] around the highest grid maxima, and, when ``upper``
-    (an upper bound of the magnitude on each grid interval [w_i, w_i+1], i in ``i0``) is given,
-    every interval whose bound exceeds the grid maximum: a narrow peak between two grid points
-    cannot hide there.
+    ``upper`` is an upper bound of the magnitude on each grid interval [w_i, w_i+1] (i in ``i0``),
+    ``bound(La, Lb)`` the same bound from L at an interval's ends (:func:`_s_bound`, :func:`_t_bound`). Brackets searched: [w_i-1, w_i+1] around the highest
+    grid maxima whose bound reaches the grid maximum, then every grid interval whose bound
+    still exceeds the best value found and survives :func:`_screen`: a narrow peak between
+    two grid points cannot hide there.
     """
     both = _interior(i0)  # points with a left and a right neighbour in the segment
     locmax = both[(vals[both] >= vals[both - 1]) & (vals[both] > vals[both + 1])]
     gmax = _seg_max(vals, seg, n)
     cand = locmax[vals[locmax] >= 0.8 * gmax[seg[locmax]]]
+    if cand.size:
+        # a bracket whose bound stays below the grid maximum cannot hold the peak (the grid
+        # maximum's own bracket always stays: its bound is at least its value)
+        pos = np.searchsorted(i0, cand)
+        cand = cand[np.maximum(upper[pos - 1], upper[pos]) >= gmax[seg[cand]]]
     cand = _top_by_seg(cand, vals[cand], seg[cand], 8)       # the highest 8 per loop
-    a, b = w[cand - 1], w[cand + 1]
-    ent_c = ent_pt[cand]
+    wpk, fpk = _golden_max(batch, ent_pt[cand], w[cand - 1], w[cand + 1], fun)
     seg_c = seg[cand]
-    if upper is not None:
-        hid = i0[upper > gmax[seg[i0]] * (1.0 + 1e-12)]
-        hid = hid[~np.isin(hid, cand) & ~np.isin(hid, cand - 1)]   # not already inside a bracket
+    best = np.fmax(np.fmax(gmax, _seg_max(fpk, seg_c, n)), np.fmax(v0, vinf))
+    hid = i0[upper > best[seg[i0]] * (1.0 + 1e-12)]
+    hid = hid[~np.isin(hid, cand) & ~np.isin(hid, cand - 1)]   # not already inside a bracket
+    if hid.size:
+        hid = hid[_screen(batch, ent_pt[hid], w[hid], w[hid + 1], L[hid], L[hid + 1], best[seg[hid]], bound)]
         hid = _top_by_seg(hid, upper[np.searchsorted(i0, hid)], seg[hid], 8)
-        a, b = np.concatenate([a, w[hid]]), np.concatenate([b, w[hid + 1]])
-        ent_c, seg_c = np.concatenate([ent_c, ent_pt[hid]]), np.concatenate([seg_c, seg[hid]])
-        cand = np.concatenate([cand, hid])
-    wpk, fpk = _golden_max(batch, ent_c, a, b, fun)
-    best = _seg_max(fpk, seg_c, n) if cand.size else np.full(n, -np.inf)
-    arg = _arg_by_seg(fpk, seg_c, n) if cand.size else np.full(n, -1)
-    value = np.where(np.isfinite(best), best, -np.inf)
-    where = np.where(arg >= 0, wpk[np.maximum(arg, 0)] if cand.size else np.nan, np.nan)
+        wh, fh = _golden_max(batch, ent_pt[hid], w[hid], w[hid + 1], fun)
+        wpk, fpk = np.concatenate([wpk, wh]), np.concatenate([fpk, fh])
+        seg_c = np.concatenate([seg_c, seg[hid]])
+    value = _seg_max(fpk, seg_c, n) if fpk.size else np.full(n, -np.inf)
+    arg = _arg_by_seg(fpk, seg_c, n) if fpk.size else np.full(n, -1)
+    where = np.where(arg >= 0, wpk[np.maximum(arg, 0)] if fpk.size else np.nan, np.nan)
     # grid values (ends of the sampled range) as a floor
     gw = _arg_by_seg(vals, seg, n)
     gbetter = vals[gw] > value
