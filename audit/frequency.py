@@ -375,30 +375,57 @@ def _depth(batch: Batch) -> np.ndarray:
 # Vectorised refinement
 
 
-def _bisect(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun, iters: int = 46) -> np.ndarray:
-    """Root of fun(L, w) in [a, b] per bracket (sign change assumed), by bisection."""
+def _stack_jobs(jobs):
+    """Brackets of several searches side by side: entries, ends, and the slice of each job."""
+    sizes = [j[0].size for j in jobs]
+    edges = np.concatenate([[0], np.cumsum(sizes)]).astype(int)
+    cat = [np.concatenate([np.asarray(j[k], float if k else int) for j in jobs]) for k in range(3)]
+    return cat[0], cat[1], cat[2], [slice(edges[i], edges[i + 1]) for i in range(len(jobs))]
+
+
+def _job_fun(jobs, slices):
+    """One function over stacked brackets: each job's own function on its slice."""
+    def fun(Lv, w):
+        out = np.empty(w.shape)
+        for (_, _, _, f), sl in zip(jobs, slices):
+            if sl.stop > sl.start:
+                out[sl] = f(Lv[sl], w[sl])
+        return out
+    return fun
+
+
+def _bisect_many(batch: Batch, jobs, iters: int = 46) -> list[np.ndarray]:
+    """Roots by bisection for several jobs ``(entries, a, b, fun)`` at once (one evaluation of L per step).
+
+    Each job's fun(L, w) changes sign on every one of its brackets [a, b]. Returns the roots per job.
+    """
+    ent, a, b, slices = _stack_jobs(jobs)
     if ent.size == 0:
-        return a.copy()
+        return [a[sl] for sl in slices]
+    fun = _job_fun(jobs, slices)
     at = _Points(batch, ent)
-    fa = fun(at(a), a)
-    sa = fa > 0
+    sa = fun(at(a), a) > 0
     for _ in range(iters):
         m = 0.5 * (a + b)
-        fm = fun(at(m), m)
-        same = (fm > 0) == sa
+        same = (fun(at(m), m) > 0) == sa
         a = np.where(same, m, a)
         b = np.where(same, b, m)
-    return 0.5 * (a + b)
+    root = 0.5 * (a + b)
+    return [root[sl] for sl in slices]
 
 
 _GOLD = (np.sqrt(5.0) - 1.0) / 2.0
 
 
-def _golden_max(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun,
-                iters: int = 40) -> tuple[np.ndarray, np.ndarray]:
-    """Maximum of fun(L, w) on [a, b] per bracket by golden-section search."""
+def _golden_many(batch: Batch, jobs, iters: int = 40) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Maxima by golden-section search for several jobs ``(entries, a, b, fun)`` at once.
+
+    Returns, per job, the location and value of the maximum of fun(L, w) on each bracket [a, b].
+    """
+    ent, a, b, slices = _stack_jobs(jobs)
     if ent.size == 0:
-        return a.copy(), a.copy()
+        return [(a[sl], a[sl]) for sl in slices]
+    fun = _job_fun(jobs, slices)
     at = _Points(batch, ent)
     c = b - _GOLD * (b - a)
     d = a + _GOLD * (b - a)
@@ -417,7 +444,20 @@ def _golden_max(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, fun
     cand_f = np.stack([fun(at(x), x) for x in cand_w])
     k = np.argmax(cand_f, axis=0)
     cols = np.arange(ent.size)
-    return cand_w[k, cols], cand_f[k, cols]
+    wbest, fbest = cand_w[k, cols], cand_f[k, cols]
+    return [(wbest[sl], fbest[sl]) for sl in slices]
+
+
+def _abs_s(Lv: np.ndarray, _w: np.ndarray) -> np.ndarray:
+    return 1.0 / np.abs(1.0 + Lv)
+
+
+def _abs_t(Lv: np.ndarray, _w: np.ndarray) -> np.ndarray:
+    return np.abs(Lv) / np.abs(1.0 + Lv)
+
+
+def _neg_abs_l(Lv: np.ndarray, _w: np.ndarray) -> np.ndarray:
+    return -np.abs(Lv)
 
 
 def _seg_reduce(ufunc, values: np.ndarray, seg: np.ndarray, out: np.ndarray) -> np.ndarray:
@@ -456,9 +496,12 @@ def _arg_by_seg(values: np.ndarray, seg: np.ndarray, n: int) -> np.ndarray:
     return out
 
 
-def _interior(i0: np.ndarray) -> np.ndarray:
-    """Points with a left and a right neighbour in their segment, given the sorted bracket starts ``i0``."""
-    return i0[1:][(i0[1:] - i0[:-1]) == 1]
+def _interior(same: np.ndarray) -> np.ndarray:
+    """Mask over points 1 .. N-2: a left and a right neighbour in the point's own segment.
+
+    ``same[i]`` tells whether points i and i + 1 lie in one segment (length N - 1).
+    """
+    return same[:-1] & same[1:]
 
 
 # ----------------------------------------------------------------------------------------------
@@ -547,7 +590,8 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     absS = 1.0 / abs1
     absT = absL * absS
     same = seg[1:] == seg[:-1]
-    i0 = np.flatnonzero(same)          # bracket [i0, i0 + 1] lies in one segment
+    # grid intervals [w_i, w_i+1] are indexed by their left point i; ``same[i]``: both ends in one segment
+    inner = _interior(same)
     k = st.k[ents]
     kpos = np.maximum(k, 0)
 
@@ -562,7 +606,7 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     # ---- Nyquist: real-axis crossings of L(jw) ----
     im = L.imag
     pos_im = im > 0
-    br = i0[pos_im[i0] != pos_im[i0 + 1]]
+    br = np.flatnonzero(same & (pos_im[:-1] != pos_im[1:]))
     ta = im[br] / (im[br] - im[br + 1])
     Lest = L[br] + ta * (L[br + 1] - L[br])
     neg = Lest.real < 0
@@ -574,7 +618,17 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
         best = _arg_by_seg(np.abs(Lest[sidx]), seg[br[sidx]], n)
         pick = np.union1d(pick, sidx[best[best >= 0]])
     brp = br[pick]
-    wx = _bisect(batch, ent_pt[brp], w[brp], w[brp + 1], lambda Lv, _w: Lv.imag)
+    # gain crossovers (|L| through 1) and the first rise of |S| through 1/sqrt(2) (bandwidth)
+    lg_pos = absL > 1.0
+    bc = np.flatnonzero(same & (lg_pos[:-1] != lg_pos[1:]))
+    thr = 1.0 / np.sqrt(2.0)
+    rise = np.flatnonzero(same & (absS[:-1] < thr) & (absS[1:] >= thr))
+    first = _arg_by_seg(-rise.astype(float), seg[rise], n)
+    rb = rise[first[first >= 0]]
+    wx, wc_all, wb_rise = _bisect_many(batch, [
+        (ent_pt[brp], w[brp], w[brp + 1], lambda Lv, _w: Lv.imag),
+        (ent_pt[bc], w[bc], w[bc + 1], lambda Lv, _w: np.log(np.abs(Lv))),
+        (ent_pt[rb], w[rb], w[rb + 1], lambda Lv, _w: 1.0 / np.abs(1.0 + Lv) - thr)])
     Lx = eval_L(batch, ent_pt[brp], wx)
     rex = Lx.real
     sx = seg[brp]
@@ -635,9 +689,6 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     out["gm_low"] = gm_low
 
     # ---- gain crossovers: phase and delay margins ----
-    lg_pos = absL > 1.0
-    bc = i0[lg_pos[i0] != lg_pos[i0 + 1]]
-    wc_all = _bisect(batch, ent_pt[bc], w[bc], w[bc + 1], lambda Lv, _w: np.log(np.abs(Lv)))
     Lc = eval_L(batch, ent_pt[bc], wc_all)
     pm_all = 180.0 + np.degrees(np.angle(Lc))
     pm_all = np.where(pm_all > 180.0, pm_all - 360.0, pm_all)
@@ -665,32 +716,79 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
                          linf / np.abs(1.0 + st.l_inf_real[ents]))
         s_0 = np.where(k > 0, 0.0, 1.0 / np.abs(1.0 + L0))
         t_0 = np.where(k > 0, 1.0, np.abs(L0) / np.abs(1.0 + L0))
-    p1a, p1b, la, lb = abs1[i0], abs1[i0 + 1], absL[i0], absL[i0 + 1]
-    dL = np.abs(L[i0 + 1] - L[i0])
-    out["ms"], out["w_ms_rad_s"] = _peak(batch, ent_pt, seg, w, L, absS, i0, n, s_0, s_inf,
-                                         lambda Lv, _w: 1.0 / np.abs(1.0 + Lv), _s_upper(p1a, p1b, dL), _s_bound)
-    out["mt"], out["w_mt_rad_s"] = _peak(batch, ent_pt, seg, w, L, absT, i0, n, t_0, t_inf,
-                                         lambda Lv, _w: np.abs(Lv) / np.abs(1.0 + Lv),
-                                         _t_upper(p1a, p1b, la, lb, dL), _t_bound)
+    p1a, p1b, la, lb = abs1[:-1], abs1[1:], absL[:-1], absL[1:]
+    dL = np.abs(L[1:] - L[:-1])
+    s_up = np.where(same, _s_upper(p1a, p1b, dL), -np.inf)
+    t_up = np.where(same, _t_upper(p1a, p1b, la, lb, dL), -np.inf)
+    peaks = (_Peak(ent_pt, seg, w, absS, inner, n, s_0, s_inf, _abs_s, s_up, _s_bound),
+             _Peak(ent_pt, seg, w, absT, inner, n, t_0, t_inf, _abs_t, t_up, _t_bound))
+    band_search = _Band(ents, ent_pt, seg, w, absS, absL, inner, n, band, s_0, np.where(k > 0, np.inf, np.abs(L0)))
+    # every golden-section search of the block side by side: grid maxima of |S| and |T|, extrema in the band
+    found = _golden_many(batch, [p.first_job() for p in peaks] + band_search.jobs(batch))
+    for p, f in zip(peaks, found):
+        p.add(*f)
+    out["band_s_db"], out["band_l_db"] = band_search.finish(found[len(peaks):])
+    # then the grid intervals that may still hide a higher value, screened and searched together
+    hidden = [p.hidden() for p in peaks]
+    live = _screen(batch, [(ent_pt[h], w[h], w[h + 1], L[h], L[h + 1], p.best[seg[h]], p.bound)
+                           for p, h in zip(peaks, hidden)])
+    hidden = [p.top_hidden(h[keep]) for p, h, keep in zip(peaks, hidden, live)]
+    found = _golden_many(batch, [(ent_pt[h], w[h], w[h + 1], p.fun) for p, h in zip(peaks, hidden)])
+    for p, f in zip(peaks, found):
+        p.add(*f)
+    out["ms"], out["w_ms_rad_s"] = peaks[0].result()
+    out["mt"], out["w_mt_rad_s"] = peaks[1].result()
 
     # ---- bandwidth: first rise of |S| through 1/sqrt(2) ----
-    thr = 1.0 / np.sqrt(2.0)
-    rise = i0[(absS[i0] < thr) & (absS[i0 + 1] >= thr)]
     wb = np.full(n, np.nan)
-    if rise.size:
-        first = _arg_by_seg(-rise.astype(float), seg[rise], n)
-        ok = first >= 0
-        rb = rise[first[ok]]
-        wb[ok] = _bisect(batch, ent_pt[rb], w[rb], w[rb + 1], lambda Lv, _w: 1.0 / np.abs(1.0 + Lv) - thr)
-    starts_above = absS[start] >= thr
-    wb[starts_above] = np.nan
+    wb[seg[rb]] = wb_rise
+    wb[absS[start] >= thr] = np.nan
     out["wb_rad_s"] = wb
 
-    # ---- rejection band ----
-    out["band_s_db"], out["band_l_db"] = _band(batch, ents, ent_pt, seg, w, absS, absL, i0, n, band,
-                                               s_0, np.where(k > 0, np.inf, np.abs(L0)))
     out["engine_note"] = notes
     return out
+
+
+def _top_by_seg(idx: np.ndarray, score: np.ndarray, seg: np.ndarray, k: int) -> np.ndarray:
+    """The ``k`` entries of ``idx`` with the highest ``score`` in each segment."""
+    if idx.size == 0:
+        return idx
+    order = np.lexsort((-score, seg))
+    cs = seg[order]
+    rank = np.arange(cs.size) - np.searchsorted(cs, cs, side="left")
+    return idx[order][rank < k]
+
+
+def _s_upper(p1a: np.ndarray, p1b: np.ndarray, d: np.ndarray) -> np.ndarray:
+    """Upper bound of |S| on an interval [w_a, w_b] from |1 + L| at its ends and d = |L_b - L_a|.
+
+    Between neighbouring grid points the curve turns little, so it stays within about half
+    a chord of its ends: |1 + L| >= min(|1 + L_a|, |1 + L_b|) - 0.6 |L_b - L_a| on the interval.
+    """
+    return 1.0 / np.maximum(np.minimum(p1a, p1b) - 0.6 * d, 1e-300)
+
+
+def _t_upper(p1a: np.ndarray, p1b: np.ndarray, la: np.ndarray, lb: np.ndarray, d: np.ndarray) -> np.ndarray:
+    """Upper bound of |T| on an interval from |1 + L|, |L| at its ends and d = |L_b - L_a| (the tighter of two).
+
+    |T| = |L| |S| <= (max |L| + 0.6 d) * bound of |S|, loose where |L| is large; and
+    |T| = 1 / |1 + 1/L| with the same chord argument applied to the curve 1/L (which turns as
+    much as L does and is small exactly where |L| is large): |1/L_b - 1/L_a| = d / (|L_a| |L_b|).
+    """
+    t_l = (np.maximum(la, lb) + 0.6 * d) * _s_upper(p1a, p1b, d)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t_g = 1.0 / np.maximum(np.minimum(p1a / la, p1b / lb) - 0.6 * d / (la * lb), 1e-300)
+    return np.fmin(t_l, t_g)
+
+
+def _s_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
+    """:func:`_s_upper` from L at the ends of each interval."""
+    return _s_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(Lb - La))
+
+
+def _t_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
+    """:func:`_t_upper` from L at the ends of each interval."""
+    return _t_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(La), np.abs(Lb), np.abs(Lb - La))
 
 
 def _top_by_seg(idx: np.ndarray, score: np.ndarray, seg: np.ndarray, k: int) -> np.ndarray:
@@ -760,99 +858,188 @@ def _screen(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, La: np.
     return keep
 
 
-def _peak(batch, ent_pt, seg, w, L, vals, i0, n, v0, vinf, fun, upper, bound):
-    """sup over w >= 0 of a magnitude, limits at 0 and infinity included.
+def _screen(batch: Batch, groups, rounds: int = 4) -> list[np.ndarray]:
+    """Which intervals may hold a value above a target: halve them ``rounds`` times.
 
-    ``upper`` is an upper bound of the magnitude on each grid interval [w_i, w_i+1] (i in ``i0``),
-    ``bound(La, Lb)`` the same bound from L at an interval's ends (:func:`_s_bound`, :func:`_t_bound`). Brackets searched: [w_i-1, w_i+1] around the highest
-    grid maxima whose bound reaches the grid maximum, then every grid interval whose bound
-    still exceeds the best value found and survives :func:`_screen`: a narrow peak between
-    two grid points cannot hide there.
+    ``groups`` holds ``(entries, a, b, L_a, L_b, target, bound)`` per magnitude, one row per
+    interval [a, b]. An interval stays while one of its pieces has ``bound(L_a, L_b)`` above
+    its target; every halving costs one evaluation per piece still in play (all groups in one
+    call) and halves the chord slack of the bound. Returns a boolean mask per group.
     """
-    both = _interior(i0)  # points with a left and a right neighbour in the segment
-    locmax = both[(vals[both] >= vals[both - 1]) & (vals[both] > vals[both + 1])]
-    gmax = _seg_max(vals, seg, n)
-    cand = locmax[vals[locmax] >= 0.8 * gmax[seg[locmax]]]
-    if cand.size:
-        # a bracket whose bound stays below the grid maximum cannot hold the peak (the grid
-        # maximum's own bracket always stays: its bound is at least its value)
-        pos = np.searchsorted(i0, cand)
-        cand = cand[np.maximum(upper[pos - 1], upper[pos]) >= gmax[seg[cand]]]
-    cand = _top_by_seg(cand, vals[cand], seg[cand], 8)       # the highest 8 per loop
-    wpk, fpk = _golden_max(batch, ent_pt[cand], w[cand - 1], w[cand + 1], fun)
-    seg_c = seg[cand]
-    best = np.fmax(np.fmax(gmax, _seg_max(fpk, seg_c, n)), np.fmax(v0, vinf))
-    hid = i0[upper > best[seg[i0]] * (1.0 + 1e-12)]
-    hid = hid[~np.isin(hid, cand) & ~np.isin(hid, cand - 1)]   # not already inside a bracket
-    if hid.size:
-        hid = hid[_screen(batch, ent_pt[hid], w[hid], w[hid + 1], L[hid], L[hid + 1], best[seg[hid]], bound)]
-        hid = _top_by_seg(hid, upper[np.searchsorted(i0, hid)], seg[hid], 8)
-        wh, fh = _golden_max(batch, ent_pt[hid], w[hid], w[hid + 1], fun)
-        wpk, fpk = np.concatenate([wpk, wh]), np.concatenate([fpk, fh])
-        seg_c = np.concatenate([seg_c, seg[hid]])
-    value = _seg_max(fpk, seg_c, n) if fpk.size else np.full(n, -np.inf)
-    arg = _arg_by_seg(fpk, seg_c, n) if fpk.size else np.full(n, -1)
-    where = np.where(arg >= 0, wpk[np.maximum(arg, 0)] if fpk.size else np.nan, np.nan)
-    # grid values (ends of the sampled range) as a floor
-    gw = _arg_by_seg(vals, seg, n)
-    gbetter = vals[gw] > value
-    value = np.where(gbetter, vals[gw], value)
-    where = np.where(gbetter, w[gw], where)
-    at0 = v0 > value
-    value = np.where(at0, v0, value)
-    where = np.where(at0, 0.0, where)
-    atinf = vinf > value
-    value = np.where(atinf, vinf, value)
-    where = np.where(atinf, np.inf, where)
-    return value, where
+    masks = [np.zeros(g[0].size, bool) for g in groups]
+    if not groups:
+        return masks
+    kind = np.concatenate([np.full(g[0].size, i) for i, g in enumerate(groups)]).astype(int)
+    owner = np.concatenate([np.arange(g[0].size) for g in groups]).astype(int)
+    ent, a, b, La, Lb, target = (np.concatenate([g[k] for g in groups]) for k in range(6))
+    bounds = [g[6] for g in groups]
+
+    def alive(La, Lb, target, kind):
+        up = np.empty(La.shape)
+        for i, bound in enumerate(bounds):
+            sel = kind == i
+            up[sel] = bound(La[sel], Lb[sel])
+        return up > target * (1.0 + 1e-12)
+
+    live = alive(La, Lb, target, kind)
+    state = [x[live] for x in (kind, owner, ent, a, b, La, Lb, target)]
+    for _ in range(rounds):
+        kind, owner, ent, a, b, La, Lb, target = state
+        if kind.size == 0:
+            break
+        m = 0.5 * (a + b)
+        Lm = eval_L(batch, ent, m)
+        pieces = [np.concatenate(pair) for pair in ((kind, kind), (owner, owner), (ent, ent), (a, m), (m, b),
+                                                      (La, Lm), (Lm, Lb), (target, target))]
+        live = alive(pieces[5], pieces[6], pieces[7], pieces[0])
+        state = [x[live] for x in pieces]
+    kind, owner = state[0], state[1]
+    for i, mask in enumerate(masks):
+        mask[owner[kind == i]] = True
+    return masks
 
 
-def _band(batch, ents, ent_pt, seg, w, absS, absL, i0, n, band, s0, l0):
-    """max |S| and min |L| over 0 < w <= wd, in dB."""
-    s_db = np.full(n, np.nan)
-    l_db = np.full(n, np.nan)
-    has = np.isfinite(band) & (band > 0)
-    if not has.any():
-        return s_db, l_db
-    wd = np.where(has, band, np.nan)
-    inband = w <= wd[seg]
-    smax = _seg_max(np.where(inband, absS, -np.inf), seg, n)
-    lmin = _seg_min(np.where(inband, absL, np.inf), seg, n)
-    hi = np.flatnonzero(has)
-    Ld = eval_L(batch, ents[hi], wd[hi])
-    smax[hi] = np.maximum(smax[hi], 1.0 / np.abs(1.0 + Ld))
-    lmin[hi] = np.minimum(lmin[hi], np.abs(Ld))
-    smax = np.maximum(smax, s0)
-    lmin = np.minimum(lmin, l0)
-    # interior extrema strictly inside the band, refined
-    trip = _interior(i0)  # points with a left and a right neighbour in segment
-    ok = inband[trip] & (w[np.minimum(trip + 1, w.size - 1)] <= wd[seg[trip]])
-    trip = trip[ok]
-    smx = trip[(absS[trip] >= absS[trip - 1]) & (absS[trip] > absS[trip + 1])]
-    lmn = trip[(absL[trip] <= absL[trip - 1]) & (absL[trip] < absL[trip + 1])]
-    if smx.size:
-        _, f = _golden_max(batch, ent_pt[smx], w[smx - 1], w[smx + 1], lambda Lv, _w: 1.0 / np.abs(1.0 + Lv))
-        smax = np.maximum(smax, _seg_max(f, seg[smx], n))
-    if lmn.size:
-        _, f = _golden_max(batch, ent_pt[lmn], w[lmn - 1], w[lmn + 1], lambda Lv, _w: -np.abs(Lv))
-        lmin = np.minimum(lmin, _seg_min(-f, seg[lmn], n))
-    # the last grid interval before the band edge: [w_j-1, wd], j the last grid point <= wd
-    last = _seg_max(np.where(inband, np.arange(w.size), -1), seg, n, -1)
-    e = np.flatnonzero(has & (last > 0))
-    if e.size:
+class _Peak:
+    """sup over w >= 0 of |S| or |T| of every loop of a block, limits at 0 and infinity included.
+
+    ``upper[i]`` is an upper bound of the magnitude on the grid interval [w_i, w_i+1] (-inf where
+    the two points belong to different loops),
+    ``bound(La, Lb)`` the same bound from L at an interval's ends (:func:`_s_bound`, :func:`_t_bound`).
+    Searched: [w_i-1, w_i+1] around the highest grid maxima whose bound reaches the grid maximum
+    (:meth:`first_job`), then every grid interval whose bound still exceeds the best value found
+    and survives :func:`_screen` (:meth:`hidden`): a narrow peak between two grid points cannot
+    hide there.
+    """
+
+    def __init__(self, ent_pt, seg, w, vals, inner, n, v0, vinf, fun, upper, bound):
+        self.ent_pt, self.seg, self.w, self.vals, self.n = ent_pt, seg, w, vals, n
+        self.v0, self.vinf, self.fun, self.upper, self.bound = v0, vinf, fun, upper, bound
+        mid = vals[1:-1]
+        locmax = np.flatnonzero(inner & (mid >= vals[:-2]) & (mid > vals[2:])) + 1
+        self.gmax = _seg_max(vals, seg, n)
+        cand = locmax[vals[locmax] >= 0.8 * self.gmax[seg[locmax]]]
+        if cand.size:
+            # a bracket whose bound stays below the grid maximum cannot hold the peak (the grid
+            # maximum's own bracket always stays: its bound is at least its value)
+            cand = cand[np.maximum(upper[cand - 1], upper[cand]) >= self.gmax[seg[cand]]]
+        self.cand = _top_by_seg(cand, vals[cand], seg[cand], 8)       # the highest 8 per loop
+        self.wpk, self.fpk, self.seg_pk = [], [], []
+
+    def first_job(self):
+        """Golden-section job over the brackets around the grid maxima."""
+        c = self.cand
+        return self.ent_pt[c], self.w[c - 1], self.w[c + 1], self.fun
+
+    def add(self, wpk: np.ndarray, fpk: np.ndarray) -> None:
+        """Take the maxima found on the last job's brackets."""
+        idx = self.cand if not self.fpk else self._hid
+        self.wpk.append(wpk)
+        self.fpk.append(fpk)
+        self.seg_pk.append(self.seg[idx])
+
+    @property
+    def best(self) -> np.ndarray:
+        """Best value per loop so far (grid, refined maxima, limits at 0 and infinity)."""
+        f = np.concatenate(self.fpk)
+        refined = _seg_max(f, np.concatenate(self.seg_pk), self.n) if f.size else np.full(self.n, -np.inf)
+        return np.fmax(np.fmax(self.gmax, refined), np.fmax(self.v0, self.vinf))
+
+    def hidden(self) -> np.ndarray:
+        """Grid intervals (their left points) whose bound exceeds the best value, outside the searched brackets."""
+        c = self.cand
+        hid = np.flatnonzero(self.upper > self.best[self.seg[:-1]] * (1.0 + 1e-12))
+        return hid[~np.isin(hid, c) & ~np.isin(hid, c - 1)]
+
+    def top_hidden(self, hid: np.ndarray) -> np.ndarray:
+        """At most 8 intervals per loop, highest bound first; they are the next job's brackets."""
+        self._hid = _top_by_seg(hid, self.upper[hid], self.seg[hid], 8)
+        return self._hid
+
+    def result(self) -> tuple[np.ndarray, np.ndarray]:
+        """Peak value and its frequency per loop (0 or inf for a limit). [-], [rad/s]"""
+        n, vals, seg, w = self.n, self.vals, self.seg, self.w
+        wpk, fpk, seg_c = (np.concatenate(x) for x in (self.wpk, self.fpk, self.seg_pk))
+        value = _seg_max(fpk, seg_c, n) if fpk.size else np.full(n, -np.inf)
+        arg = _arg_by_seg(fpk, seg_c, n) if fpk.size else np.full(n, -1)
+        where = np.where(arg >= 0, wpk[np.maximum(arg, 0)] if fpk.size else np.nan, np.nan)
+        # grid values (ends of the sampled range) as a floor
+        gw = _arg_by_seg(vals, seg, n)
+        gbetter = vals[gw] > value
+        value = np.where(gbetter, vals[gw], value)
+        where = np.where(gbetter, w[gw], where)
+        at0 = self.v0 > value
+        value = np.where(at0, self.v0, value)
+        where = np.where(at0, 0.0, where)
+        atinf = self.vinf > value
+        value = np.where(atinf, self.vinf, value)
+        where = np.where(atinf, np.inf, where)
+        return value, where
+
+
+class _Band:
+    """max |S| and min |L| over 0 < w <= wd of every loop of a block, in dB."""
+
+    def __init__(self, ents, ent_pt, seg, w, absS, absL, inner, n, band, s0, l0):
+        self.n = n
+        self.has = np.isfinite(band) & (band > 0)
+        self.smax = np.full(n, np.nan)
+        self.lmin = np.full(n, np.nan)
+        self._jobs = []
+        if not self.has.any():
+            return
+        has = self.has
+        wd = np.where(has, band, np.nan)
+        inband = w <= wd[seg]
+        smax = _seg_max(np.where(inband, absS, -np.inf), seg, n)
+        lmin = _seg_min(np.where(inband, absL, np.inf), seg, n)
+        self.hi = np.flatnonzero(has)
+        self.ents, self.wd = ents, wd
+        self.smax, self.lmin = np.maximum(smax, s0), np.minimum(lmin, l0)
+        # interior extrema strictly inside the band, refined
+        # (points 1 .. N-2 with both neighbours in their segment, themselves and the right one in the band)
+        trip = inner & inband[1:-1] & inband[2:]
+        s_mid, l_mid = absS[1:-1], absL[1:-1]
+        smx = np.flatnonzero(trip & (s_mid >= absS[:-2]) & (s_mid > absS[2:])) + 1
+        lmn = np.flatnonzero(trip & (l_mid <= absL[:-2]) & (l_mid < absL[2:])) + 1
+        self.seg_smx, self.seg_lmn = seg[smx], seg[lmn]
+        # the last grid interval before the band edge: [w_j-1, wd], j the last grid point <= wd
+        last = _seg_max(np.where(inband, np.arange(w.size), -1), seg, n, -1)
+        e = np.flatnonzero(has & (last > 0))
         j = last[e]
         j = np.where(seg[j - 1] == e, j - 1, j)
         a, b = w[j], wd[e]
         okb = b > a
-        e, a, b = e[okb], a[okb], b[okb]
-        _, f = _golden_max(batch, ents[e], a, b, lambda Lv, _w: 1.0 / np.abs(1.0 + Lv))
-        smax[e] = np.maximum(smax[e], f)
-        _, f = _golden_max(batch, ents[e], a, b, lambda Lv, _w: -np.abs(Lv))
-        lmin[e] = np.minimum(lmin[e], -f)
-    with np.errstate(divide="ignore"):
-        s_db[has] = 20.0 * np.log10(smax[has])
-        l_db[has] = 20.0 * np.log10(lmin[has])
-    return s_db, l_db
+        self.e, a, b = e[okb], a[okb], b[okb]
+        self._jobs = [(ent_pt[smx], w[smx - 1], w[smx + 1], _abs_s), (ent_pt[lmn], w[lmn - 1], w[lmn + 1], _neg_abs_l),
+                      (ents[self.e], a, b, _abs_s), (ents[self.e], a, b, _neg_abs_l)]
+
+    def jobs(self, batch: Batch):
+        """Golden-section jobs: interior maxima of |S|, minima of |L|, and the last interval before wd.
+
+        Also takes |S| and |L| at the band edge itself (one evaluation).
+        """
+        if self._jobs:
+            Ld = eval_L(batch, self.ents[self.hi], self.wd[self.hi])
+            self.smax[self.hi] = np.maximum(self.smax[self.hi], 1.0 / np.abs(1.0 + Ld))
+            self.lmin[self.hi] = np.minimum(self.lmin[self.hi], np.abs(Ld))
+        return self._jobs
+
+    def finish(self, found) -> tuple[np.ndarray, np.ndarray]:
+        """Band figures in dB from the searches' results (in the order of :meth:`jobs`)."""
+        n, has = self.n, self.has
+        s_db = np.full(n, np.nan)
+        l_db = np.full(n, np.nan)
+        if not self._jobs:
+            return s_db, l_db
+        (_, f_s), (_, f_l), (_, f_es), (_, f_el) = found
+        smax = np.maximum(self.smax, _seg_max(f_s, self.seg_smx, n))
+        lmin = np.minimum(self.lmin, _seg_min(-f_l, self.seg_lmn, n))
+        smax[self.e] = np.maximum(smax[self.e], f_es)
+        lmin[self.e] = np.minimum(lmin[self.e], -f_el)
+        with np.errstate(divide="ignore"):
+            s_db[has] = 20.0 * np.log10(smax[has])
+            l_db[has] = 20.0 * np.log10(lmin[has])
+        return s_db, l_db
 
 
 # ----------------------------------------------------------------------------------------------
