@@ -375,77 +375,189 @@ def _depth(batch: Batch) -> np.ndarray:
 # Vectorised refinement
 
 
-def _stack_jobs(jobs):
-    """Brackets of several searches side by side: entries, ends, and the slice of each job."""
-    sizes = [j[0].size for j in jobs]
-    edges = np.concatenate([[0], np.cumsum(sizes)]).astype(int)
-    cat = [np.concatenate([np.asarray(j[k], float if k else int) for j in jobs]) for k in range(3)]
-    return cat[0], cat[1], cat[2], [slice(edges[i], edges[i + 1]) for i in range(len(jobs))]
+class _Jobs:
+    """Brackets of several searches side by side, each job ``(entries, a, b, fun)`` with its own fun(L, w).
 
-
-def _job_fun(jobs, slices):
-    """One function over stacked brackets: each job's own function on its slice."""
-    def fun(Lv, w):
-        out = np.empty(w.shape)
-        for (_, _, _, f), sl in zip(jobs, slices):
-            if sl.stop > sl.start:
-                out[sl] = f(Lv[sl], w[sl])
-        return out
-    return fun
-
-
-def _bisect_many(batch: Batch, jobs, iters: int = 46) -> list[np.ndarray]:
-    """Roots by bisection for several jobs ``(entries, a, b, fun)`` at once (one evaluation of L per step).
-
-    Each job's fun(L, w) changes sign on every one of its brackets [a, b]. Returns the roots per job.
+    :meth:`f` evaluates the functions at some brackets (an active subset, shrinking as brackets
+    converge); the coefficients of L are gathered once for the active set and gathered again
+    only when it has shrunk well below the set gathered.
     """
-    ent, a, b, slices = _stack_jobs(jobs)
-    if ent.size == 0:
-        return [a[sl] for sl in slices]
-    fun = _job_fun(jobs, slices)
-    at = _Points(batch, ent)
-    sa = fun(at(a), a) > 0
-    for _ in range(iters):
-        m = 0.5 * (a + b)
-        same = (fun(at(m), m) > 0) == sa
-        a = np.where(same, m, a)
-        b = np.where(same, b, m)
-    root = 0.5 * (a + b)
-    return [root[sl] for sl in slices]
+
+    def __init__(self, batch: Batch, jobs):
+        self.batch = batch
+        self.funs = [j[3] for j in jobs]
+        sizes = [np.size(j[0]) for j in jobs]
+        self.edges = np.concatenate([[0], np.cumsum(sizes)]).astype(int)
+        self.ent = np.concatenate([np.asarray(j[0], int) for j in jobs])
+        self.a = np.concatenate([np.asarray(j[1], float) for j in jobs])
+        self.b = np.concatenate([np.asarray(j[2], float) for j in jobs])
+        self.kind = np.repeat(np.arange(len(jobs)), sizes)
+        self.built = None
+
+    def f(self, idx: np.ndarray, x: np.ndarray) -> np.ndarray:
+        """fun(L(j x), x) of brackets ``idx`` (sorted) at frequencies ``x``. [-]"""
+        if self.built is None or idx.size < 0.6 * self.built.size:
+            self.built = idx.copy()
+            self.at = _Points(self.batch, self.ent[idx])
+            self.w_built = self.a[idx].copy()
+            self.kind_built = self.kind[idx]
+        if idx.size == self.built.size:
+            pos = slice(None)
+        else:
+            pos = np.searchsorted(self.built, idx)
+        self.w_built[pos] = x
+        Lv = self.at(self.w_built)[pos]
+        kind = self.kind_built[pos]
+        out = np.empty(x.shape)
+        for k, fun in enumerate(self.funs):
+            sel = kind == k
+            if sel.any():
+                out[sel] = fun(Lv[sel], x[sel])
+        return out
+
+    def split(self, *arrays):
+        """Per job: the part of each array (one value per bracket) that belongs to it."""
+        cut = [slice(self.edges[i], self.edges[i + 1]) for i in range(len(self.funs))]
+        return [tuple(arr[c] for arr in arrays) if len(arrays) > 1 else arrays[0][c] for c in cut]
+
+
+#: Relative width at which a root bracket counts as closed (a few units in the last place). [-]
+ROOT_RTOL = 1e-13
+#: Relative location tolerance of a maximum (the flatness of a maximum limits it). [-]
+PEAK_XRTOL = np.sqrt(np.finfo(float).eps)
+
+
+def _bisect_many(batch: Batch, jobs, max_iter: int = 100) -> list[np.ndarray]:
+    """Roots for several jobs ``(entries, a, b, fun)`` at once: Illinois false position, bisection as a fallback.
+
+    Each job's fun(L, w) changes sign on every one of its brackets [a, b] (the sign class of a value
+    is ``fun > 0``). The false-position point with the Illinois halving converges superlinearly on
+    smooth functions; a bisection step is taken where that point is not finite, and for every
+    bracket still open after 40 steps (so at most 40 + 60 steps).
+    A bracket is done when its width is below ROOT_RTOL relative. Returns the roots per job.
+
+    Reference: M. Dowell and P. Jarratt, "A modified regula falsi method for computing the root
+    of an equation", BIT 11 (1971) 168-174 (the Illinois method).
+    """
+    J = _Jobs(batch, jobs)
+    a, b = J.a.copy(), J.b.copy()
+    n = a.size
+    if n == 0:
+        return J.split(a)
+    every = np.arange(n)
+    fa, fb = J.f(every, a), J.f(every, b)
+    pa = fa > 0
+    side = np.zeros(n, np.int8)
+    act = every[(b - a) > ROOT_RTOL * np.maximum(np.abs(a), np.abs(b))]
+    for it in range(max_iter):
+        if act.size == 0:
+            break
+        A, B, FA, FB = a[act], b[act], fa[act], fb[act]
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            xs = (A * FB - B * FA) / (FB - FA)
+        bis = (it >= 40) | ~np.isfinite(xs)
+        # (with opposite signs at the ends the point lies in [A, B]; one on or within the tolerance
+        # of an end moves to just inside it, so that the bracket closes on the next step when that
+        # end is, to rounding, the root)
+        d = 0.4 * ROOT_RTOL * np.maximum(np.abs(A), np.abs(B))
+        x = np.where(bis, 0.5 * (A + B), np.clip(xs, A + d, B - d))
+        fx = J.f(act, x)
+        right = (fx > 0) == pa[act]          # the root lies in [x, b]
+        sd = side[act]
+        # Illinois: an end kept twice in a row has its function value halved for the interpolation
+        fb[act] = np.where(right, np.where(sd == -1, 0.5 * FB, FB), fx)
+        fa[act] = np.where(right, fx, np.where(sd == 1, 0.5 * FA, FA))
+        a[act] = np.where(right, x, A)
+        b[act] = np.where(right, B, x)
+        side[act] = np.where(right, -1, 1)
+        A, B = a[act], b[act]
+        stuck = (x == A) & (x == B)
+        act = act[((B - A) > ROOT_RTOL * np.maximum(np.abs(A), np.abs(B))) & ~stuck]
+    return J.split(0.5 * (a + b))
 
 
 _GOLD = (np.sqrt(5.0) - 1.0) / 2.0
+_CGOLD = 0.5 * (3.0 - np.sqrt(5.0))
 
 
-def _golden_many(batch: Batch, jobs, iters: int = 40) -> list[tuple[np.ndarray, np.ndarray]]:
-    """Maxima by golden-section search for several jobs ``(entries, a, b, fun)`` at once.
+def _golden_many(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Maxima of several jobs ``(entries, a, b, fun)`` at once, by Brent's method on each bracket.
 
-    Returns, per job, the location and value of the maximum of fun(L, w) on each bracket [a, b].
+    Golden-section steps with parabolic interpolation where the parabola is acceptable, until the
+    location is known to PEAK_XRTOL relative (the value then to about its square). Returns, per job,
+    the location and the value of the largest value found inside each bracket [a, b] (the ends,
+    grid points, are the caller's).
+
+    Reference: R. P. Brent, Algorithms for Minimization without Derivatives, Prentice-Hall, 1973,
+    ch. 5 (the bounded variant as in scipy.optimize.fminbound).
     """
-    ent, a, b, slices = _stack_jobs(jobs)
-    if ent.size == 0:
-        return [(a[sl], a[sl]) for sl in slices]
-    fun = _job_fun(jobs, slices)
-    at = _Points(batch, ent)
-    c = b - _GOLD * (b - a)
-    d = a + _GOLD * (b - a)
-    fc = fun(at(c), c)
-    fd = fun(at(d), d)
-    for _ in range(iters):
-        left = fc >= fd           # the maximum lies in [a, d]
-        b = np.where(left, d, b)
-        a = np.where(left, a, c)
-        x = np.where(left, b - _GOLD * (b - a), a + _GOLD * (b - a))
-        fx = fun(at(x), x)
-        c, d, fc, fd = (np.where(left, x, d), np.where(left, c, x),
-                        np.where(left, fx, fd), np.where(left, fc, fx))
-    # evaluate both inner points and the bracket ends, keep the best
-    cand_w = np.stack([a, b, c, d])
-    cand_f = np.stack([fun(at(x), x) for x in cand_w])
-    k = np.argmax(cand_f, axis=0)
-    cols = np.arange(ent.size)
-    wbest, fbest = cand_w[k, cols], cand_f[k, cols]
-    return [(wbest[sl], fbest[sl]) for sl in slices]
+    J = _Jobs(batch, jobs)
+    a, b = J.a.copy(), J.b.copy()
+    n = a.size
+    if n == 0:
+        return J.split(a, a)
+    every = np.arange(n)
+    xf = a + _CGOLD * (b - a)
+    fx = -J.f(every, xf)                      # minimise g = -fun
+    fx = np.where(np.isnan(fx), np.inf, fx)
+    nfc, fulc = xf.copy(), xf.copy()
+    fnfc, ffulc = fx.copy(), fx.copy()
+    rat = np.zeros(n)
+    e = np.zeros(n)
+    tiny = 1e-300
+
+    def tols(idx):
+        t1 = PEAK_XRTOL * np.abs(xf[idx]) + tiny
+        return t1, 2.0 * t1
+
+    act = every
+    for _ in range(max_iter):
+        t1, t2 = tols(act)
+        xm = 0.5 * (a[act] + b[act])
+        act_keep = np.abs(xf[act] - xm) > (t2 - 0.5 * (b[act] - a[act]))
+        act = act[act_keep]
+        if act.size == 0:
+            break
+        t1, t2, xm = t1[act_keep], t2[act_keep], xm[act_keep]
+        A, B, X, FX = a[act], b[act], xf[act], fx[act]
+        V, FV, W, FW = fulc[act], ffulc[act], nfc[act], fnfc[act]
+        E, RAT = e[act], rat[act]
+        # parabola through (X, FX), (W, FW), (V, FV)
+        with np.errstate(invalid="ignore", over="ignore"):
+            r = (X - W) * (FX - FV)
+            q = (X - V) * (FX - FW)
+            p = (X - V) * q - (X - W) * r
+            q = 2.0 * (q - r)
+            p = np.where(q > 0.0, -p, p)
+            q = np.abs(q)
+            ok = (np.abs(E) > t1) & (np.abs(p) < np.abs(0.5 * q * E)) & (p > q * (A - X)) & (p < q * (B - X))
+            rat_p = np.where(ok, p / np.where(q == 0, 1.0, q), 0.0)
+        e_new = np.where(ok, RAT, np.where(X >= xm, A - X, B - X))
+        rat_new = np.where(ok, rat_p, _CGOLD * e_new)
+        # a parabolic point too near an end steps by t1 towards the middle
+        xp = X + rat_new
+        near = ok & (((xp - A) < t2) | ((B - xp) < t2))
+        si_m = np.where(xm - X >= 0, 1.0, -1.0)
+        rat_new = np.where(near, t1 * si_m, rat_new)
+        si = np.where(rat_new >= 0, 1.0, -1.0)
+        u = X + si * np.maximum(np.abs(rat_new), t1)
+        fu = -J.f(act, u)
+        fu = np.where(np.isnan(fu), np.inf, fu)
+        better = fu <= FX
+        # bracket
+        a[act] = np.where(better, np.where(u >= X, X, A), np.where(u < X, u, A))
+        b[act] = np.where(better, np.where(u >= X, B, X), np.where(u < X, B, u))
+        # the three best points
+        w_to_v = better | (fu <= FW) | (W == X)
+        u_to_v = ~better & ~w_to_v & ((fu <= FV) | (V == X) | (V == W))
+        fulc[act] = np.where(w_to_v, W, np.where(u_to_v, u, V))
+        ffulc[act] = np.where(w_to_v, FW, np.where(u_to_v, fu, FV))
+        nfc[act] = np.where(better, X, np.where(w_to_v, u, W))
+        fnfc[act] = np.where(better, FX, np.where(w_to_v, fu, FW))
+        xf[act] = np.where(better, u, X)
+        fx[act] = np.where(better, fu, FX)
+        e[act], rat[act] = e_new, rat_new
+    return J.split(xf, -fx)
 
 
 def _abs_s(Lv: np.ndarray, _w: np.ndarray) -> np.ndarray:
@@ -554,21 +666,25 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
 
 
 def _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin, w_a, n_low):
+    """All grid points of a block: per loop a coarse log run [w_lo, w_a), a fine log run [w_a, w_mid]
+    and a linear run (w_mid, w_hi]; built as runs (base + k step, exponentiated on the log runs)."""
     counts = n_log + n_lin
-    seg = np.repeat(np.arange(counts.size), counts)
+    n = counts.size
+    seg = np.repeat(np.arange(n), counts)
     start = np.cumsum(counts) - counts
-    pos = np.arange(seg.size) - start[seg]
-    nl = n_log[seg]
-    n0 = n_low[seg]
-    step_low = np.log(w_a / w_lo) / np.maximum(n_low, 1)
-    step_log = np.log(w_mid / w_a) / np.maximum(n_log - n_low - 1, 1)
-    w_low = w_lo[seg] * np.exp(np.minimum(pos, n0) * step_low[seg])
-    w_log = w_a[seg] * np.exp(np.clip(pos - n0, 0, None) * step_log[seg])
-    w_log = np.where(pos < n0, w_low, w_log)
     with np.errstate(invalid="ignore", divide="ignore"):
+        step_low = np.log(w_a / w_lo) / np.maximum(n_low, 1)
+        step_log = np.log(w_mid / w_a) / np.maximum(n_log - n_low - 1, 1)
         step_lin = (w_hi - w_mid) / np.maximum(n_lin, 1)
-    w_lin = w_mid[seg] + (pos - nl + 1) * step_lin[seg]
-    w = np.where(pos < nl, w_log, w_lin)
+    # three runs per loop, in order: (count, first value, step, exponentiate)
+    run_n = np.stack([n_low, n_log - n_low, n_lin], axis=1).ravel()
+    base = np.stack([np.log(w_lo), np.log(w_a), w_mid + step_lin], axis=1).ravel()
+    step = np.stack([step_low, step_log, step_lin], axis=1).ravel()
+    rid = np.repeat(np.arange(run_n.size), run_n)
+    k = np.arange(rid.size) - (np.cumsum(run_n) - run_n)[rid]
+    v = base[rid] + k * step[rid]
+    lin = (rid % 3) == 2
+    w = np.where(lin, v, np.exp(np.where(lin, 0.0, v)))
     return seg, w, start, counts
 
 
