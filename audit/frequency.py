@@ -844,14 +844,13 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     for p, f in zip(peaks, found):
         p.add(*f)
     out["band_s_db"], out["band_l_db"] = band_search.finish(found[len(peaks):])
-    # then the grid intervals that may still hide a higher value, screened and searched together
-    hidden = [p.hidden() for p in peaks]
-    live = _screen(batch, [(ent_pt[h], w[h], w[h + 1], L[h], L[h + 1], p.best[seg[h]], p.bound)
-                           for p, h in zip(peaks, hidden)])
-    hidden = [p.top_hidden(h[keep]) for p, h, keep in zip(peaks, hidden, live)]
-    found = _golden_many(batch, [(ent_pt[h], w[h], w[h + 1], p.fun) for p, h in zip(peaks, hidden)])
-    for p, f in zip(peaks, found):
-        p.add(*f)
+    # then the grid intervals that may still hide a higher value, both magnitudes together
+    groups = []
+    for p in peaks:
+        h = p.hidden(w_a)
+        groups.append((ent_pt[h], w[h], w[h + 1], L[h], L[h + 1], seg[h], p.best, p.bound, p.fun))
+    for p, found in zip(peaks, _branch_and_bound(batch, groups)):
+        p.add(*found)
     out["ms"], out["w_ms_rad_s"] = peaks[0].result()
     out["mt"], out["w_mt_rad_s"] = peaks[1].result()
 
@@ -949,70 +948,70 @@ def _t_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
     return _t_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(La), np.abs(Lb), np.abs(Lb - La))
 
 
-def _screen(batch: Batch, ent: np.ndarray, a: np.ndarray, b: np.ndarray, La: np.ndarray, Lb: np.ndarray,
-            target: np.ndarray, bound, rounds: int = 4) -> np.ndarray:
-    """Which intervals [a, b] may hold a value above ``target``: halve them ``rounds`` times.
+#: Halvings of a hidden-peak interval before what is left of it goes to Brent's method. [-]
+BNB_ROUNDS = 10
+#: Pieces per loop and magnitude kept in play by the branch and bound. [-]
+BNB_PIECES = 16
 
-    An interval stays while one of its pieces has ``bound`` above the target; every halving
-    costs one evaluation per piece still in play and halves the chord slack of the bound.
-    Returns a boolean mask over the intervals.
+
+def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tuple[np.ndarray, ...]]:
+    """Largest value of a magnitude on grid intervals that may hide a peak, by halving with bounds.
+
+    ``groups`` holds ``(entries, a, b, L_a, L_b, loop, best, bound, fun)`` per magnitude, one row per
+    interval [a, b] (``loop``: index into ``best``, the best value known per loop). Every round
+    evaluates the middle of each piece still in play (all groups in one call), raises ``best`` with
+    the values found, and keeps a half only while ``bound(L_a, L_b)`` of it exceeds the loop's best:
+    a piece is dropped only when no value in it can beat what is known. Pieces still in play after
+    ``rounds`` halvings are searched by :func:`_golden_many`. At most BNB_PIECES pieces per loop
+    and magnitude stay in play, those with the highest bounds. Returns per group the frequencies,
+    values and loops of every value that raised a best. [rad/s], [-], [-]
     """
-    keep = np.zeros(a.size, bool)
-    owner = np.arange(a.size)
-    live = bound(La, Lb) > target * (1.0 + 1e-12)
-    owner, a, b, La, Lb, target, ent = (x[live] for x in (owner, a, b, La, Lb, target, ent))
-    for _ in range(rounds):
-        if owner.size == 0:
-            break
-        m = 0.5 * (a + b)
-        Lm = eval_L(batch, ent, m)
-        owner, ent, target = (np.concatenate([x, x]) for x in (owner, ent, target))
-        a, b, La, Lb = np.concatenate([a, m]), np.concatenate([m, b]), np.concatenate([La, Lm]), np.concatenate([Lm, Lb])
-        live = bound(La, Lb) > target * (1.0 + 1e-12)
-        owner, a, b, La, Lb, target, ent = (x[live] for x in (owner, a, b, La, Lb, target, ent))
-    keep[owner] = True
-    return keep
-
-
-def _screen(batch: Batch, groups, rounds: int = 4) -> list[np.ndarray]:
-    """Which intervals may hold a value above a target: halve them ``rounds`` times.
-
-    ``groups`` holds ``(entries, a, b, L_a, L_b, target, bound)`` per magnitude, one row per
-    interval [a, b]. An interval stays while one of its pieces has ``bound(L_a, L_b)`` above
-    its target; every halving costs one evaluation per piece still in play (all groups in one
-    call) and halves the chord slack of the bound. Returns a boolean mask per group.
-    """
-    masks = [np.zeros(g[0].size, bool) for g in groups]
-    if not groups:
-        return masks
+    out = [([], [], []) for _ in groups]
+    if not groups or sum(g[0].size for g in groups) == 0:
+        return [tuple(np.zeros(0, t) for t in (float, float, int)) for _ in groups]
+    best = [g[6].copy() for g in groups]
     kind = np.concatenate([np.full(g[0].size, i) for i, g in enumerate(groups)]).astype(int)
-    owner = np.concatenate([np.arange(g[0].size) for g in groups]).astype(int)
-    ent, a, b, La, Lb, target = (np.concatenate([g[k] for g in groups]) for k in range(6))
-    bounds = [g[6] for g in groups]
+    ent, a, b, La, Lb, loop = (np.concatenate([g[k] for g in groups]) for k in range(6))
 
-    def alive(La, Lb, target, kind):
-        up = np.empty(La.shape)
-        for i, bound in enumerate(bounds):
+    def by_kind(fn, kind, *args):
+        res = np.empty(args[0].shape)
+        for i, g in enumerate(groups):
             sel = kind == i
-            up[sel] = bound(La[sel], Lb[sel])
-        return up > target * (1.0 + 1e-12)
+            if sel.any():
+                res[sel] = fn(i, *(x[sel] for x in args))
+        return res
 
-    live = alive(La, Lb, target, kind)
-    state = [x[live] for x in (kind, owner, ent, a, b, La, Lb, target)]
+    def target(kind, loop):
+        return by_kind(lambda i, lp: best[i][lp], kind, loop)
+
     for _ in range(rounds):
-        kind, owner, ent, a, b, La, Lb, target = state
         if kind.size == 0:
             break
         m = 0.5 * (a + b)
         Lm = eval_L(batch, ent, m)
-        pieces = [np.concatenate(pair) for pair in ((kind, kind), (owner, owner), (ent, ent), (a, m), (m, b),
-                                                      (La, Lm), (Lm, Lb), (target, target))]
-        live = alive(pieces[5], pieces[6], pieces[7], pieces[0])
-        state = [x[live] for x in pieces]
-    kind, owner = state[0], state[1]
-    for i, mask in enumerate(masks):
-        mask[owner[kind == i]] = True
-    return masks
+        fm = by_kind(lambda i, L_, w_: groups[i][8](L_, w_), kind, Lm, m)
+        raise_ = fm > target(kind, loop)
+        for i in range(len(groups)):
+            sel = raise_ & (kind == i)
+            if sel.any():
+                np.maximum.at(best[i], loop[sel], fm[sel])
+                for lst, val in zip(out[i], (m[sel], fm[sel], loop[sel])):
+                    lst.append(val)
+        kind, ent, loop = (np.concatenate([x, x]) for x in (kind, ent, loop))
+        a, b, La, Lb = np.concatenate([a, m]), np.concatenate([m, b]), np.concatenate([La, Lm]), np.concatenate([Lm, Lb])
+        up = by_kind(lambda i, x, y: groups[i][7](x, y), kind, La, Lb)
+        live = np.flatnonzero(up > target(kind, loop) * (1.0 + 1e-12))
+        # at most BNB_PIECES per loop and magnitude, highest bound first (a loop whose ripples
+        # approach a limit value from below, as with |L(inf)| > 0 and dead time, has no end of them)
+        live = _top_by_seg(live, up[live], kind[live] * (int(loop.max()) + 1) + loop[live], BNB_PIECES)
+        kind, ent, loop, a, b, La, Lb = (x[live] for x in (kind, ent, loop, a, b, La, Lb))
+    if kind.size:
+        found = _golden_many(batch, [(ent[kind == i], a[kind == i], b[kind == i], g[8]) for i, g in enumerate(groups)])
+        for i, (wf, ff) in enumerate(found):
+            for lst, val in zip(out[i], (wf, ff, loop[kind == i])):
+                lst.append(val)
+    return [tuple(np.concatenate(lst) if lst else np.zeros(0, t) for lst, t in zip(o, (float, float, int)))
+            for o in out]
 
 
 class _Peak:
@@ -1023,8 +1022,8 @@ class _Peak:
     ``bound(La, Lb)`` the same bound from L at an interval's ends (:func:`_s_bound`, :func:`_t_bound`).
     Searched: [w_i-1, w_i+1] around the highest grid maxima whose bound reaches the grid maximum
     (:meth:`first_job`), then every grid interval whose bound still exceeds the best value found
-    and survives :func:`_screen` (:meth:`hidden`): a narrow peak between two grid points cannot
-    hide there.
+    (:meth:`hidden`), searched by :func:`_branch_and_bound`: a narrow peak between two grid points
+    cannot hide there.
     """
 
     def __init__(self, ent_pt, seg, w, vals, inner, n, v0, vinf, fun, upper, bound):
@@ -1046,12 +1045,11 @@ class _Peak:
         c = self.cand
         return self.ent_pt[c], self.w[c - 1], self.w[c + 1], self.fun
 
-    def add(self, wpk: np.ndarray, fpk: np.ndarray) -> None:
-        """Take the maxima found on the last job's brackets."""
-        idx = self.cand if not self.fpk else self._hid
+    def add(self, wpk: np.ndarray, fpk: np.ndarray, loops: np.ndarray | None = None) -> None:
+        """Take maxima found: on the brackets of :meth:`first_job` (``loops`` None) or anywhere in ``loops``."""
         self.wpk.append(wpk)
         self.fpk.append(fpk)
-        self.seg_pk.append(self.seg[idx])
+        self.seg_pk.append(self.seg[self.cand] if loops is None else loops)
 
     @property
     def best(self) -> np.ndarray:
@@ -1060,16 +1058,16 @@ class _Peak:
         refined = _seg_max(f, np.concatenate(self.seg_pk), self.n) if f.size else np.full(self.n, -np.inf)
         return np.fmax(np.fmax(self.gmax, refined), np.fmax(self.v0, self.vinf))
 
-    def hidden(self) -> np.ndarray:
-        """Grid intervals (their left points) whose bound exceeds the best value, outside the searched brackets."""
+    def hidden(self, w_a: np.ndarray) -> np.ndarray:
+        """Grid intervals (their left points) whose bound exceeds the best value, outside the searched brackets.
+
+        Intervals below ``w_a`` (a tenth of the loop's lowest corner frequency) are left out: there L
+        follows its low-frequency asymptote and nothing turns (the same reason the grid is coarse there).
+        """
         c = self.cand
         hid = np.flatnonzero(self.upper > self.best[self.seg[:-1]] * (1.0 + 1e-12))
+        hid = hid[self.w[hid + 1] > w_a[self.seg[hid]]]
         return hid[~np.isin(hid, c) & ~np.isin(hid, c - 1)]
-
-    def top_hidden(self, hid: np.ndarray) -> np.ndarray:
-        """At most 8 intervals per loop, highest bound first; they are the next job's brackets."""
-        self._hid = _top_by_seg(hid, self.upper[hid], self.seg[hid], 8)
-        return self._hid
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
         """Peak value and its frequency per loop (0 or inf for a limit). [-], [rad/s]"""
