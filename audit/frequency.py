@@ -22,6 +22,7 @@ References
 
 from __future__ import annotations
 
+import platform
 from dataclasses import dataclass
 from typing import Sequence
 
@@ -43,6 +44,8 @@ LOW_STEP = 0.25
 BLOCK_POINTS = 2_000_000
 #: Points per loop at most. [-]
 MAX_POINTS = 400_000
+#: Loops evaluated together (one grid, one set of searches). [-]
+CHUNK_LOOPS = 1000
 
 FIGURE_COLUMNS = (
     "stable", "rhp_closed", "rhp_open", "gm", "gm_db", "w180_rad_s", "gm_low", "pm_deg", "wc_rad_s",
@@ -424,7 +427,7 @@ class _Jobs:
 #: Relative width at which a root bracket counts as closed (a few units in the last place). [-]
 ROOT_RTOL = 1e-13
 #: Relative location tolerance of a maximum (the flatness of a maximum limits it). [-]
-PEAK_XRTOL = np.sqrt(np.finfo(float).eps)
+PEAK_XRTOL = 1e-10
 
 
 def _bisect_many(batch: Batch, jobs, max_iter: int = 100) -> list[np.ndarray]:
@@ -1003,7 +1006,11 @@ def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tu
         live = np.flatnonzero(up > target(kind, loop) * (1.0 + 1e-12))
         # at most BNB_PIECES per loop and magnitude, highest bound first (a loop whose ripples
         # approach a limit value from below, as with |L(inf)| > 0 and dead time, has no end of them)
-        live = _top_by_seg(live, up[live], kind[live] * (int(loop.max()) + 1) + loop[live], BNB_PIECES)
+        key = kind[live] * (int(loop.max()) + 1) + loop[live]
+        crowded = np.bincount(key)[key] > BNB_PIECES
+        if crowded.any():
+            few, many = live[~crowded], live[crowded]
+            live = np.sort(np.concatenate([few, _top_by_seg(many, up[many], key[crowded], BNB_PIECES)]))
         kind, ent, loop, a, b, La, Lb = (x[live] for x in (kind, ent, loop, a, b, La, Lb))
     if kind.size:
         found = _golden_many(batch, [(ent[kind == i], a[kind == i], b[kind == i], g[8]) for i, g in enumerate(groups)])
@@ -1159,6 +1166,34 @@ class _Band:
 # ----------------------------------------------------------------------------------------------
 
 
+_HEAP_KEPT = False
+
+
+def _keep_freed_memory() -> None:
+    """Ask glibc's malloc to keep freed memory for reuse (once per process; no-op elsewhere).
+
+    Every block of the engine allocates temporaries of the same few sizes (megabytes each). By
+    default glibc returns such blocks to the system when they are freed and faults fresh pages in
+    for the next ones; with the trim threshold at 1 GiB and the mmap threshold at its largest
+    (32 MiB) the next block reuses the heap. The process keeps its peak heap until it exits.
+    """
+    global _HEAP_KEPT
+    if _HEAP_KEPT:
+        return
+    _HEAP_KEPT = True
+    try:
+        import ctypes
+        import ctypes.util
+
+        if platform.libc_ver()[0] != "glibc":
+            return
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        libc.mallopt(-1, 1 << 30)   # M_TRIM_THRESHOLD
+        libc.mallopt(-3, 32 << 20)  # M_MMAP_THRESHOLD
+    except (OSError, AttributeError):
+        pass
+
+
 def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFrame:
     """Exact frequency-domain figures of many loops.
 
@@ -1178,6 +1213,7 @@ def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFram
         ``mt`` [-], ``w_mt_rad_s`` [rad/s], ``wb_rad_s`` [rad/s], ``band_s_db`` [dB],
         ``band_l_db`` [dB], ``engine_note`` (text).
     """
+    _keep_freed_memory()
     models = list(models)
     nmod = len(models)
     if band_rad_s is None:
@@ -1204,7 +1240,7 @@ def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFram
                 j = batch.inner[e]
                 if j >= 0:
                     p_open[e] = st.p_own[e] + max(zraw[j], 0)
-            for chunk in np.array_split(lev, int(np.ceil(lev.size / 2000))):
+            for chunk in np.array_split(lev, int(np.ceil(lev.size / CHUNK_LOOPS))):
                 grid = _grids(batch, chunk, st, tdel)
                 for sub in _blocks(grid[4] + grid[5]):
                     blk = chunk[sub]
