@@ -163,7 +163,9 @@ def evaluate_parallel(models: Sequence[LoopModel | None], band_rad_s=None, jobs:
     n = len(models)
     band = np.full(n, np.nan) if band_rad_s is None else np.array(
         [np.nan if b is None else float(b) for b in band_rad_s], float)
-    return map_chunks(_evaluate_chunk, models, [band], jobs)
+    # one chunk per worker: the engine's cost per loop is even (bounded searches), and every
+    # further chunk pays the engine's fixed cost per call again
+    return map_chunks(_evaluate_chunk, models, [band], jobs, chunks_per_job=1)
 
 
 def step_figures_parallel(models: Sequence[LoopModel | None], policy, stable=None, jobs: int = 1) -> pd.DataFrame:
