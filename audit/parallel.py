@@ -25,6 +25,9 @@ from .loop import LoopModel
 MIN_LOOPS_PER_JOB = 250
 #: Chunks per job, so a chunk of slow loops (long dead times) does not hold the others up. [-]
 CHUNKS_PER_JOB = 4
+#: The frequency engine does about 10,000 loops per second in one process: a worker pays for its
+#: start only with this many loops. [-]
+MIN_LOOPS_PER_EVALUATE_JOB = 2000
 
 
 def cascade_groups(models: Sequence[LoopModel | None]) -> list[list[int]]:
@@ -98,7 +101,8 @@ def _run_shared(idx: np.ndarray) -> pd.DataFrame:
 
 
 def map_chunks(fn, models: Sequence[LoopModel | None], per_loop: Sequence[Sequence], jobs: int,
-               extra: tuple = (), chunks_per_job: int = CHUNKS_PER_JOB) -> pd.DataFrame:
+               extra: tuple = (), chunks_per_job: int = CHUNKS_PER_JOB,
+               min_per_job: int | None = None) -> pd.DataFrame:
     """``fn(models, *per_loop_args, *extra)`` over cascade-safe chunks in ``jobs`` processes.
 
     ``fn`` returns one DataFrame row per model; the rows are put back in order. With one job
@@ -118,13 +122,16 @@ def map_chunks(fn, models: Sequence[LoopModel | None], per_loop: Sequence[Sequen
         Arguments passed whole to every call.
     chunks_per_job : int
         Chunks per worker (more balance the load; fewer save per-call overhead). [-]
+    min_per_job : int, optional
+        Fewest loops a worker is started for (default MIN_LOOPS_PER_JOB). [-]
     """
     models = list(models)
     n = len(models)
     jobs = max(1, int(jobs))
-    if jobs == 1 or n < 2 * MIN_LOOPS_PER_JOB:
+    least = MIN_LOOPS_PER_JOB if min_per_job is None else min_per_job
+    if jobs == 1 or n < 2 * least:
         return fn(models, *per_loop, *extra) if not extra else fn(models, *extra, *per_loop)
-    jobs = min(jobs, n // MIN_LOOPS_PER_JOB)
+    jobs = min(jobs, n // least)
     parts = _chunks(cascade_groups(models), jobs * chunks_per_job)
     global _SHARED
     _SHARED = (fn, models, [list(seq) for seq in per_loop], extra)
@@ -165,7 +172,8 @@ def evaluate_parallel(models: Sequence[LoopModel | None], band_rad_s=None, jobs:
         [np.nan if b is None else float(b) for b in band_rad_s], float)
     # one chunk per worker: the engine's cost per loop is even (bounded searches), and every
     # further chunk pays the engine's fixed cost per call again
-    return map_chunks(_evaluate_chunk, models, [band], jobs, chunks_per_job=1)
+    return map_chunks(_evaluate_chunk, models, [band], jobs, chunks_per_job=1,
+                      min_per_job=MIN_LOOPS_PER_EVALUATE_JOB)
 
 
 def step_figures_parallel(models: Sequence[LoopModel | None], policy, stable=None, jobs: int = 1) -> pd.DataFrame:

@@ -56,7 +56,7 @@ def test_two_jobs_give_exactly_the_one_job_result(synthetic, monkeypatch):
     models, band = synthetic
     assert any(m is not None and m.inner is not None for m in models)
     assert any(m is None for m in models)
-    monkeypatch.setattr(parallel, "MIN_LOOPS_PER_JOB", 100)
+    monkeypatch.setattr(parallel, "MIN_LOOPS_PER_EVALUATE_JOB", 100)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         one = evaluate(models, band)
