@@ -395,6 +395,8 @@ class _Jobs:
         self.a = np.concatenate([np.asarray(j[1], float) for j in jobs])
         self.b = np.concatenate([np.asarray(j[2], float) for j in jobs])
         self.kind = np.repeat(np.arange(len(jobs)), sizes)
+        # optional fifth element: relative location tolerance of a job's maxima
+        self.xrtol = np.repeat([j[4] if len(j) > 4 else PEAK_XRTOL for j in jobs], sizes).astype(float)
         self.built = None
 
     def f(self, idx: np.ndarray, x: np.ndarray) -> np.ndarray:
@@ -426,8 +428,10 @@ class _Jobs:
 
 #: Relative width at which a root bracket counts as closed (a few units in the last place). [-]
 ROOT_RTOL = 1e-13
-#: Relative location tolerance of a maximum (the flatness of a maximum limits it). [-]
+#: Relative location tolerance of a maximum: fine enough that a peak of 5e4 keeps its value to 1e-11. [-]
 PEAK_XRTOL = 1e-10
+#: Tolerance for a maximum over the last interval of a band, mostly at one of its ends (known). [-]
+EDGE_XRTOL = float(np.sqrt(np.finfo(float).eps))
 
 
 def _bisect_many(batch: Batch, jobs, max_iter: int = 100) -> list[np.ndarray]:
@@ -484,10 +488,10 @@ _CGOLD = 0.5 * (3.0 - np.sqrt(5.0))
 
 
 def _golden_many(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarray, np.ndarray]]:
-    """Maxima of several jobs ``(entries, a, b, fun)`` at once, by Brent's method on each bracket.
+    """Maxima of several jobs ``(entries, a, b, fun[, xrtol])`` at once, by Brent's method on each bracket.
 
     Golden-section steps with parabolic interpolation where the parabola is acceptable, until the
-    location is known to PEAK_XRTOL relative (the value then to about its square). Returns, per job,
+    location is known to ``xrtol`` relative (PEAK_XRTOL by default; the value then to about its square). Returns, per job,
     the location and the value of the largest value found inside each bracket [a, b] (the ends,
     grid points, are the caller's).
 
@@ -510,7 +514,7 @@ def _golden_many(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarr
     tiny = 1e-300
 
     def tols(idx):
-        t1 = PEAK_XRTOL * np.abs(xf[idx]) + tiny
+        t1 = J.xrtol[idx] * np.abs(xf[idx]) + tiny
         return t1, 2.0 * t1
 
     act = every
@@ -952,8 +956,9 @@ def _t_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
 
 
 #: Halvings of a hidden-peak interval before what is left of it goes to Brent's method. [-]
-BNB_ROUNDS = 10
-#: Pieces per loop and magnitude kept in play by the branch and bound. [-]
+BNB_ROUNDS = 14
+#: Grid intervals per loop and magnitude given to the branch and bound, and pieces kept in play
+#: (highest bounds first). [-]
 BNB_PIECES = 16
 
 
@@ -987,7 +992,7 @@ def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tu
     def target(kind, loop):
         return by_kind(lambda i, lp: best[i][lp], kind, loop)
 
-    for _ in range(rounds):
+    for r in range(rounds):
         if kind.size == 0:
             break
         m = 0.5 * (a + b)
@@ -1004,11 +1009,11 @@ def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tu
         a, b, La, Lb = np.concatenate([a, m]), np.concatenate([m, b]), np.concatenate([La, Lm]), np.concatenate([Lm, Lb])
         up = by_kind(lambda i, x, y: groups[i][7](x, y), kind, La, Lb)
         live = np.flatnonzero(up > target(kind, loop) * (1.0 + 1e-12))
-        # at most BNB_PIECES per loop and magnitude, highest bound first (a loop whose ripples
+        # at most BNB_PIECES per loop and magnitude (checked every third round), highest bound first (a loop whose ripples
         # approach a limit value from below, as with |L(inf)| > 0 and dead time, has no end of them)
         key = kind[live] * (int(loop.max()) + 1) + loop[live]
         crowded = np.bincount(key)[key] > BNB_PIECES
-        if crowded.any():
+        if crowded.any() and (r % 3 == 2 or r == rounds - 1):     # (pieces at most double per round)
             few, many = live[~crowded], live[crowded]
             live = np.sort(np.concatenate([few, _top_by_seg(many, up[many], key[crowded], BNB_PIECES)]))
         kind, ent, loop, a, b, La, Lb = (x[live] for x in (kind, ent, loop, a, b, La, Lb))
@@ -1074,7 +1079,8 @@ class _Peak:
         c = self.cand
         hid = np.flatnonzero(self.upper > self.best[self.seg[:-1]] * (1.0 + 1e-12))
         hid = hid[self.w[hid + 1] > w_a[self.seg[hid]]]
-        return hid[~np.isin(hid, c) & ~np.isin(hid, c - 1)]
+        hid = hid[~np.isin(hid, c) & ~np.isin(hid, c - 1)]
+        return _top_by_seg(hid, self.upper[hid], self.seg[hid], BNB_PIECES)   # the highest BNB_PIECES per loop
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
         """Peak value and its frequency per loop (0 or inf for a limit). [-], [rad/s]"""
@@ -1132,7 +1138,7 @@ class _Band:
         okb = b > a
         self.e, a, b = e[okb], a[okb], b[okb]
         self._jobs = [(ent_pt[smx], w[smx - 1], w[smx + 1], _abs_s), (ent_pt[lmn], w[lmn - 1], w[lmn + 1], _neg_abs_l),
-                      (ents[self.e], a, b, _abs_s), (ents[self.e], a, b, _neg_abs_l)]
+                      (ents[self.e], a, b, _abs_s, EDGE_XRTOL), (ents[self.e], a, b, _neg_abs_l, EDGE_XRTOL)]
 
     def jobs(self, batch: Batch):
         """Golden-section jobs: interior maxima of |S|, minima of |L|, and the last interval before wd.
