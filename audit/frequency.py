@@ -34,6 +34,8 @@ from .timedomain import controller_poly
 
 #: |L| below which the tail of the frequency axis is not sampled densely. [-]
 TAIL_LEVEL = 1e-2
+#: Factor between the first scan point past the tail level and the end of the dense grid. [-]
+TAIL_MARGIN = 1.25
 #: Largest delay phase between neighbouring grid points. [rad]
 DELAY_STEP = 0.5
 #: Largest step in ln(w) between neighbouring grid points. [-]
@@ -631,20 +633,23 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
     """Per-entry frequency ranges and point counts."""
     c_min, c_max = st.c_min[ents], st.c_max[ents]
     w_lo = 1e-3 * c_min
-    # coarse magnitude scan to find where |L| has fallen to the tail level for good
+    # coarse magnitude scan to find where |L| has fallen to the tail level for good; it starts at
+    # a tenth of the lowest corner: below, |L| follows its asymptote c0 / w^k (k >= 0), so it is
+    # above the level there if it is anywhere below (with integrators |L| >= 10 at the start)
     per_dec = 12
+    w_s = 100.0 * w_lo
     top = 1e4 * c_max
-    ndec = np.log10(top / w_lo)
+    ndec = np.log10(top / w_s)
     npts = np.ceil(ndec * per_dec).astype(int) + 1
     seg = np.repeat(np.arange(ents.size), npts)
     start = np.cumsum(npts) - npts
     pos = np.arange(seg.size) - start[seg]
-    w = w_lo[seg] * 10.0 ** (pos / per_dec)
+    w = w_s[seg] * 10.0 ** (pos / per_dec)
     mag = np.abs(eval_L(batch, ents[seg], w))
     thr = np.maximum(TAIL_LEVEL, st.l_inf[ents] * (1 + 1e-3) + TAIL_LEVEL * st.l_inf[ents])
     above = mag >= thr[seg]
     last = _seg_max(np.where(above, pos, -1), seg, ents.size, -1)
-    w_hi = np.where(last >= 0, w_lo * 10.0 ** ((last + 1) / per_dec), w_lo * 100.0) * 2.0
+    w_hi = np.where(last >= 0, w_s * 10.0 ** ((last + 1) / per_dec), w_lo * 100.0) * TAIL_MARGIN
     # still above the tail level at the end of the scan: beyond every corner |L| falls at least
     # as 1/w (strictly proper loops), so it is below the level by w_end |L(w_end)| / level
     end_above = (last == npts - 1) & (st.l_inf[ents] == 0)

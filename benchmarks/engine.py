@@ -211,8 +211,8 @@ def main(argv: list[str] | None = None) -> int:
     same_par = f"{'same' if same_flags else 'DIFFERENT'} stability, max rel diff {rel:.1e}"
 
     if args.no_reference:
-        print(f"(a) engine, 1 process : {n / t_eng:9.0f} loops/s  ({t_eng:.2f} s wall, {c_eng:.2f} s CPU)")
-        print(f"    engine, {args.jobs} processes: {n / t_par:9.0f} loops/s  ({t_par:.2f} s wall; against 1 process: {same_par})")
+        print(f"(a) engine, 1 process : {n / t_eng:9.0f} loops/s  ({t_eng:.3f} s wall, {c_eng:.3f} s CPU)")
+        print(f"    engine, {args.jobs} processes: {n / t_par:9.0f} loops/s  ({t_par:.3f} s wall; against 1 process: {same_par})")
         return 0
     refs = []
     t0, c0 = time.perf_counter(), time.process_time()
@@ -220,8 +220,8 @@ def main(argv: list[str] | None = None) -> int:
         refs.append(reference(m))
     t_ref, c_ref = time.perf_counter() - t0, time.process_time() - c0
 
-    print(f"(a) engine, 1 process : {n / t_eng:9.0f} loops/s  ({t_eng:.2f} s wall, {c_eng:.2f} s CPU)")
-    print(f"    engine, {args.jobs} processes: {n / t_par:9.0f} loops/s  ({t_par:.2f} s wall; against 1 process: {same_par})")
+    print(f"(a) engine, 1 process : {n / t_eng:9.0f} loops/s  ({t_eng:.3f} s wall, {c_eng:.3f} s CPU)")
+    print(f"    engine, {args.jobs} processes: {n / t_par:9.0f} loops/s  ({t_par:.3f} s wall; against 1 process: {same_par})")
     print(f"(b) python-control    : {n / t_ref:9.0f} loops/s  ({t_ref:.2f} s wall, {c_ref:.2f} s CPU)")
     print(f"speed ratio engine/reference: {t_ref / t_eng:.1f} x wall, {c_ref / c_eng:.1f} x CPU "
           f"(with {args.jobs} processes: {t_ref / t_par:.1f} x wall)")
