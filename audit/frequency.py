@@ -848,8 +848,8 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     dL = np.abs(L[1:] - L[:-1])
     s_up = np.where(same, _s_upper(p1a, p1b, dL), -np.inf)
     t_up = np.where(same, _t_upper(p1a, p1b, la, lb, dL), -np.inf)
-    peaks = (_Peak(ent_pt, seg, w, absS, inner, n, s_0, s_inf, _abs_s, s_up, _s_bound),
-             _Peak(ent_pt, seg, w, absT, inner, n, t_0, t_inf, _abs_t, t_up, _t_bound))
+    peaks = (_Peak(ent_pt, seg, w, L, absS, inner, n, s_0, s_inf, _abs_s, s_up, _s_bound),
+             _Peak(ent_pt, seg, w, L, absT, inner, n, t_0, t_inf, _abs_t, t_up, _t_bound))
     band_search = _Band(ents, ent_pt, seg, w, absS, absL, inner, n, band, s_0, np.where(k > 0, np.inf, np.abs(L0)))
     # every golden-section search of the block side by side: grid maxima of |S| and |T|, extrema in the band
     found = _golden_many(batch, [p.first_job() for p in peaks] + band_search.jobs(batch))
@@ -908,56 +908,43 @@ def _t_upper(p1a: np.ndarray, p1b: np.ndarray, la: np.ndarray, lb: np.ndarray, d
     return np.fmin(t_l, t_g)
 
 
-def _s_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
-    """:func:`_s_upper` from L at the ends of each interval."""
-    return _s_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(Lb - La))
+#: Largest distance of the curve from its chord on an interval, as a fraction of the chord. [-]
+SAGITTA = 0.25
 
 
-def _t_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
-    """:func:`_t_upper` from L at the ends of each interval."""
-    return _t_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(La), np.abs(Lb), np.abs(Lb - La))
+def _chord_gap(P: np.ndarray, Q: np.ndarray) -> np.ndarray:
+    """Lower bound of |1 + z| on a curve piece with ends P, Q (complex): distance from -1 to the
+    chord [P, Q], less SAGITTA times the chord.
 
-
-def _top_by_seg(idx: np.ndarray, score: np.ndarray, seg: np.ndarray, k: int) -> np.ndarray:
-    """The ``k`` entries of ``idx`` with the highest ``score`` in each segment."""
-    if idx.size == 0:
-        return idx
-    order = np.lexsort((-score, seg))
-    cs = seg[order]
-    rank = np.arange(cs.size) - np.searchsorted(cs, cs, side="left")
-    return idx[order][rank < k]
-
-
-def _s_upper(p1a: np.ndarray, p1b: np.ndarray, d: np.ndarray) -> np.ndarray:
-    """Upper bound of |S| on an interval [w_a, w_b] from |1 + L| at its ends and d = |L_b - L_a|.
-
-    Between neighbouring grid points the curve turns little, so it stays within about half
-    a chord of its ends: |1 + L| >= min(|1 + L_a|, |1 + L_b|) - 0.6 |L_b - L_a| on the interval.
+    An arc that turns by phi stays within (|Q - P| / 2) tan(phi / 4) of its chord: 0.25 |Q - P|
+    allows turns of up to 1.8 rad on one grid interval (the grid allows 0.5 rad of delay phase
+    and a small part of any corner per step).
     """
-    return 1.0 / np.maximum(np.minimum(p1a, p1b) - 0.6 * d, 1e-300)
-
-
-def _t_upper(p1a: np.ndarray, p1b: np.ndarray, la: np.ndarray, lb: np.ndarray, d: np.ndarray) -> np.ndarray:
-    """Upper bound of |T| on an interval from |1 + L|, |L| at its ends and d = |L_b - L_a| (the tighter of two).
-
-    |T| = |L| |S| <= (max |L| + 0.6 d) * bound of |S|, loose where |L| is large; and
-    |T| = 1 / |1 + 1/L| with the same chord argument applied to the curve 1/L (which turns as
-    much as L does and is small exactly where |L| is large): |1/L_b - 1/L_a| = d / (|L_a| |L_b|).
-    """
-    t_l = (np.maximum(la, lb) + 0.6 * d) * _s_upper(p1a, p1b, d)
+    d = Q - P
+    dd = d.real * d.real + d.imag * d.imag
+    r = -1.0 - P
     with np.errstate(divide="ignore", invalid="ignore"):
-        t_g = 1.0 / np.maximum(np.minimum(p1a / la, p1b / lb) - 0.6 * d / (la * lb), 1e-300)
-    return np.fmin(t_l, t_g)
+        t = np.clip((r.real * d.real + r.imag * d.imag) / dd, 0.0, 1.0)
+    t = np.where(dd > 0, t, 0.0)
+    return np.abs(r - t * d) - SAGITTA * np.sqrt(dd)
 
 
 def _s_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
-    """:func:`_s_upper` from L at the ends of each interval."""
-    return _s_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(Lb - La))
+    """Upper bound of |S| on a piece from L at its ends: the tighter of :func:`_s_upper` and the
+    chord bound (:func:`_chord_gap`)."""
+    gap = np.maximum(_chord_gap(La, Lb), np.minimum(np.abs(1.0 + La), np.abs(1.0 + Lb)) - 0.6 * np.abs(Lb - La))
+    return 1.0 / np.maximum(gap, 1e-300)
 
 
 def _t_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
-    """:func:`_t_upper` from L at the ends of each interval."""
-    return _t_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(La), np.abs(Lb), np.abs(Lb - La))
+    """Upper bound of |T| on a piece from L at its ends: the tightest of :func:`_t_upper` and the
+    chord bounds on L (|T| <= max |L| / |1 + L|, the largest |L| on a chord is at an end) and on 1/L."""
+    d = np.abs(Lb - La)
+    t_old = _t_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(La), np.abs(Lb), d)
+    t_l = (np.maximum(np.abs(La), np.abs(Lb)) + SAGITTA * d) / np.maximum(_chord_gap(La, Lb), 1e-300)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t_g = 1.0 / np.maximum(_chord_gap(1.0 / La, 1.0 / Lb), 1e-300)
+    return np.fmin(np.fmin(t_old, t_l), t_g)
 
 
 #: Halvings of a hidden-peak interval before what is left of it goes to Brent's method. [-]
@@ -1043,8 +1030,8 @@ class _Peak:
     cannot hide there.
     """
 
-    def __init__(self, ent_pt, seg, w, vals, inner, n, v0, vinf, fun, upper, bound):
-        self.ent_pt, self.seg, self.w, self.vals, self.n = ent_pt, seg, w, vals, n
+    def __init__(self, ent_pt, seg, w, L, vals, inner, n, v0, vinf, fun, upper, bound):
+        self.ent_pt, self.seg, self.w, self.L, self.vals, self.n = ent_pt, seg, w, L, vals, n
         self.v0, self.vinf, self.fun, self.upper, self.bound = v0, vinf, fun, upper, bound
         mid = vals[1:-1]
         locmax = np.flatnonzero(inner & (mid >= vals[:-2]) & (mid > vals[2:])) + 1
@@ -1085,7 +1072,10 @@ class _Peak:
         hid = np.flatnonzero(self.upper > self.best[self.seg[:-1]] * (1.0 + 1e-12))
         hid = hid[self.w[hid + 1] > w_a[self.seg[hid]]]
         hid = hid[~np.isin(hid, c) & ~np.isin(hid, c - 1)]
-        return _top_by_seg(hid, self.upper[hid], self.seg[hid], BNB_PIECES)   # the highest BNB_PIECES per loop
+        up = self.bound(self.L[hid], self.L[hid + 1])       # the piece bound, tighter than ``upper``
+        keep = up > self.best[self.seg[hid]] * (1.0 + 1e-12)
+        hid, up = hid[keep], up[keep]
+        return _top_by_seg(hid, up, self.seg[hid], BNB_PIECES)   # the highest BNB_PIECES per loop
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
         """Peak value and its frequency per loop (0 or inf for a limit). [-], [rad/s]"""
