@@ -501,36 +501,31 @@ def _golden_many(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarr
     ch. 5 (the bounded variant as in scipy.optimize.fminbound).
     """
     J = _Jobs(batch, jobs)
-    a, b = J.a.copy(), J.b.copy()
-    n = a.size
+    n = J.a.size
     if n == 0:
-        return J.split(a, a)
-    every = np.arange(n)
-    xf = a + _CGOLD * (b - a)
-    fx = -J.f(every, xf)                      # minimise g = -fun
-    fx = np.where(np.isnan(fx), np.inf, fx)
-    nfc, fulc = xf.copy(), xf.copy()
-    fnfc, ffulc = fx.copy(), fx.copy()
-    rat = np.zeros(n)
-    e = np.zeros(n)
-    tiny = 1e-300
-
-    def tols(idx):
-        t1 = J.xrtol[idx] * np.abs(xf[idx]) + tiny
-        return t1, 2.0 * t1
-
-    act = every
+        return J.split(J.a, J.a)
+    act = np.arange(n)
+    A, B = J.a.copy(), J.b.copy()
+    X = A + _CGOLD * (B - A)
+    FX = -J.f(act, X)                           # minimise g = -fun
+    FX = np.where(np.isnan(FX), np.inf, FX)
+    W, V, FW, FV = X.copy(), X.copy(), FX.copy(), FX.copy()
+    E, RAT = np.zeros(n), np.zeros(n)
+    TOL = J.xrtol
+    xf, fx = X.copy(), FX.copy()                # results, by bracket
     for _ in range(max_iter):
-        t1, t2 = tols(act)
-        xm = 0.5 * (a[act] + b[act])
-        act_keep = np.abs(xf[act] - xm) > (t2 - 0.5 * (b[act] - a[act]))
-        act = act[act_keep]
+        t1 = TOL * np.abs(X) + 1e-300
+        t2 = 2.0 * t1
+        xm = 0.5 * (A + B)
+        go = np.abs(X - xm) > (t2 - 0.5 * (B - A))
+        if not go.all():
+            # brackets done: keep their best point, go on with the others (state kept compact)
+            done = ~go
+            xf[act[done]], fx[act[done]] = X[done], FX[done]
+            act, A, B, X, FX, W, FW, V, FV, E, RAT, TOL, t1, t2, xm = (
+                z[go] for z in (act, A, B, X, FX, W, FW, V, FV, E, RAT, TOL, t1, t2, xm))
         if act.size == 0:
             break
-        t1, t2, xm = t1[act_keep], t2[act_keep], xm[act_keep]
-        A, B, X, FX = a[act], b[act], xf[act], fx[act]
-        V, FV, W, FW = fulc[act], ffulc[act], nfc[act], fnfc[act]
-        E, RAT = e[act], rat[act]
         # parabola through (X, FX), (W, FW), (V, FV)
         with np.errstate(invalid="ignore", over="ignore"):
             r = (X - W) * (FX - FV)
@@ -546,26 +541,23 @@ def _golden_many(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarr
         # a parabolic point too near an end steps by t1 towards the middle
         xp = X + rat_new
         near = ok & (((xp - A) < t2) | ((B - xp) < t2))
-        si_m = np.where(xm - X >= 0, 1.0, -1.0)
-        rat_new = np.where(near, t1 * si_m, rat_new)
-        si = np.where(rat_new >= 0, 1.0, -1.0)
-        u = X + si * np.maximum(np.abs(rat_new), t1)
+        rat_new = np.where(near, np.where(xm - X >= 0, t1, -t1), rat_new)
+        u = X + np.where(rat_new >= 0, 1.0, -1.0) * np.maximum(np.abs(rat_new), t1)
         fu = -J.f(act, u)
         fu = np.where(np.isnan(fu), np.inf, fu)
         better = fu <= FX
+        right = u >= X
         # bracket
-        a[act] = np.where(better, np.where(u >= X, X, A), np.where(u < X, u, A))
-        b[act] = np.where(better, np.where(u >= X, B, X), np.where(u < X, B, u))
+        A, B = (np.where(better, np.where(right, X, A), np.where(right, A, u)),
+                np.where(better, np.where(right, B, X), np.where(right, u, B)))
         # the three best points
         w_to_v = better | (fu <= FW) | (W == X)
-        u_to_v = ~better & ~w_to_v & ((fu <= FV) | (V == X) | (V == W))
-        fulc[act] = np.where(w_to_v, W, np.where(u_to_v, u, V))
-        ffulc[act] = np.where(w_to_v, FW, np.where(u_to_v, fu, FV))
-        nfc[act] = np.where(better, X, np.where(w_to_v, u, W))
-        fnfc[act] = np.where(better, FX, np.where(w_to_v, fu, FW))
-        xf[act] = np.where(better, u, X)
-        fx[act] = np.where(better, fu, FX)
-        e[act], rat[act] = e_new, rat_new
+        u_to_v = ~w_to_v & ((fu <= FV) | (V == X) | (V == W))
+        V, FV = np.where(w_to_v, W, np.where(u_to_v, u, V)), np.where(w_to_v, FW, np.where(u_to_v, fu, FV))
+        W, FW = np.where(better, X, np.where(w_to_v, u, W)), np.where(better, FX, np.where(w_to_v, fu, FW))
+        X, FX = np.where(better, u, X), np.where(better, fu, FX)
+        E, RAT = e_new, rat_new
+    xf[act], fx[act] = X, FX
     return J.split(xf, -fx)
 
 
