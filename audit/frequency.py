@@ -3,7 +3,8 @@
 For every loop L(jw) = sign C P F e^{-j w (theta + Ts/2)} [T_inner] is evaluated
 with the exact delay on a per-loop frequency grid, all loops and frequencies in
 flat numpy arrays. Every crossing and peak found on the grid is then refined on
-the exact response (vectorised bisection and golden-section search), so the
+the exact response (vectorised false position and Brent's method, with a branch and bound
+over grid intervals so that no narrow peak hides between points), so the
 figures do not depend on the grid.
 
 Stability is decided by the Nyquist argument: the number of closed-loop poles in
@@ -399,11 +400,17 @@ class _Jobs:
         self.kind = np.repeat(np.arange(len(jobs)), sizes)
         # optional fifth element: relative location tolerance of a job's maxima
         self.xrtol = np.repeat([j[4] if len(j) > 4 else PEAK_XRTOL for j in jobs], sizes).astype(float)
+        # optional sixth: a known inner point and the values at a, that point and b (fun, not negated)
+        self.init = np.full((4, self.a.size), np.nan)
+        for j, lo, hi in zip(jobs, self.edges[:-1], self.edges[1:]):
+            if len(j) > 5 and hi > lo:
+                self.init[:, lo:hi] = np.asarray(j[5], float)
         self.built = None
 
     def f(self, idx: np.ndarray, x: np.ndarray) -> np.ndarray:
-        """fun(L(j x), x) of brackets ``idx`` (sorted) at frequencies ``x``. [-]"""
-        if self.built is None or idx.size < 0.6 * self.built.size:
+        """fun(L(j x), x) of brackets ``idx`` (sorted; a subset of the previous call's, or any set
+        larger than it) at frequencies ``x``. [-]"""
+        if self.built is None or idx.size > self.built.size or idx.size < 0.6 * self.built.size:
             self.built = idx.copy()
             self.at = _Points(self.batch, self.ent[idx])
             self.w_built = self.a[idx].copy()
@@ -428,7 +435,7 @@ class _Jobs:
         return [tuple(arr[c] for arr in arrays) if len(arrays) > 1 else arrays[0][c] for c in cut]
 
 
-#: Relative width at which a root bracket counts as closed (a few units in the last place). [-]
+#: Relative width at which a root bracket counts as closed (margins then follow to about 1e-13). [-]
 ROOT_RTOL = 1e-13
 #: Relative location tolerance of a maximum: fine enough that a peak of 5e4 keeps its value to 1e-11. [-]
 PEAK_XRTOL = 1e-10
@@ -436,7 +443,7 @@ PEAK_XRTOL = 1e-10
 EDGE_XRTOL = float(np.sqrt(np.finfo(float).eps))
 
 
-def _bisect_many(batch: Batch, jobs, max_iter: int = 100) -> list[np.ndarray]:
+def _find_roots(batch: Batch, jobs, max_iter: int = 100) -> list[np.ndarray]:
     """Roots for several jobs ``(entries, a, b, fun)`` at once: Illinois false position, bisection as a fallback.
 
     Each job's fun(L, w) changes sign on every one of its brackets [a, b] (the sign class of a value
@@ -485,17 +492,19 @@ def _bisect_many(batch: Batch, jobs, max_iter: int = 100) -> list[np.ndarray]:
     return J.split(0.5 * (a + b))
 
 
-_GOLD = (np.sqrt(5.0) - 1.0) / 2.0
+#: The golden-section fraction of Brent's method. [-]
 _CGOLD = 0.5 * (3.0 - np.sqrt(5.0))
 
 
-def _golden_many(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarray, np.ndarray]]:
-    """Maxima of several jobs ``(entries, a, b, fun[, xrtol])`` at once, by Brent's method on each bracket.
+def _find_maxima(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Maxima of several jobs ``(entries, a, b, fun[, xrtol[, init]])`` at once, by Brent's method on each bracket.
 
     Golden-section steps with parabolic interpolation where the parabola is acceptable, until the
     location is known to ``xrtol`` relative (PEAK_XRTOL by default; the value then to about its square). Returns, per job,
     the location and the value of the largest value found inside each bracket [a, b] (the ends,
-    grid points, are the caller's).
+    grid points, are the caller's). ``init`` = (x0, f(a), f(x0), f(b)), arrays, gives a known inner
+    point with values no lower than at the ends (a grid maximum): the search starts from the three
+    points with a parabolic step instead of a golden-section one.
 
     Reference: R. P. Brent, Algorithms for Minimization without Derivatives, Prentice-Hall, 1973,
     ch. 5 (the bounded variant as in scipy.optimize.fminbound).
@@ -507,10 +516,22 @@ def _golden_many(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarr
     act = np.arange(n)
     A, B = J.a.copy(), J.b.copy()
     X = A + _CGOLD * (B - A)
-    FX = -J.f(act, X)                           # minimise g = -fun
+    FX = np.full(n, np.inf)
+    cold = np.isnan(J.init[0])
+    if cold.any():
+        FX[cold] = -J.f(act[cold], X[cold])      # minimise g = -fun
     FX = np.where(np.isnan(FX), np.inf, FX)
     W, V, FW, FV = X.copy(), X.copy(), FX.copy(), FX.copy()
     E, RAT = np.zeros(n), np.zeros(n)
+    # brackets with a known inner point start from it and the two ends, parabolic step first
+    warm = ~cold
+    if warm.any():
+        x0, fa, f0, fb = J.init[:, warm]
+        a_best = fa >= fb
+        X[warm], FX[warm] = x0, -f0
+        W[warm], FW[warm] = np.where(a_best, A[warm], B[warm]), -np.maximum(fa, fb)
+        V[warm], FV[warm] = np.where(a_best, B[warm], A[warm]), -np.minimum(fa, fb)
+        E[warm] = RAT[warm] = B[warm] - A[warm]
     TOL = J.xrtol
     xf, fx = X.copy(), FX.copy()                # results, by bracket
     for _ in range(max_iter):
@@ -630,7 +651,10 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
     # above the level there if it is anywhere below (with integrators |L| >= 10 at the start)
     per_dec = 12
     w_s = 100.0 * w_lo
-    top = 1e4 * c_max
+    # it ends two decades above the highest corner, where |L| of a strictly proper loop falls
+    # steadily (every factor is within 1 % of its asymptote); four above for an outer loop of a
+    # cascade, whose inner loop's closed-loop resonance is not among the corners
+    top = np.where(batch.inner[ents] >= 0, 1e4, 1e2) * c_max
     ndec = np.log10(top / w_s)
     npts = np.ceil(ndec * per_dec).astype(int) + 1
     seg = np.repeat(np.arange(ents.size), npts)
@@ -745,7 +769,7 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     rise = np.flatnonzero(same & (absS[:-1] < thr) & (absS[1:] >= thr))
     first = _arg_by_seg(-rise.astype(float), seg[rise], n)
     rb = rise[first[first >= 0]]
-    wx, wc_all, wb_rise = _bisect_many(batch, [
+    wx, wc_all, wb_rise = _find_roots(batch, [
         (ent_pt[brp], w[brp], w[brp + 1], lambda Lv, _w: Lv.imag),
         (ent_pt[bc], w[bc], w[bc + 1], lambda Lv, _w: np.log(np.abs(Lv))),
         (ent_pt[rb], w[rb], w[rb + 1], lambda Lv, _w: 1.0 / np.abs(1.0 + Lv) - thr)])
@@ -843,8 +867,8 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     peaks = (_Peak(ent_pt, seg, w, L, absS, inner, n, s_0, s_inf, _abs_s, s_up, _s_bound),
              _Peak(ent_pt, seg, w, L, absT, inner, n, t_0, t_inf, _abs_t, t_up, _t_bound))
     band_search = _Band(ents, ent_pt, seg, w, absS, absL, inner, n, band, s_0, np.where(k > 0, np.inf, np.abs(L0)))
-    # every golden-section search of the block side by side: grid maxima of |S| and |T|, extrema in the band
-    found = _golden_many(batch, [p.first_job() for p in peaks] + band_search.jobs(batch))
+    # every search for a maximum side by side: grid maxima of |S| and |T|, extrema in the band
+    found = _find_maxima(batch, [p.first_job() for p in peaks] + band_search.jobs(batch))
     for p, f in zip(peaks, found):
         p.add(*f)
     out["band_s_db"], out["band_l_db"] = band_search.finish(found[len(peaks):])
@@ -954,7 +978,7 @@ def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tu
     evaluates the middle of each piece still in play (all groups in one call), raises ``best`` with
     the values found, and keeps a half only while ``bound(L_a, L_b)`` of it exceeds the loop's best:
     a piece is dropped only when no value in it can beat what is known. Pieces still in play after
-    ``rounds`` halvings are searched by :func:`_golden_many`. At most BNB_PIECES pieces per loop
+    ``rounds`` halvings are searched by :func:`_find_maxima`. At most BNB_PIECES pieces per loop
     and magnitude stay in play, those with the highest bounds. Returns per group the frequencies,
     values and loops of every value that raised a best. [rad/s], [-], [-]
     """
@@ -1002,7 +1026,7 @@ def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tu
             live = np.sort(np.concatenate([few, _top_by_seg(many, up[many], key[crowded], BNB_PIECES)]))
         kind, ent, loop, a, b, La, Lb = (x[live] for x in (kind, ent, loop, a, b, La, Lb))
     if kind.size:
-        found = _golden_many(batch, [(ent[kind == i], a[kind == i], b[kind == i], g[8]) for i, g in enumerate(groups)])
+        found = _find_maxima(batch, [(ent[kind == i], a[kind == i], b[kind == i], g[8]) for i, g in enumerate(groups)])
         for i, (wf, ff) in enumerate(found):
             for lst, val in zip(out[i], (wf, ff, loop[kind == i])):
                 lst.append(val)
@@ -1037,9 +1061,9 @@ class _Peak:
         self.wpk, self.fpk, self.seg_pk = [], [], []
 
     def first_job(self):
-        """Golden-section job over the brackets around the grid maxima."""
-        c = self.cand
-        return self.ent_pt[c], self.w[c - 1], self.w[c + 1], self.fun
+        """Search job over the brackets around the grid maxima, started from the grid maximum."""
+        c, v = self.cand, self.vals
+        return self.ent_pt[c], self.w[c - 1], self.w[c + 1], self.fun, PEAK_XRTOL, (self.w[c], v[c - 1], v[c], v[c + 1])
 
     def add(self, wpk: np.ndarray, fpk: np.ndarray, loops: np.ndarray | None = None) -> None:
         """Take maxima found: on the brackets of :meth:`first_job` (``loops`` None) or anywhere in ``loops``."""
@@ -1124,7 +1148,10 @@ class _Band:
         a, b = w[j], wd[e]
         okb = b > a
         self.e, a, b = e[okb], a[okb], b[okb]
-        self._jobs = [(ent_pt[smx], w[smx - 1], w[smx + 1], _abs_s), (ent_pt[lmn], w[lmn - 1], w[lmn + 1], _neg_abs_l),
+        self._jobs = [(ent_pt[smx], w[smx - 1], w[smx + 1], _abs_s, PEAK_XRTOL,
+                       (w[smx], absS[smx - 1], absS[smx], absS[smx + 1])),
+                      (ent_pt[lmn], w[lmn - 1], w[lmn + 1], _neg_abs_l, PEAK_XRTOL,
+                       (w[lmn], -absL[lmn - 1], -absL[lmn], -absL[lmn + 1])),
                       (ents[self.e], a, b, _abs_s, EDGE_XRTOL), (ents[self.e], a, b, _neg_abs_l, EDGE_XRTOL)]
 
     def jobs(self, batch: Batch):
