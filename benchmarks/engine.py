@@ -225,6 +225,10 @@ def main(argv: list[str] | None = None) -> int:
     rel = float(np.max(np.abs(a_[ok] - b_[ok]) / np.abs(a_[ok]), initial=0.0))
     same_flags = figs["stable"].equals(figs_par["stable"]) and np.array_equal(np.isfinite(a_), np.isfinite(b_))
     same_par = f"{'same' if same_flags else 'DIFFERENT'} stability, max rel diff {rel:.1e}"
+    from audit import parallel
+    if args.jobs > 1 and n < 2 * parallel.MIN_LOOPS_PER_EVALUATE_JOB:
+        same_par += (f"; fewer than {2 * parallel.MIN_LOOPS_PER_EVALUATE_JOB} loops: no worker was started, "
+                     "this is a second call in this process")
 
     if args.no_reference:
         print(f"(a) engine, 1 process : {n / t_eng:9.0f} loops/s  ({t_eng:.3f} s wall, {c_eng:.3f} s CPU)")
