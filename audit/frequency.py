@@ -40,7 +40,7 @@ TAIL_MARGIN = 1.25
 #: Largest delay phase between neighbouring grid points. [rad]
 DELAY_STEP = 0.5
 #: Largest step in ln(w) between neighbouring grid points. [-]
-LOG_STEP = 0.06
+LOG_STEP = 0.08
 #: Step in ln(w) below a tenth of the lowest corner frequency. [-]
 LOW_STEP = 0.25
 #: Grid points processed in one block (memory bound). [-]
