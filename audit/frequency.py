@@ -23,7 +23,6 @@ References
 
 from __future__ import annotations
 
-import platform
 from dataclasses import dataclass
 from typing import Sequence
 
@@ -1203,14 +1202,14 @@ def _keep_freed_memory() -> None:
     _HEAP_KEPT = True
     try:
         import ctypes
-        import ctypes.util
+        import os
 
-        if platform.libc_ver()[0] != "glibc":
+        if not os.confstr("CS_GNU_LIBC_VERSION"):
             return
-        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        libc = ctypes.CDLL(None)            # this process's own symbols: glibc's malloc
         libc.mallopt(-1, 1 << 30)   # M_TRIM_THRESHOLD
         libc.mallopt(-3, 32 << 20)  # M_MMAP_THRESHOLD
-    except (OSError, AttributeError):
+    except (OSError, AttributeError, ValueError):
         pass
 
 
@@ -1250,16 +1249,14 @@ def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFram
         tdel = _total_delay(batch)
         depth = _depth(batch)
         band_e = np.full(ne, np.nan)
-        for i, e in enumerate(top):
-            if e >= 0 and np.isfinite(band_in[i]):
-                band_e[e] = band_in[i]
+        given = (top >= 0) & np.isfinite(band_in)
+        band_e[top[given]] = band_in[given]
         p_open = st.p_own.copy()
         for level in range(int(depth.max()) + 1):
             lev = np.flatnonzero(depth == level)
-            for e in lev:
-                j = batch.inner[e]
-                if j >= 0:
-                    p_open[e] = st.p_own[e] + max(zraw[j], 0)
+            outer = lev[batch.inner[lev] >= 0]
+            # an outer loop's open-loop RHP poles: its own and its inner loop's closed-loop ones
+            p_open[outer] = st.p_own[outer] + np.maximum(zraw[batch.inner[outer]], 0)
             for chunk in np.array_split(lev, int(np.ceil(lev.size / CHUNK_LOOPS))):
                 grid = _grids(batch, chunk, st, tdel)
                 for sub in _blocks(grid[4] + grid[5]):
