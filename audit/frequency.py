@@ -109,31 +109,58 @@ def _pad(polys: list[tuple[float, ...]]) -> np.ndarray:
     return out
 
 
-def _conv(a: Sequence[float], b: Sequence[float]) -> list[float]:
-    """Product of two short coefficient lists (descending), in plain Python (no per-call numpy cost)."""
-    out = [0.0] * (len(a) + len(b) - 1)
-    for i, x in enumerate(a):
-        for j, y in enumerate(b):
-            out[i + j] += x * y
+def _conv_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Row-wise products of polynomials (rows descending, left-padded with zeros), all rows at once."""
+    out = np.zeros((a.shape[0], a.shape[1] + b.shape[1] - 1))
+    for i in range(a.shape[1]):
+        for j in range(b.shape[1]):
+            out[:, i + j] += a[:, i] * b[:, j]
     return out
 
 
-def _loop_polys(m: LoopModel) -> tuple[list[float], list[float]]:
-    """num, den of sign C P F (as :attr:`LoopModel.rational`), built without Rational objects."""
-    try:
-        cn, cd = controller_poly(m.controller)
-    except ValueError:
-        r = m.rational
-        return list(r.num), list(r.den)
-    pr = m.process.rational
-    i = 0
-    while i < len(cn) - 1 and cn[i] == 0.0:
-        i += 1
-    num = _conv(cn[i:], pr.num)
-    den = _conv(cd, pr.den)
-    if m.pv_filter:
-        den = _conv(den, (m.pv_filter, 1.0))
-    return [x * m.sign for x in num], den
+def _trim_columns(coef: np.ndarray) -> np.ndarray:
+    """Leading columns that are zero in every row left out (at least one column kept)."""
+    nz = np.flatnonzero(coef.any(axis=0))
+    return coef[:, nz[0]:] if nz.size else coef[:, -1:]
+
+
+def _put_rows(coef: np.ndarray, rows: dict[int, Sequence[float]]) -> np.ndarray:
+    """``coef`` with some rows replaced by other polynomials (widened, left-padded, as needed)."""
+    width = max(coef.shape[1], max(len(p) for p in rows.values()))
+    out = np.zeros((coef.shape[0], width))
+    out[:, width - coef.shape[1]:] = coef
+    for i, p in rows.items():
+        out[i] = 0.0
+        out[i, width - len(p):] = p
+    return out
+
+
+def _loop_polys(entries: Sequence[LoopModel]) -> tuple[np.ndarray, np.ndarray]:
+    """num, den of sign C P F (as :attr:`LoopModel.rational`) of every entry, one row each.
+
+    The products are taken for all rows at once; a controller that :func:`controller_poly`
+    refuses (improper) takes its row from :attr:`LoopModel.rational`.
+    """
+    cn_l, cd_l, odd = [], [], []
+    for i, m in enumerate(entries):
+        try:
+            cn, cd = controller_poly(m.controller)
+        except ValueError:
+            cn, cd = [0.0], [1.0]
+            odd.append(i)
+        cn_l.append(cn)
+        cd_l.append(cd)
+    pn = _pad([m.process.rational.num for m in entries])
+    pd_ = _pad([m.process.rational.den for m in entries])
+    pvf = np.array([m.pv_filter for m in entries], float)
+    sign = np.array([m.sign for m in entries], float)
+    num = _conv_rows(_pad(cn_l), pn) * sign[:, None]
+    den = _conv_rows(_conv_rows(_pad(cd_l), pd_), np.stack([pvf, np.ones_like(pvf)], axis=1))
+    if odd:
+        rows = {i: entries[i].rational for i in odd}
+        num = _put_rows(num, {i: r.num for i, r in rows.items()})
+        den = _put_rows(den, {i: r.den for i, r in rows.items()})
+    return _trim_columns(num), _trim_columns(den)
 
 
 def build_batch(models: Sequence[LoopModel | None]) -> tuple[Batch, np.ndarray]:
@@ -156,10 +183,10 @@ def build_batch(models: Sequence[LoopModel | None]) -> tuple[Batch, np.ndarray]:
     if not entries:
         z = np.zeros((0, 1))
         return Batch(z, z, np.zeros(0), np.zeros(0, int), np.zeros(0)), top
-    polys = [_loop_polys(m) for m in entries]
+    num, den = _loop_polys(entries)
     batch = Batch(
-        num=_pad([p[0] for p in polys]),
-        den=_pad([p[1] for p in polys]),
+        num=num,
+        den=den,
         delay=np.array([m.delay for m in entries], float),
         inner=np.array(inner_of, int),
         pvf=np.array([m.pv_filter for m in entries], float),
