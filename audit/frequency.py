@@ -239,7 +239,9 @@ class _Points:
         self.inner = _Points(batch, inn[self.has], reuse) if self.has.size else None
         self.pvf = batch.pvf.take(inn[self.has]) if self.has.size else None
 
-    def __call__(self, w: np.ndarray) -> np.ndarray:
+    def __call__(self, w: np.ndarray, delay: bool = True) -> np.ndarray:
+        """L(jw) at the entries' frequencies ``w`` [rad/s]; ``delay`` False leaves out the entries' own
+        delay factor (of modulus 1: for |L| alone), not an inner loop's."""
         w = np.asarray(w, float)
         x = -(w * w)
         en, on, ed, od = (_horner(c, x, self.idx) for c in self.coef)
@@ -248,7 +250,8 @@ class _Points:
         den = np.empty(w.shape, complex)
         den.real, den.imag = ed, w * od
         L = num / den
-        L *= np.exp(-1j * (w * self.delay))
+        if delay:
+            L *= np.exp(-1j * (w * self.delay))
         if self.inner is not None:
             wi = w[self.has]
             Li = self.inner(wi)
@@ -687,7 +690,7 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
     start = np.cumsum(npts) - npts
     pos = np.arange(seg.size) - start[seg]
     w = w_s[seg] * 10.0 ** (pos / per_dec)
-    mag = np.abs(eval_L(batch, ents[seg], w))
+    mag = np.abs(_Points(batch, ents[seg], reuse=False)(w, delay=False))    # |e^{-jw theta}| = 1
     thr = np.maximum(TAIL_LEVEL, st.l_inf[ents] * (1 + 1e-3) + TAIL_LEVEL * st.l_inf[ents])
     above = mag >= thr[seg]
     last = _seg_max(np.where(above, pos, -1), seg, ents.size, -1)
