@@ -485,40 +485,41 @@ def _find_roots(batch: Batch, jobs, max_iter: int = 100) -> list[np.ndarray]:
     of an equation", BIT 11 (1971) 168-174 (the Illinois method).
     """
     J = _Jobs(batch, jobs)
-    a, b = J.a.copy(), J.b.copy()
-    n = a.size
+    n = J.a.size
     if n == 0:
-        return J.split(a)
-    every = np.arange(n)
-    fa, fb = J.f(every, a), J.f(every, b)
-    pa = fa > 0
-    side = np.zeros(n, np.int8)
-    act = every[(b - a) > ROOT_RTOL * np.maximum(np.abs(a), np.abs(b))]
-    for it in range(max_iter):
-        if act.size == 0:
+        return J.split(J.a)
+    act = np.arange(n)
+    A, B = J.a.copy(), J.b.copy()
+    FA, FB = J.f(act, A), J.f(act, B)
+    PA = FA > 0
+    SIDE = np.zeros(n, np.int8)
+    root = 0.5 * (A + B)                         # results, by bracket
+    for it in range(max_iter + 1):
+        tol = ROOT_RTOL * np.maximum(np.abs(A), np.abs(B))
+        go = (B - A) > tol
+        if not go.all():
+            # brackets done: keep their middle, go on with the others (state kept compact)
+            root[act[~go]] = 0.5 * (A[~go] + B[~go])
+            act, A, B, FA, FB, PA, SIDE, tol = (z[go] for z in (act, A, B, FA, FB, PA, SIDE, tol))
+        if act.size == 0 or it == max_iter:
             break
-        A, B, FA, FB = a[act], b[act], fa[act], fb[act]
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             xs = (A * FB - B * FA) / (FB - FA)
         bis = (it >= 40) | ~np.isfinite(xs)
         # (with opposite signs at the ends the point lies in [A, B]; one on or within the tolerance
         # of an end moves to just inside it, so that the bracket closes on the next step when that
         # end is, to rounding, the root)
-        d = 0.4 * ROOT_RTOL * np.maximum(np.abs(A), np.abs(B))
+        d = 0.4 * tol
         x = np.where(bis, 0.5 * (A + B), np.clip(xs, A + d, B - d))
         fx = J.f(act, x)
-        right = (fx > 0) == pa[act]          # the root lies in [x, b]
-        sd = side[act]
+        right = (fx > 0) == PA                   # the root lies in [x, b]
         # Illinois: an end kept twice in a row has its function value halved for the interpolation
-        fb[act] = np.where(right, np.where(sd == -1, 0.5 * FB, FB), fx)
-        fa[act] = np.where(right, fx, np.where(sd == 1, 0.5 * FA, FA))
-        a[act] = np.where(right, x, A)
-        b[act] = np.where(right, B, x)
-        side[act] = np.where(right, -1, 1)
-        A, B = a[act], b[act]
-        stuck = (x == A) & (x == B)
-        act = act[((B - A) > ROOT_RTOL * np.maximum(np.abs(A), np.abs(B))) & ~stuck]
-    return J.split(0.5 * (a + b))
+        FB = np.where(right, np.where(SIDE == -1, 0.5 * FB, FB), fx)
+        FA = np.where(right, fx, np.where(SIDE == 1, 0.5 * FA, FA))
+        A, B = np.where(right, x, A), np.where(right, B, x)
+        SIDE = np.where(right, -1, 1).astype(np.int8)
+    root[act] = 0.5 * (A + B)
+    return J.split(root)
 
 
 #: The golden-section fraction of Brent's method. [-]
