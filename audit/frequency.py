@@ -437,6 +437,9 @@ class _Jobs:
             if len(j) > 5 and hi > lo:
                 self.init[:, lo:hi] = np.asarray(j[5], float)
         self.built = None
+        codes = {_abs_s: 0, _abs_t: 1, _neg_abs_l: 2}
+        self.magnitudes = (np.array([codes[f] for f in self.funs], int)
+                           if all(f in codes for f in self.funs) else None)
 
     def f(self, idx: np.ndarray, x: np.ndarray) -> np.ndarray:
         """fun(L(j x), x) of brackets ``idx`` (sorted; a subset of the previous call's, or any set
@@ -453,11 +456,17 @@ class _Jobs:
         self.w_built[pos] = x
         Lv = self.at(self.w_built)[pos]
         kind = self.kind_built[pos]
+        if self.magnitudes is not None:
+            # every job one of |S|, |T|, -|L|: all three at once, each bracket takes its own
+            aL, a1 = np.abs(Lv), np.abs(1.0 + Lv)
+            code = self.magnitudes[kind]
+            return np.where(code == 0, 1.0 / a1, np.where(code == 1, aL / a1, -aL))
         out = np.empty(x.shape)
         for k, fun in enumerate(self.funs):
-            sel = kind == k
-            if sel.any():
-                out[sel] = fun(Lv[sel], x[sel])
+            # brackets stay in job order (active sets are sorted), so each job is one run
+            lo, hi = np.searchsorted(kind, [k, k + 1])
+            if hi > lo:
+                out[lo:hi] = fun(Lv[lo:hi], x[lo:hi])
         return out
 
     def split(self, *arrays):
