@@ -1125,12 +1125,15 @@ class _Peak:
         Intervals below ``w_a`` (a tenth of the loop's lowest corner frequency) are left out: there L
         follows its low-frequency asymptote and nothing turns (the same reason the grid is coarse there).
         """
-        c = self.cand
-        hid = np.flatnonzero(self.upper > self.best[self.seg[:-1]] * (1.0 + 1e-12))
+        best = self.best
+        level = np.repeat(best * (1.0 + 1e-12), np.bincount(self.seg, minlength=self.n))[:-1]
+        over = self.upper > level
+        over[self.cand] = False                 # the two intervals of each searched bracket
+        over[self.cand - 1] = False
+        hid = np.flatnonzero(over)
         hid = hid[self.w[hid + 1] > w_a[self.seg[hid]]]
-        hid = hid[~np.isin(hid, c) & ~np.isin(hid, c - 1)]
         up = self.bound(self.L[hid], self.L[hid + 1])       # the piece bound, tighter than ``upper``
-        keep = up > self.best[self.seg[hid]] * (1.0 + 1e-12)
+        keep = up > level[hid]
         hid, up = hid[keep], up[keep]
         return _top_by_seg(hid, up, self.seg[hid], BNB_PIECES)   # the highest BNB_PIECES per loop
 
