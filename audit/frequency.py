@@ -1079,8 +1079,8 @@ class _Peak:
     """sup over w >= 0 of |S| or |T| of every loop of a block, limits at 0 and infinity included.
 
     ``upper[i]`` is an upper bound of the magnitude on the grid interval [w_i, w_i+1] (-inf where
-    the two points belong to different loops),
-    ``bound(La, Lb)`` the same bound from L at an interval's ends (:func:`_s_bound`, :func:`_t_bound`).
+    the two points belong to different loops); ``bound(La, Lb)`` a bound from L at the ends of any
+    piece, tighter where it matters (:func:`_s_bound`, :func:`_t_bound`).
     Searched: [w_i-1, w_i+1] around the highest grid maxima whose bound reaches the grid maximum
     (:meth:`first_job`), then every grid interval whose bound still exceeds the best value found
     (:meth:`hidden`), searched by :func:`_branch_and_bound`: a narrow peak between two grid points
@@ -1199,7 +1199,7 @@ class _Band:
                       (ents[self.e], a, b, _abs_s, EDGE_XRTOL), (ents[self.e], a, b, _neg_abs_l, EDGE_XRTOL)]
 
     def jobs(self, batch: Batch):
-        """Golden-section jobs: interior maxima of |S|, minima of |L|, and the last interval before wd.
+        """Search jobs (Brent): interior maxima of |S|, minima of |L|, and the last interval before wd.
 
         Also takes |S| and |L| at the band edge itself (one evaluation).
         """
