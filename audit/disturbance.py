@@ -186,6 +186,28 @@ def _parse_float(text: str) -> float | None:
     return v
 
 
+def _number_cell(raw: str, where: str, problems: list[str]) -> float | None:
+    """A finite number from a record cell, or None with the reason added to ``problems``.
+
+    Parameters
+    ----------
+    raw : str
+        The cell's text, stripped.
+    where : str
+        File, line and column, for the message.
+    problems : list of str
+        Messages so far; one is added when the cell is empty or not a finite number.
+    """
+    if raw == "":
+        problems.append(f"{where}: empty")
+        return None
+    v = _parse_float(raw)
+    if v is None or not math.isfinite(v):
+        problems.append(f"{where}: not a number: {_show(raw)}")
+        return None
+    return v
+
+
 def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | None = None,
                 policy: Policy = Policy(), name: str | None = None) -> Record:
     """Read and validate a disturbance record.
@@ -268,23 +290,13 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
                         t0, start = stamp, traw
                     tval = (stamp - t0).total_seconds()
         else:
-            tv = _parse_float(traw)
-            if traw == "":
-                problems.append(f"{where} ({tname}): empty")
-                bad = True
-            elif tv is None or not math.isfinite(tv):
-                problems.append(f"{where} ({tname}): not a number: {_show(traw)}")
+            tv = _number_cell(traw, f"{where} ({tname})", problems)
+            if tv is None:
                 bad = True
             else:
                 tval = tv * (60.0 if tname == "time_min" else 1.0)
-        vv = _parse_float(vraw)
-        if vraw == "":
-            problems.append(f"{where} ({vname}): empty")
-            bad = True
-        elif vv is None or not math.isfinite(vv):
-            problems.append(f"{where} ({vname}): not a number: {_show(vraw)}")
-            bad = True
-        if bad:
+        vv = _number_cell(vraw, f"{where} ({vname})", problems)
+        if bad or vv is None:
             continue
         ts.append(tval)
         vs.append(vv)
