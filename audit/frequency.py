@@ -137,8 +137,9 @@ def _put_rows(coef: np.ndarray, rows: dict[int, Sequence[float]]) -> np.ndarray:
     return out
 
 
-def _loop_polys(entries: Sequence[LoopModel]) -> tuple[np.ndarray, np.ndarray]:
-    """num, den of sign C P F (as :attr:`LoopModel.rational`) of every entry, one row each.
+def _loop_polys(entries: Sequence[LoopModel], pvf: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """num, den of sign C P F (as :attr:`LoopModel.rational`) of every entry, one row each;
+    ``pvf`` is each entry's PV filter time constant [s].
 
     The products are taken for all rows at once; a controller that :func:`controller_poly`
     refuses (improper) takes its row from :attr:`LoopModel.rational`.
@@ -154,7 +155,6 @@ def _loop_polys(entries: Sequence[LoopModel]) -> tuple[np.ndarray, np.ndarray]:
         cd_l.append(cd)
     pn = _pad([m.process.rational.num for m in entries])
     pd_ = _pad([m.process.rational.den for m in entries])
-    pvf = np.array([m.pv_filter for m in entries], float)
     sign = np.array([m.sign for m in entries], float)
     num = _conv_rows(_pad(cn_l), pn) * sign[:, None]
     den = _conv_rows(_conv_rows(_pad(cd_l), pd_), np.stack([pvf, np.ones_like(pvf)], axis=1))
@@ -185,13 +185,14 @@ def build_batch(models: Sequence[LoopModel | None]) -> tuple[Batch, np.ndarray]:
     if not entries:
         z = np.zeros((0, 1))
         return Batch(z, z, np.zeros(0), np.zeros(0, int), np.zeros(0)), top
-    num, den = _loop_polys(entries)
+    pvf = np.array([m.pv_filter for m in entries], float)
+    num, den = _loop_polys(entries, pvf)
     batch = Batch(
         num=num,
         den=den,
         delay=np.array([m.delay for m in entries], float),
         inner=np.array(inner_of, int),
-        pvf=np.array([m.pv_filter for m in entries], float),
+        pvf=pvf,
     )
     return batch, top
 
@@ -437,9 +438,6 @@ class _Jobs:
             if len(j) > 5 and hi > lo:
                 self.init[:, lo:hi] = np.asarray(j[5], float)
         self.built = None
-        codes = {_abs_s: 0, _abs_t: 1, _neg_abs_l: 2}
-        self.magnitudes = (np.array([codes[f] for f in self.funs], int)
-                           if all(f in codes for f in self.funs) else None)
 
     def f(self, idx: np.ndarray, x: np.ndarray) -> np.ndarray:
         """fun(L(j x), x) of brackets ``idx`` (sorted; a subset of the previous call's, or any set
@@ -456,11 +454,6 @@ class _Jobs:
         self.w_built[pos] = x
         Lv = self.at(self.w_built)[pos]
         kind = self.kind_built[pos]
-        if self.magnitudes is not None:
-            # every job one of |S|, |T|, -|L|: all three at once, each bracket takes its own
-            aL, a1 = np.abs(Lv), np.abs(1.0 + Lv)
-            code = self.magnitudes[kind]
-            return np.where(code == 0, 1.0 / a1, np.where(code == 1, aL / a1, -aL))
         out = np.empty(x.shape)
         for k, fun in enumerate(self.funs):
             # brackets stay in job order (active sets are sorted), so each job is one run
@@ -561,7 +554,6 @@ def _find_maxima(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarr
     cold = np.isnan(J.init[0])
     if cold.any():
         FX[cold] = -J.f(act[cold], X[cold])      # minimise g = -fun
-    FX = np.where(np.isnan(FX), np.inf, FX)
     W, V, FW, FV = X.copy(), X.copy(), FX.copy(), FX.copy()
     E, RAT = np.zeros(n), np.zeros(n)
     # brackets with a known inner point start from it and the two ends, parabolic step first
@@ -573,6 +565,7 @@ def _find_maxima(batch: Batch, jobs, max_iter: int = 200) -> list[tuple[np.ndarr
         W[warm], FW[warm] = np.where(a_best, A[warm], B[warm]), -np.maximum(fa, fb)
         V[warm], FV[warm] = np.where(a_best, B[warm], A[warm]), -np.minimum(fa, fb)
         E[warm] = RAT[warm] = B[warm] - A[warm]
+    FX, FW, FV = (np.where(np.isnan(z), np.inf, z) for z in (FX, FW, FV))
     TOL = J.xrtol
     xf, fx = X.copy(), FX.copy()                # results, by bracket
     for _ in range(max_iter):
@@ -813,7 +806,7 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     wx, wc_all, wb_rise = _find_roots(batch, [
         (ent_pt[brp], w[brp], w[brp + 1], lambda Lv, _w: Lv.imag),
         (ent_pt[bc], w[bc], w[bc + 1], lambda Lv, _w: np.log(np.abs(Lv))),
-        (ent_pt[rb], w[rb], w[rb + 1], lambda Lv, _w: 1.0 / np.abs(1.0 + Lv) - thr)])
+        (ent_pt[rb], w[rb], w[rb + 1], lambda Lv, w_: _abs_s(Lv, w_) - thr)])
     Lx = eval_L(batch, ent_pt[brp], wx)
     rex = Lx.real
     sx = seg[brp]
@@ -989,8 +982,8 @@ def _chord_gap(P: np.ndarray, Q: np.ndarray) -> np.ndarray:
 def _s_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
     """Upper bound of |S| on a piece from L at its ends: the tighter of :func:`_s_upper` and the
     chord bound (:func:`_chord_gap`)."""
-    gap = np.maximum(_chord_gap(La, Lb), np.minimum(np.abs(1.0 + La), np.abs(1.0 + Lb)) - 0.6 * np.abs(Lb - La))
-    return 1.0 / np.maximum(gap, 1e-300)
+    ends = _s_upper(np.abs(1.0 + La), np.abs(1.0 + Lb), np.abs(Lb - La))
+    return np.fmin(ends, 1.0 / np.maximum(_chord_gap(La, Lb), 1e-300))
 
 
 def _t_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:

@@ -164,10 +164,10 @@ def test_sharp_peaks_against_a_dense_grid():
 
 
 def test_ripples_that_approach_their_limit():
-    """Closed form: with abs(L(inf)) = l > 0, abs(L) rising towards l, and dead time, abs(T) ripples
-    below its limit l / (1 - l) as w -> inf without reaching it (Astrom & Murray, Feedback Systems, 2021, ch. 10:
-    a proper loop transfer with delay); the engine reports the limit, at w = inf, and a dense grid
-    stays below it."""
+    """Closed form (derived here): L = 0.4 (s + 1)/(s + 2) e^{-s} has abs(L(jw)) rising from 0.2
+    towards l = 0.4, so abs(T) = abs(L)/abs(1 + L) <= abs(L)/(1 - abs(L)) < l/(1 - l) at every finite
+    w, and tends to that limit along the delay's ripples; the engine reports the limit, at w = inf,
+    and a dense grid stays below it."""
     P = make_process("tf", num=[1.0, 1.0], den=[1.0, 2.0], dead_time=1.0)    # (s + 1)/(s + 2)
     m = LoopModel("lag-lead", P, Controller("parallel", kp=0.4))             # abs(L) rises 0.2 -> 0.4
     f = evaluate([m]).iloc[0]
