@@ -676,8 +676,8 @@ def _interior(same: np.ndarray) -> np.ndarray:
 # The grid
 
 
-def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
-    """Per-entry frequency ranges and point counts."""
+def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray, cap: bool = True):
+    """Per-entry frequency ranges and point counts (``cap=False``: counts before the cap MAX_POINTS)."""
     c_min, c_max = st.c_min[ents], st.c_max[ents]
     w_lo = 1e-3 * c_min
     # coarse magnitude scan to find where |L| has fallen to the tail level for good; it starts at
@@ -720,9 +720,12 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
     w_a = np.minimum(0.1 * c_min, w_mid)
     n_low = np.where(w_a > w_lo, np.ceil(np.log(w_a / w_lo) / LOW_STEP), 0).astype(int)
     n_log = n_low + np.ceil(np.log(w_mid / np.maximum(w_a, w_lo)) / h_log).astype(int) + 1
-    n_lin = np.where(w_hi > w_b, np.ceil((w_hi - w_mid) * tdelay[ents] / DELAY_STEP), 0).astype(int)
+    with np.errstate(invalid="ignore", over="ignore"):
+        # clipped before the cast: an extreme delay times bandwidth must not wrap around to a negative count
+        n_lin_f = np.where(w_hi > w_b, np.ceil((w_hi - w_mid) * tdelay[ents] / DELAY_STEP), 0)
+    n_lin = np.nan_to_num(np.minimum(n_lin_f, 1e15), nan=1e15).astype(np.int64)
     over = (n_log + n_lin) > MAX_POINTS
-    if over.any():
+    if over.any() and cap:
         n_lin = np.where(over, np.maximum(MAX_POINTS - n_log, 0), n_lin)
     return w_lo, w_hi, w_mid, h_log, n_log, n_lin, over, np.maximum(w_a, w_lo), n_low
 
@@ -1264,6 +1267,42 @@ def _no_gc_pauses():
     finally:
         if was:
             gc.enable()
+
+
+def grid_points(models: Sequence[LoopModel | None]) -> np.ndarray:
+    """Points each loop's frequency grid would need before the cap :data:`MAX_POINTS`.
+
+    The same sizing as :func:`evaluate` (``_grids``), so that the inventory's validation can refuse
+    the loops the engine cannot evaluate (dead time times the highest frequency where abs(L) still
+    matters far too large); loops above the cap but below the refusal are evaluated on a capped grid
+    with an ``engine_note``.
+
+    Parameters
+    ----------
+    models : sequence of LoopModel or None
+        The loops; None gives False.
+
+    Returns
+    -------
+    ndarray of float
+        One count per model (0 for None). [-]
+    """
+    models = list(models)
+    out = np.zeros(len(models))
+    if not any(m is not None for m in models):
+        return out
+    batch, top = build_batch(models)
+    st = _static(batch)
+    tdel = _total_delay(batch)
+    ne = batch.num.shape[0]
+    count = np.zeros(ne)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        for chunk in np.array_split(np.arange(ne), int(np.ceil(ne / CHUNK_LOOPS))):
+            g = _grids(batch, chunk, st, tdel, cap=False)
+            count[chunk] = g[4] + g[5]
+    ok = top >= 0
+    out[ok] = count[top[ok]]
+    return out
 
 
 def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFrame:

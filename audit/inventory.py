@@ -44,6 +44,7 @@ import numpy as np
 
 from . import units
 from .policy import Policy
+from .ranges import POLICY_RANGES, ROW_RANGES, tf_problems
 from .rows import Inventory, LoopRow, Problem
 
 # --------------------------------------------------------------------------------------
@@ -557,7 +558,10 @@ def _to_number(v: Any, fmt: str | None, column: str, need: str) -> float:
     if isinstance(v, bool) or isinstance(v, (_dt.datetime, _dt.date, _dt.time, _dt.timedelta)):
         raise _Bad(f"must be {need}, got {_shown(v)}")
     if isinstance(v, (int, float)):
-        x = float(v)
+        try:
+            x = float(v)
+        except OverflowError:
+            raise _Bad(f"must be {need}, got a number of {len(str(abs(int(v))))} digits, too large to hold") from None
         if fmt and "%" in fmt.replace('"%"', "").replace("\\%", ""):
             if pct_col:
                 x *= 100.0  # the cell shows 100 x its value followed by %: read what is shown
@@ -581,8 +585,16 @@ def _to_number(v: Any, fmt: str | None, column: str, need: str) -> float:
                        f"write it with no separators and a point as the decimal mark")
         raise _Bad(f"must be {need}, got {text!r}")
     if not _NUM_RE.match(t):
-        raise _Bad(f"must be {need}, got {text!r}")
-    return float(t)
+        raise _Bad(f"must be {need}, got {_clip(text)!r}")
+    x = float(t)
+    if not math.isfinite(x):
+        raise _Bad(f"must be {need}; {_clip(text)!r} is too large to hold as a number")
+    return x
+
+
+def _clip(text: str, n: int = 40) -> str:
+    """Long text shortened for a message (its length said)."""
+    return text if len(text) <= n else f"{text[:n]}... ({len(text)} characters)"
 
 
 def _json_value(v: Any) -> Any:
@@ -692,7 +704,8 @@ class _RowCheck:
         self.err(name, f"unknown {name} {_text(v)!r}{hint}; accepted: {', '.join(words)}", c)
         return None
 
-    def number(self, name: str, need: str = _ANY, check: Callable[[float], bool] | None = None) -> float | None:
+    def number(self, name: str, need: str = _ANY, check: Callable[[float], bool] | None = None,
+               ranged: bool = True) -> float | None:
         c, v = self.raw(name)
         if c is None:
             return None
@@ -705,6 +718,10 @@ class _RowCheck:
         if not ok:
             self.err(name, f"must be {need}, got {x:g}", c)
             return None
+        rng = ROW_RANGES.get(name) if ranged else None
+        if rng is not None and not rng.accepts(x):
+            self.err(name, f"must be {rng.describe()} (the range accepted), got {x:g}", c)
+            return None
         return x
 
     def group(self, quantity: str, members: list[tuple[str, Callable[[float], float], str]],
@@ -714,10 +731,15 @@ class _RowCheck:
         for name, conv, need in members:
             if not self.present(name):
                 continue
-            x = self.number(name, need)
+            x = self.number(name, need, ranged=False)
             if x is None:
                 return None, name
-            found.append((name, x, conv(x)))
+            try:
+                v = conv(x)
+            except (ValueError, OverflowError, ZeroDivisionError) as exc:
+                self.err(name, f"{name} = {x:g} cannot be converted to {quantity}: {exc}")
+                return None, name
+            found.append((name, x, v))
         if not found:
             return None, None
         name0, x0, v0 = found[0]
@@ -727,6 +749,12 @@ class _RowCheck:
                 self.err(name, f"{name} = {x:g} gives {quantity} = {v:g} {unit} but {name0} ({cell0}) = {x0:g} "
                                f"gives {v0:g} {unit}; give one of them, or the same value")
                 return None, name
+        rng = ROW_RANGES.get(quantity)
+        # exactly 0 is left to the caller's own message (a zero gain); every other group refuses 0 by ``need``
+        if rng is not None and v0 != 0 and not rng.accepts(v0):
+            shown = f"{x0:g}" if v0 == x0 else f"{x0:g}, that is {quantity} = {v0:g} {rng.unit},"
+            self.err(name0, f"{name0} = {shown} outside the range accepted: {rng.describe()}")
+            return None, name0
         return v0, name0
 
 
@@ -755,16 +783,27 @@ def _parse_coeffs(chk: _RowCheck, name: str) -> tuple[float, ...] | None:
     if c is None:
         return None
     if isinstance(v, (int, float)) and not isinstance(v, bool):
-        return (float(v),)
+        try:
+            x = float(v)
+        except OverflowError:
+            x = math.inf
+        if not math.isfinite(x):
+            chk.err(name, "the coefficient is too large to hold as a number", c)
+            return None
+        return (x,)
     text = str(v).strip()
     if "," in text:
         chk.err(name, f"separate coefficients with spaces or semicolons (a comma is ambiguous), got {text!r}", c)
         return None
     parts = [p for p in re.split(r"[\s;]+", text.replace("\u2212", "-")) if p]
     if not parts or not all(_NUM_RE.match(p) for p in parts):
-        chk.err(name, f"must be numbers separated by spaces or semicolons, got {text!r}", c)
+        chk.err(name, f"must be numbers separated by spaces or semicolons, got {_clip(text)!r}", c)
         return None
-    return tuple(float(p) for p in parts)
+    vals = tuple(float(p) for p in parts)
+    if not all(math.isfinite(x) for x in vals):
+        chk.err(name, f"a coefficient is too large to hold as a number, got {_clip(text)!r}", c)
+        return None
+    return vals
 
 
 def _confine(chk: _RowCheck, base_dir: Path) -> str | None:
@@ -943,6 +982,9 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
                 elif n_trim.size > len(d_):
                     chk.err("num", f"improper transfer function: numerator degree {n_trim.size - 1} exceeds "
                                    f"denominator degree {len(d_) - 1}")
+                else:
+                    for col_, msg_ in tf_problems(n_, d_):
+                        chk.err(col_, msg_)
         if model != "tf" and got["gain"] is not None and abs(got["gain"]) > 100:
             chk.warn(conventions.get("gain", "gain"), f"|gain| = {abs(got['gain']):g} is above 100; check the units")
     gain, tau1, tau2, lead, num, den = (got[k] for k in ("gain", "tau1", "tau2", "lead", "num", "den"))
@@ -1077,7 +1119,46 @@ def _rows_from_table(table: _Table, base_dir: Path) -> tuple[list[LoopRow], list
         _validate_row(i, table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless, table.merged)
         for i, (r, vals, fmts) in enumerate(table.rows)
     ]
+    rows = _mark_unevaluable(rows, colmap)
     return _mark_duplicates(rows, tag_col), problems, tuple(extras.values())
+
+
+def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> list[LoopRow]:
+    """Refuse valid rows whose loop the engine cannot evaluate in full (the engine's own grid sizing).
+
+    Each value lies in its range, but together they can still span more than the engine resolves:
+    a long dead time with a fast loop turns the delay spiral more times than the grid holds.
+    """
+    from .frequency import grid_points
+    from .ranges import MAX_GRID_POINTS
+    from .loop import model_from_row
+
+    idx = [i for i, r in enumerate(rows) if r.valid]
+    if not idx:
+        return rows
+    models = []
+    for i in idx:
+        try:
+            models.append(model_from_row(rows[i]))
+        except (ValueError, ZeroDivisionError, OverflowError, FloatingPointError) as exc:
+            models.append(None)
+            rows[i] = replace(rows[i], errors=rows[i].errors + (Problem(
+                rows[i].sheet, str(rows[i].excel_row), "model", f"the loop cannot be built from this row: {exc}"),))
+    flags = grid_points(models) > MAX_GRID_POINTS
+    out = list(rows)
+    for i, bad in zip(idx, flags):
+        if not bad:
+            continue
+        row = rows[i]
+        name = row.conventions.get("dead_time") or next(
+            (c for c in ("dead_time_s", "dead_time_min", "dead_time_h") if c in colmap), "model")
+        col = colmap.get(name, [None])[0]
+        cell = f"{_col_letter(col)}{row.excel_row}" if col is not None else str(row.excel_row)
+        msg = (f"with this model and tuning the loop's response matters over too wide a range of frequencies "
+               f"for the exact evaluation (the delay spiral would need more than {MAX_GRID_POINTS:,.0f} grid "
+               f"points); check the units of the times and gains")
+        out[i] = replace(row, errors=row.errors + (Problem(row.sheet, cell, name, msg),))
+    return out
 
 
 def _mark_duplicates(rows: list[LoopRow], tag_col: str) -> list[LoopRow]:
@@ -1101,17 +1182,6 @@ def _mark_duplicates(rows: list[LoopRow], tag_col: str) -> list[LoopRow]:
 # --------------------------------------------------------------------------------------
 # Policy sheet
 # --------------------------------------------------------------------------------------
-
-_POLICY_CHECKS: dict[str, tuple[str, Callable[[float], bool]]] = {
-    "ms_max": ("a number > 1", lambda x: x > 1),
-    "pm_min_deg": ("a number in (0, 180)", lambda x: 0 < x < 180),
-    "band_energy_fraction": ("a number in (0, 1)", lambda x: 0 < x < 1),
-    "min_samples": ("a whole number >= 8", lambda x: x >= 8 and float(x).is_integer()),
-    "weight_high": (_NONNEG, lambda x: x >= 0),
-    "weight_medium": (_NONNEG, lambda x: x >= 0),
-    "weight_low": (_NONNEG, lambda x: x >= 0),
-}
-
 
 def _read_policy(table: _Table) -> tuple[Policy, list[Problem]]:
     problems: list[Problem] = []
@@ -1151,7 +1221,8 @@ def _read_policy(table: _Table) -> tuple[Policy, list[Problem]]:
             problems.append(Problem(table.sheet, cell_v, key, "blank value; the default "
                                                               f"{defaults[key]:g} applies", "warning"))
             continue
-        need, ok = _POLICY_CHECKS.get(key, (_POS, lambda x: x > 0))
+        rng = POLICY_RANGES[key]
+        need, ok = f"{rng.describe()} (the range accepted)", rng.accepts
         try:
             x = _to_number(v, fmts.get(c_val), key, need)
         except _Bad as exc:
