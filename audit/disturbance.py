@@ -49,6 +49,7 @@ from scipy.signal import fftconvolve, welch
 
 from .loop import LoopModel
 from .policy import Policy
+from .ranges import RECORD_INTERVAL, RECORD_VALUE
 from . import timedomain as td
 
 TIME_COLUMNS = ("time_s", "time_min", "timestamp")
@@ -127,6 +128,10 @@ class RecordAnalysis:
     dt : float
         Sample interval of the record. [s]
     notes : tuple of str
+    unusable : str
+        Why the record cannot set or judge a requirement (empty when it can): an interval or
+        values outside their ranges (:mod:`audit.ranges`), a band edge the record cannot resolve,
+        statistics that are not finite.
     """
 
     band_rad_s: float
@@ -143,6 +148,7 @@ class RecordAnalysis:
     detrended: np.ndarray
     dt: float
     notes: tuple[str, ...] = ()
+    unusable: str = ""
 
 
 @dataclass(frozen=True)
@@ -235,7 +241,11 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
     shown = name or str(path)
     try:
         with open(path, newline="", encoding="utf-8-sig") as fh:
-            rows = list(csv.reader(fh))
+            reader = csv.reader(fh)
+            try:
+                rows = list(reader)
+            except csv.Error as exc:   # e.g. a cell longer than the csv module's field limit
+                raise RecordError(f"{shown} line {reader.line_num}: {exc}") from None
     except FileNotFoundError:
         raise RecordError(f"{shown}: file not found") from None
     except (OSError, UnicodeDecodeError) as exc:
@@ -411,6 +421,11 @@ def analyse_record(record: Record, allowed_amplitude: float | None, policy: Poli
     policy : Policy
         ``band_energy_fraction`` applies. [-]
     """
+    bad = _out_of_range(record)
+    if bad:
+        nan = float("nan")
+        return RecordAnalysis(nan, nan, nan, nan, nan, nan, np.zeros(0), np.zeros(0), nan, False,
+                              allowed_amplitude, np.zeros(0), record.dt, tuple(record.notes) + (bad,), bad)
     d, slope = detrend(record.t, record.values)
     n = len(d)
     seg = welch_segment(n)
@@ -422,16 +437,32 @@ def analyse_record(record: Record, allowed_amplitude: float | None, policy: Poli
     energy = psd * dw
     total = float(energy.sum())
     notes = list(record.notes)
-    if total > 0:
+    unusable = ""
+    if total > 0 and math.isfinite(total):
         cum = np.cumsum(energy) / total
         k = int(np.argmax(cum >= policy.band_energy_fraction - 1e-12))
         band = float(w[k])
+        if not band > 0:
+            # the variance lies below the lowest frequency the record resolves: no band edge can be read
+            band = float("nan")
+            unusable = (f"{100 * float(cum[0]):.3g} % of the variance lies below the lowest frequency the record "
+                        f"resolves ({float(w[1]) if len(w) > 1 else float('nan'):.3g} rad/s), more than "
+                        f"band_energy_fraction {policy.band_energy_fraction:g}: the record is too short for this "
+                        f"disturbance (log a longer one); no band edge derived")
+    elif total > 0:
+        band = float("nan")
     else:
         band = float("nan")
         notes.append("record is constant after trend removal: no band")
     amp = amplitude_of(d)
     std = float(np.std(d))
     peak = float(np.max(np.abs(d)))
+    if not all(math.isfinite(x) for x in (amp, std, peak, slope, total)):
+        unusable = "the record's statistics are not finite (values too large or too uneven to analyse)"
+    if unusable:
+        notes.append(unusable)
+        return RecordAnalysis(band, float("nan"), amp, std, peak, slope, w, psd, dw, False,
+                              allowed_amplitude, d, record.dt, tuple(notes), unusable)
     if allowed_amplitude is None or not (allowed_amplitude > 0):
         att = float("nan")
         need = False
@@ -443,6 +474,19 @@ def analyse_record(record: Record, allowed_amplitude: float | None, policy: Poli
             notes.append(f"no attenuation needed: amplitude {amp:.3g} % <= allowed {allowed_amplitude:.3g} %")
     return RecordAnalysis(band, att, amp, std, peak, slope, w, psd, dw, need,
                           allowed_amplitude, d, record.dt, tuple(notes))
+
+
+def _out_of_range(record: Record) -> str:
+    """Why a record's interval or values lie outside their ranges (:mod:`audit.ranges`); empty when they do not."""
+    if not RECORD_INTERVAL.accepts(float(record.dt)):
+        return (f"sample interval {record.dt:g} s outside the range accepted ({RECORD_INTERVAL.describe()}): "
+                f"check the time column and its unit")
+    v = np.asarray(record.values, float)
+    big = float(np.max(np.abs(v))) if v.size else 0.0
+    if not RECORD_VALUE.accepts(big):
+        return (f"values up to {big:.3g} % of range, outside the range accepted ({RECORD_VALUE.describe()}): "
+                f"check the value column and its unit")
+    return ""
 
 
 # --------------------------------------------------------------------------- residual
@@ -460,6 +504,23 @@ def _kernels(models: Sequence[LoopModel], dts: np.ndarray, lengths: np.ndarray
     if batch is None:
         return out, s0, notes
     ok = [i for i in range(n) if i not in errors]
+    # a delay line of more than N_CAP record intervals (a record sampled far faster than the loop's
+    # dead time) cannot be simulated on the record's own step: leave that loop out, say so
+    with np.errstate(invalid="ignore"):
+        dmax = np.nan_to_num(np.nanmax(np.where(np.isnan(batch.delays), 0.0, batch.delays), axis=1), nan=0.0) \
+            if batch.delays.size else np.zeros(len(ok))
+    too_fine = [i for j, i in enumerate(ok) if dmax[j] / dts[i] > td.N_CAP]
+    if too_fine:
+        for i in too_fine:
+            notes[i] = (f"residual not simulated: the record's interval {dts[i]:.3g} s is more than "
+                        f"{td.N_CAP:,} times shorter than the loop's dead time")
+        keep = [i for i in ok if i not in set(too_fine)]
+        if not keep:
+            return out, s0, notes
+        sub_out, sub_s0, sub_notes = _kernels([models[i] for i in keep], dts[keep], lengths[keep])
+        for j, i in enumerate(keep):
+            out[i], s0[i], notes[i] = sub_out[j], sub_s0[j], sub_notes[j]
+        return out, s0, notes
     s0[ok] = td.final_values(batch)[0]
     tc = np.array([td.characteristic_time(models[i]) for i in ok])
     dt = dts[ok]
@@ -592,6 +653,7 @@ def analyse_records(audit) -> None:
         if c not in res.columns:
             res[c] = "" if c == "dist_note" else np.nan
     res["dist_note"] = res["dist_note"].astype(object)
+    unjudged = audit.extras.setdefault("records_unjudged", {})
     for row in inv.rows:
         if not row.disturbance_file:
             continue
@@ -603,8 +665,15 @@ def analyse_records(audit) -> None:
             msg = f"disturbance record: {exc}"
             res.at[label, "dist_note"] = msg
             _append(res, label, "message", msg)
+            unjudged[row.index] = msg
             continue
         an = analyse_record(rec, row.allowed_amplitude, policy)
+        if an.unusable:
+            msg = f"disturbance record {rec.name}: {an.unusable}"
+            res.at[label, "dist_note"] = "; ".join(list(an.notes[:-1]) + [msg])
+            _append(res, label, "message", msg)
+            unjudged[row.index] = msg
+            continue
         store[row.index] = an
         notes = list(an.notes)
         if row.band_rad_s is not None or row.attenuation_db is not None:
@@ -621,6 +690,38 @@ def analyse_records(audit) -> None:
         res.at[label, "dist_peak"] = an.peak
         res.at[label, "dist_trend_per_s"] = an.trend
         res.at[label, "dist_note"] = "; ".join(notes)
+
+
+def judge_unusable_records(audit) -> None:
+    """A row whose disturbance record could not be used has a requirement that was not judged: not met.
+
+    Such a row (a record named with an allowed amplitude, but unreadable or unusable: see
+    ``dist_note``) is reported ``fails`` with a finding saying why, unless it is already invalid,
+    unstable or failing; the status it had before is kept in
+    ``audit.extras['records_unjudged_status']`` for the proposals (the tuning may be fine: the fix
+    is the record).
+
+    Parameters
+    ----------
+    audit : Audit
+        The run, after the frequency stage; ``status`` and ``findings`` of its ``results`` change in place.
+    """
+    res = audit.results
+    unjudged = audit.extras.get("records_unjudged", {})
+    before = audit.extras.setdefault("records_unjudged_status", {})
+    rows = audit.inventory.rows
+    for i, msg in unjudged.items():
+        row = rows[i]
+        if row.allowed_amplitude is None or "status" not in res.columns:
+            continue
+        st = str(res.at[i, "status"])
+        if st in ("invalid", "unstable"):
+            continue
+        words = "disturbance requirement not judged: the record could not be used (see dist_note); fix the record"
+        old = str(res.at[i, "findings"] or "")
+        res.at[i, "findings"] = f"{words}; {old}" if old else words
+        before[i] = st
+        res.at[i, "status"] = "fails"
 
 
 def add_residuals(audit) -> None:
@@ -733,6 +834,9 @@ def disturbance_command(path: str, allowed: float, out: str | None = None) -> in
         print(f"plant-audit disturbance: {exc}", file=sys.stderr)
         return 2
     an = analyse_record(rec, allowed)
+    if an.unusable:
+        print(f"plant-audit disturbance: {rec.name}: {an.unusable}", file=sys.stderr)
+        return 2
     target = Path(out) if out else Path(path).with_name(Path(path).stem + "-spectrum.svg")
     print(f"record          {rec.name}  ({len(rec.t)} samples every {rec.dt:g} s)")
     print(f"band wd         {an.band_rad_s:.4g} rad/s  (resolution {an.resolution_rad_s:.3g} rad/s)")

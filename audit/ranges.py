@@ -128,6 +128,11 @@ TF_GAIN = ROW_RANGES["gain"]
 #: frequency where abs(L) matters, over the grid's 0.5 rad of delay phase per step). [-]
 MAX_GRID_POINTS = 20_000_000
 
+#: A disturbance record's sample interval. [s]
+RECORD_INTERVAL = Range("s", 1e-6, 1e7)
+#: A disturbance record's values, in % of the PV range (after conversion from engineering units). [%]
+RECORD_VALUE = Range("% of range", 0.0, 1e9, zero=True, signed=True)
+
 #: Ranges of the policy settings.
 POLICY_RANGES: dict[str, Range] = {
     "ms_max": ROW_RANGES["ms_max"],
@@ -208,6 +213,8 @@ def ranges_markdown() -> str:
         lines.append(f"| `{name}` | {r.describe()} |")
     lines.append(f"| tf `num`, `den` | at most {TF_MAX_COEFFICIENTS} coefficients, each {TF_COEFFICIENT.describe()}; "
                  f"poles and zeros {TF_ROOT.describe()}; gain {TF_GAIN.describe()} |")
+    lines.append(f"| disturbance record: sample interval | {RECORD_INTERVAL.describe()} |")
+    lines.append(f"| disturbance record: values | {RECORD_VALUE.describe()} |")
     lines.append("")
     lines.append("| policy setting | accepted |")
     lines.append("|---|---|")

@@ -1701,9 +1701,12 @@ def add_proposals(audit) -> None:
     mode = getattr(audit.options, "propose", "failing")
     out: dict[int, Proposal] = {}
     todo: list[int] = []
+    unjudged = audit.extras.get("records_unjudged_status", {})
     for i, row in enumerate(rows):
         model = audit.models[i]
         status = str(res.at[i, "status"]) if "status" in res.columns else ""
+        if i in unjudged and unjudged[i] in ("passes", "marginal"):
+            status = unjudged[i]   # fails only because its record could not be used: the fix is the record
         if model is None or status == "invalid":
             out[i] = Proposal("not evaluated", note="the row could not be evaluated: fix the inventory row first")
         elif mode == "none":
