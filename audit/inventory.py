@@ -45,7 +45,7 @@ import numpy as np
 from . import units
 from .policy import Policy
 from .ranges import POLICY_RANGES, ROW_RANGES, tf_problems
-from .rows import Inventory, LoopRow, Problem
+from .rows import Inventory, LoopRow, Problem, printable, tag_key
 
 # --------------------------------------------------------------------------------------
 # The table of known columns
@@ -949,7 +949,7 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
 
     inner_loop = chk.text("inner_loop") or None
     outer_input = chk.choice("outer_model_input", OUTER_INPUTS)
-    if inner_loop and tag and inner_loop.casefold() == tag.casefold():
+    if inner_loop and tag and tag_key(inner_loop) == tag_key(tag):
         chk.err("inner_loop", "a loop cannot be its own inner loop")
     if outer_input and not inner_loop:
         chk.warn("outer_model_input", "used only with inner_loop; ignored")
@@ -1093,13 +1093,18 @@ def _map_headers(table: _Table) -> tuple[dict[str, list[int]], dict[int, str], d
                                     "error"))
             continue
         header = _text(h)
-        if header in extras.values():
-            header = f"{header} ({_col_letter(col)})"
-        extras[col] = header
         near = difflib.get_close_matches(_norm(header), known, n=1, cutoff=0.75)
         hint = f"; did you mean {near[0]}?" if near else ""
-        problems.append(Problem(table.sheet, cell, "", f"unknown column '{header}' kept as an extra column{hint}",
-                                "warning"))
+        name, why = _extra_name(header, extras.values())
+        if name in extras.values():
+            name = f"{name} ({_col_letter(col)})"
+        extras[col] = name
+        if why:
+            problems.append(Problem(table.sheet, cell, "", f"unknown column {header!r} {why}: kept as the extra "
+                                                           f"column '{name}', apart from the results{hint}", "warning"))
+        else:
+            problems.append(Problem(table.sheet, cell, "", f"unknown column '{header}' kept as an extra column{hint}",
+                                    "warning"))
     for name, cols in colmap.items():
         if len(cols) > 1:
             problems.append(Problem(table.sheet, f"{_col_letter(cols[1])}{table.header_row}", name,
@@ -1110,6 +1115,40 @@ def _map_headers(table: _Table) -> tuple[dict[str, list[int]], dict[int, str], d
             problems.append(Problem(table.sheet, ref.split(":")[0], "", f"merged header cells {ref}; unmerge them so "
                                                                         f"each column has its own header", "error"))
     return colmap, extras, unitless, problems
+
+
+#: Prefix of an extra column whose header could be mistaken for a results column or a formula.
+EXTRA_PREFIX = "extra:"
+
+
+def _extra_name(header: str, taken) -> tuple[str, str]:
+    """The results name of an unknown inventory column, and why it was changed ('' when it was not).
+
+    An extra column is carried to the results after every results column. A header that reads like a
+    results column (``status``, ``Row``, ``ms``; compared NFKC-normalised and case-folded), like another
+    extra column, or like a formula (``=...``), or that holds control characters, is kept under
+    ``extra:<header>`` (control characters escaped) so it can neither replace nor shift a results column
+    and a spreadsheet never runs it.
+    """
+    from .columns import RESULT_COLUMNS
+    from .safety import is_formula_like
+
+    key = tag_key(header)
+    results = {c.name.casefold() for c in RESULT_COLUMNS}
+    why = ""
+    if key in results:
+        why = "has the name of a results column"
+    elif key.startswith(EXTRA_PREFIX):
+        why = f"begins with {EXTRA_PREFIX!r}, the mark of a renamed extra column"
+    elif key in {tag_key(t) for t in taken}:
+        why = "repeats another extra column's name"
+    elif is_formula_like(header.lstrip(" ")) or not header.strip():
+        why = "could be read as a formula" if header.strip() else "is blank"
+    elif not header.isprintable():
+        why = "holds control or invisible characters"
+    if not why:
+        return header, ""
+    return EXTRA_PREFIX + printable(header), why
 
 
 def _rows_from_table(table: _Table, base_dir: Path) -> tuple[list[LoopRow], list[Problem], tuple[str, ...]]:
@@ -1165,7 +1204,7 @@ def _mark_duplicates(rows: list[LoopRow], tag_col: str) -> list[LoopRow]:
     by_tag: dict[str, list[int]] = {}
     for i, row in enumerate(rows):
         if row.tag:
-            by_tag.setdefault(row.tag.casefold(), []).append(i)
+            by_tag.setdefault(tag_key(row.tag), []).append(i)
     out = list(rows)
     for idxs in by_tag.values():
         if len(idxs) < 2:
@@ -1174,7 +1213,10 @@ def _mark_duplicates(rows: list[LoopRow], tag_col: str) -> list[LoopRow]:
             row = rows[i]
             others = ", ".join(str(rows[j].excel_row) for j in idxs if j != i)
             cell = f"{tag_col}{row.excel_row}"
-            p = Problem(row.sheet, cell, "tag", f"duplicate tag {row.tag!r}: also in row(s) {others}")
+            alike = {rows[j].tag for j in idxs} - {row.tag}
+            how = (f" as {', '.join(repr(t) for t in sorted(alike))} (the same once look-alike and invisible "
+                   f"characters are normalised)") if alike else ""
+            p = Problem(row.sheet, cell, "tag", f"duplicate tag {row.tag!r}: also in row(s) {others}{how}")
             out[i] = replace(row, errors=(p,) + row.errors)
     return out
 
