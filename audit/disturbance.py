@@ -812,7 +812,8 @@ def disturbance_command(path: str, allowed: float, out: str | None = None) -> in
 
     Prints the derived requirement and writes the spectrum plot (default
     ``<stem>-spectrum.svg`` beside the record). Returns 0, or 2 with a one-line
-    message on stderr for a bad record.
+    message on stderr for a bad or unusable record or an ``allowed`` that is not a
+    positive finite number (0 included: it is not "not given").
 
     Parameters
     ----------
@@ -828,6 +829,10 @@ def disturbance_command(path: str, allowed: float, out: str | None = None) -> in
     int
         Exit code: 0 on success, 2 for a bad record or an unwritable plot.
     """
+    if not (isinstance(allowed, (int, float)) and math.isfinite(allowed) and allowed > 0):
+        print(f"plant-audit disturbance: --allowed must be a positive number of % of PV range, got {allowed!r}",
+              file=sys.stderr)
+        return 2
     try:
         rec = read_record(path)
     except RecordError as exc:

@@ -1338,9 +1338,9 @@ def read_inventory(path: str | Path) -> Inventory:
         finally:
             wb.close()
     rows, header_problems, extra_columns = _rows_from_table(table, base_dir)
-    if not rows and not header_problems:
-        header_problems.append(Problem(table.sheet, str(table.header_row + 1), "", "no loops below the header row",
-                                       "warning"))
+    if not rows:
+        where = f"sheet '{table.sheet}' of {p.name}" if sheets else p.name
+        raise InventoryError(f"{where}: no loops below the header row (row {table.header_row}); nothing to audit")
     letters: dict[str, str] = {}
     for col, h in sorted(table.headers.items()):
         name = canonical_header(h)
