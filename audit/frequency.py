@@ -25,13 +25,13 @@ from __future__ import annotations
 
 import gc
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Sequence
 
 import numpy as np
 import pandas as pd
 
-from .loop import LoopModel
+from .loop import LoopModel, Rational
 from .timedomain import controller_poly
 
 #: |L| below which the tail of the frequency axis is not sampled densely. [-]
@@ -829,7 +829,7 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     out["_z_raw"] = z
     notes = np.full(n, "", object)
     notes[neutral] = "high-frequency loop gain |L(inf)| >= 1 with dead time: not stable"
-    notes[st.axis_poles[ents] > 0] = "open-loop poles on the imaginary axis (other than integrators): treated as not stable"
+    notes[st.axis_poles[ents] > 0] = AXIS_NOTE
     notes[min_dist < 1e-9] = "L(jw) passes through -1: marginally stable, treated as not stable"
     notes[capped] = "frequency grid capped; figures at very high frequency may be incomplete"
     notes[z < 0] = "Nyquist count inconsistent (numerical); treated as not stable"
@@ -1325,7 +1325,76 @@ def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFram
         ``band_l_db`` [dB], ``engine_note`` (text).
     """
     with _no_gc_pauses():
-        return _evaluate(models, band_rad_s)
+        df = _evaluate(models, band_rad_s)
+        return _decide_axis_poles(list(models), df, band_rad_s)
+
+
+# ----------------------------------------------------------------------------------------------
+# Open-loop poles on the imaginary axis (other than integrators)
+
+#: Engine note of a loop with open-loop poles on the imaginary axis other than integrators.
+AXIS_NOTE = "open-loop poles on the imaginary axis (other than integrators): treated as not stable"
+#: Relative shift of such poles, off the axis to either side, for the two-sided stability check. [-]
+AXIS_SHIFT = 1e-4
+
+
+def _shift_axis_poles(m: LoopModel, rel: float) -> LoopModel | None:
+    """The loop with its process's imaginary-axis poles (other than 0) moved by ``rel`` x their magnitude
+    along the real axis (rel < 0: into the left half-plane); None when it has none or is a cascade."""
+    if m is None or m.inner is not None:
+        return None
+    den = np.asarray(m.process.rational.den, float)
+    if den.size < 3:
+        return None
+    r = np.roots(den)
+    mag = np.abs(r)
+    tol = 1e-9 * max(1.0, float(mag.max()))
+    axis = (np.abs(r.real) <= tol) & (mag > tol)
+    if not axis.any():
+        return None
+    r = np.where(axis, 1j * r.imag + rel * mag, r)
+    new = np.real(np.poly(r)) * den[0]
+    proc = replace(m.process, rational=Rational.of(m.process.rational.num, new))
+    return replace(m, process=proc)
+
+
+def _decide_axis_poles(models: list, df: pd.DataFrame, band_rad_s) -> pd.DataFrame:
+    """Stability of loops with open-loop poles on the imaginary axis, decided instead of assumed.
+
+    Closed-loop poles depend continuously on the open-loop ones, so when the closed loop has no pole
+    on the imaginary axis, moving the axis poles a little off it, to either side, changes nothing:
+    the loop is evaluated twice, with them moved left and moved right by :data:`AXIS_SHIFT` of their
+    magnitude (the right-hand ones then count in P of the Nyquist argument). When both agree, that is
+    the verdict (figures of the left-shifted loop, with a note); when they differ a closed-loop pole
+    lies on or near the axis, and the loop stays not stable. Cascades keep the engine's rule.
+    """
+    idx = [i for i, note in enumerate(df["engine_note"]) if note == AXIS_NOTE]
+    pairs = [(i, _shift_axis_poles(models[i], -AXIS_SHIFT), _shift_axis_poles(models[i], AXIS_SHIFT)) for i in idx]
+    pairs = [(i, a, b) for i, a, b in pairs if a is not None and b is not None]
+    if not pairs:
+        return df
+    band = np.full(len(models), np.nan) if band_rad_s is None else \
+        np.array([np.nan if b is None else float(b) for b in band_rad_s], float)
+    sub_band = np.concatenate([band[[i for i, _, _ in pairs]]] * 2)
+    both = _evaluate([a for _, a, _ in pairs] + [b for _, _, b in pairs], sub_band)
+    n = len(pairs)
+    df = df.copy()
+    for j, (i, _, _) in enumerate(pairs):
+        left, right = both.iloc[j], both.iloc[n + j]
+        clean = not left["engine_note"] and not right["engine_note"]
+        if clean and bool(left["stable"]) == bool(right["stable"]):
+            keep_open = df.at[i, "rhp_open"]
+            for c in FIGURE_COLUMNS:
+                df.at[i, c] = left[c]
+            df.at[i, "rhp_open"] = keep_open
+            df.at[i, "engine_note"] = (
+                f"open-loop poles on the imaginary axis: stability decided with them moved off the axis by "
+                f"{AXIS_SHIFT:g} of their magnitude to either side (both give {'stable' if left['stable'] else 'unstable'}); "
+                f"figures of the loop with them moved left")
+        else:
+            df.at[i, "engine_note"] = ("open-loop poles on the imaginary axis with a closed-loop pole on or near the "
+                                       "axis (moved to either side they disagree): treated as not stable")
+    return df
 
 
 def _evaluate(models, band_rad_s) -> pd.DataFrame:
