@@ -109,7 +109,7 @@ ROW_RANGES: dict[str, Range] = {
     "attenuation_db": Range("dB", 1e-3, 200.0),
     "ms_max": Range("-", 1.0, 100.0, lo_open=True),
     "gm_min_db": Range("dB", 1e-3, 100.0),
-    "pm_min_deg": Range("deg", 0.0, 180.0, lo_open=True, hi_open=True),
+    "pm_min_deg": Range("deg", 1e-3, 180.0, hi_open=True),
     "pv_lo": Range("EU", 0.0, 1e15, zero=True, signed=True),
     "pv_hi": Range("EU", 0.0, 1e15, zero=True, signed=True),
     "allowed_amplitude": Range("% of range", 1e-9, 1e6),

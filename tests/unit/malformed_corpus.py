@@ -215,7 +215,7 @@ CASES: list[Case] = [
          lambda d: workbook(d / "a.xlsx", good_row()[0], [good_row()[1]],
                             policy=[["setting", "value"], ["ms_max", "high"], ["pm_min_deg", 200]]),
          expect=[("B2", "ms_max", "must be a number greater than 1 and at most 100 (the range accepted), got 'high'"),
-                 ("B3", "pm_min_deg", "must be a number greater than 0 and less than 180 deg (the range accepted), got 200")]),
+                 ("B3", "pm_min_deg", "must be a number from 0.001 to just below 180 deg (the range accepted), got 200")]),
     Case("column header twice with different values",
          lambda d: workbook(d / "a.xlsx", [*good_row()[0], "Gain"], [[*good_row()[1], 2.0]]),
          expect=[("I2", "gain", "column gain appears twice with different values")]),
