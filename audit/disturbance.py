@@ -50,6 +50,7 @@ from scipy.signal import fftconvolve, welch
 from .loop import LoopModel
 from .policy import Policy
 from .ranges import RECORD_INTERVAL, RECORD_VALUE
+from .rows import printable
 from . import timedomain as td
 
 TIME_COLUMNS = ("time_s", "time_min", "timestamp")
@@ -64,7 +65,13 @@ RESIDUAL_COLUMNS = ("residual_amplitude", "residual_std", "residual_std_freq", "
 
 
 class RecordError(ValueError):
-    """A disturbance record that cannot be used; the message lists every problem found."""
+    """A disturbance record that cannot be used; the message lists every problem found.
+
+    Control characters in the message (from the record's headers or cells) are escaped: it is printed.
+    """
+
+    def __init__(self, message: str = "") -> None:
+        super().__init__(printable(message))
 
 
 @dataclass(frozen=True)

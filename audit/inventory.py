@@ -221,7 +221,13 @@ def inventory_columns_markdown() -> str:
 
 
 class InventoryError(Exception):
-    """The file itself cannot be read as an inventory (one line, for the engineer)."""
+    """The file itself cannot be read as an inventory (one line, for the engineer).
+
+    Control characters in the message (from sheet names, headers) are escaped: it is printed.
+    """
+
+    def __init__(self, message: str = "") -> None:
+        super().__init__(printable(message))
 
 
 # --------------------------------------------------------------------------------------

@@ -149,7 +149,7 @@ def test_seeded_combinations_of_accepted_extremes(tmp_path, capsys):
         return repr(-c if signed and rng.random() < 0.3 else c)
 
     rows = []
-    for i in range(40):
+    for i in range(24):
         m = rng.choice(["fopdt", "sopdt", "ipdt", "tf"])
         r = {"tag": f"R-{i}", "model": m, "dead_time_s": pick(1e-6, 1e7, zero=True),
              "action": rng.choice(["reverse", "direct"]), "kc": pick(1e-6, 1e6), "ti_s": pick(1e-6, 1e8, zero=True),
@@ -330,6 +330,22 @@ def test_look_alike_tags_are_duplicates(tmp_path, capsys):
     assert_every_row(res, rows)
     assert [r["status"] for r in res[:3]] == ["invalid"] * 3 and res[3]["status"] != "invalid"
     assert "loops!A3 (tag): duplicate tag" in res[1]["message"] and "\\u200b" in res[1]["message"]
+
+
+def test_control_characters_in_sheet_names_and_record_headers_are_escaped(tmp_path, capsys):
+    """A sheet name holding a bidi override and a record header holding a terminal escape are printed
+    escaped, never raw."""
+    wb = Workbook()
+    wb.active.title = "Data\u202e"      # a right-to-left override: reverses what a terminal shows
+    wb.active.append(["tag"])
+    wb.save(tmp_path / "a.xlsx")
+    assert main(["check", str(tmp_path / "a.xlsx")]) == 2
+    err = capsys.readouterr().err
+    assert "\u202e" not in err and "\\u202e" in err
+    (tmp_path / "r.csv").write_text("time_s,\x1b[2Jvalue\n" + "".join(f"{i},{i % 3}\n" for i in range(100)))
+    assert main(["disturbance", str(tmp_path / "r.csv"), "--allowed", "1", "--plot", str(tmp_path / "p.svg")]) == 2
+    err = capsys.readouterr().err
+    assert "\x1b" not in err and "Traceback" not in err
 
 
 def test_empty_inventory_is_exit_2(tmp_path, capsys):
