@@ -221,7 +221,7 @@ def main(argv: list[str] | None = None) -> int:
         exc.show()
         return 2
     except (InventoryError, HistoryError, UserError, FileRefused) as exc:
-        click.echo(f"plant-audit: {exc}", err=True)
+        click.echo(f"plant-audit: {' '.join(str(exc).split())}", err=True)  # one line, whatever a driver said
         return 2
     except OSError as exc:
         if exc.errno not in _ENVIRONMENT_ERRNOS:

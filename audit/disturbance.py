@@ -279,7 +279,7 @@ class _record_lines:
         except UnicodeDecodeError as exc:
             raise RecordError(f"{shown}: cannot be read as UTF-8 text ({type(exc).__name__})") from None
         except csv.Error as exc:
-            raise RecordError(f"{shown} line {reader.line_num + 1}: not a readable CSV line ({exc})") from None
+            raise RecordError(f"{shown} line {reader.line_num}: not a readable CSV line ({exc})") from None
 
     def __exit__(self, *exc: object) -> None:
         self.fh.close()

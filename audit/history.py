@@ -799,7 +799,7 @@ def _database_url(target: str) -> sa.URL:
     if "://" in target:
         try:
             url = make_url(target)
-        except sa.exc.ArgumentError as exc:
+        except (sa.exc.ArgumentError, ValueError) as exc:
             raise HistoryError(f"history: not a database URL: {target!r} ({exc})") from None
         if url.drivername in ("postgresql", "postgres"):
             url = url.set(drivername="postgresql+psycopg")
@@ -1498,7 +1498,7 @@ def history_command(db: str | None, tag: str | None, as_csv: bool, site: str | N
                 raise HistoryError(f"history: cannot read {store.target}: "
                                    f"{getattr(exc, 'orig', None) or exc}") from None
     except HistoryError as exc:
-        print(f"plant-audit history: {exc}", file=sys.stderr)
+        print(f"plant-audit history: {' '.join(str(exc).split())}", file=sys.stderr)
         return 2
     if as_csv:
         w = csv.writer(sys.stdout, lineterminator="\n")

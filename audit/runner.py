@@ -106,6 +106,8 @@ def plan_output(out_dir: str | Path, inventory_path: str | Path, force: bool = F
         ``out_dir`` is a file; it holds the inventory, or files of the output names that a
         manifest does not list (without ``force``); or the staging folder cannot be made.
     """
+    if not str(out_dir).strip():
+        raise OutputError("--out is empty; give a folder for the results")
     out = Path(out_dir).expanduser().resolve()
     inv = Path(inventory_path).expanduser().resolve()
     if out == inv or (out.exists() and not out.is_dir()):
@@ -123,8 +125,8 @@ def plan_output(out_dir: str | Path, inventory_path: str | Path, force: bool = F
             raise OutputError(f"--out {out_dir}: cannot be read ({_os_message(exc)})") from None
         ours = set(OUTPUT_NAMES) | {MANIFEST}
         foreign = [e for e in entries if e not in ours]
-        if not foreign and not inv.is_relative_to(out):
-            mode = "replace"
+        if not foreign and not inv.is_relative_to(out) and not Path.cwd().resolve().is_relative_to(out):
+            mode = "replace"  # swapped whole (never the folder the process stands in)
         else:
             listed = _manifest_files(out) or set()
             clash = [e for e in entries if e in OUTPUT_NAMES and e not in listed]
