@@ -329,6 +329,9 @@ def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | Non
         if any(canonical_header(v) == key or (isinstance(v, str) and _norm(v) == key) for v in values):
             header_row = rownum
             headers = _capped(sheet, rownum, values)
+            for col, h in headers.items():
+                if isinstance(h, Unreadable):
+                    raise InventoryError(f"sheet '{sheet}' header {_col_letter(col)}{rownum}: {h.message}")
             break
     if not header_row:
         raise InventoryError(f"sheet '{sheet}' has no '{key}' header in its first 20 rows; {what}")
@@ -340,8 +343,8 @@ def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | Non
         if not vals:
             continue
         if len(data) >= MAX_ROWS:
-            raise InventoryError(f"sheet '{sheet}' has more than {MAX_ROWS:,} loops (row {rownum} is the "
-                                 f"{MAX_ROWS + 1:,}th); at most {MAX_ROWS:,} are read: split the inventory, "
+            raise InventoryError(f"sheet '{sheet}' has more than {MAX_ROWS:,} loops (row {rownum} holds loop "
+                                 f"{MAX_ROWS + 1:,}); at most {MAX_ROWS:,} are read: split the inventory, "
                                  "e.g. by area")
         blank += rownum - prev - 1
         prev = rownum
@@ -452,8 +455,8 @@ def _uncomputed_formulas(xml: bytes) -> set[tuple[int, int]]:
 
 def _read_xlsx_table(wb_values, sheet_name: str, key: str, what: str) -> _Table:
     ws = wb_values[sheet_name]
+    table = _build_table(sheet_name, _xlsx_rows(ws), key, what)  # streamed first: the row limit refuses early
     xml = _sheet_xml(wb_values, ws)
-    table = _build_table(sheet_name, _xlsx_rows(ws), key, what)
     for m in _MERGE.finditer(xml):
         c0, r0 = _col_index(m.group(1)), int(m.group(2))
         c1, r1 = (_col_index(m.group(3)), int(m.group(4))) if m.group(3) else (c0, r0)

@@ -5,6 +5,10 @@ a missing one is empty; free text that could be read as a formula is prefixed
 with an apostrophe. JSON: strict (no NaN/Infinity tokens): infinite values are the
 string ``"inf"`` (``"-inf"``), missing values ``null``; it also records the tool
 version, the inventory's file name and SHA-256, and the policy in force.
+
+:func:`write_file_safely` writes one file the user named (the template, a generated
+inventory, a plot) through a temporary file beside it and never over an existing file
+without ``force``.
 """
 
 from __future__ import annotations

@@ -92,6 +92,47 @@ def huge_inventory(folder: Path, rows: int = 1_000_000) -> list[str]:
     return ["run", str(path), "--out", str(folder / "out"), "--no-pdf", "--no-history", "--quiet"]
 
 
+def huge_xlsx(folder: Path, rows: int = 1_000_000) -> list[str]:
+    """A workbook of ``rows`` valid loops (sheet XML written directly, inline strings)."""
+    from openpyxl import Workbook
+
+    wb = Workbook()
+    wb.active.title = "loops"
+    good = folder / "good.xlsx"
+    wb.save(good)
+    src = zipfile.ZipFile(good)
+    path = folder / "huge.xlsx"
+    cols = HEADER.strip().split(",")
+
+    def row(r: int, values: list) -> bytes:
+        cells = []
+        for j, v in enumerate(values):
+            ref = f"{chr(65 + j)}{r}"
+            if isinstance(v, str):
+                cells.append(f'<c r="{ref}" t="inlineStr"><is><t>{v}</t></is></c>')
+            else:
+                cells.append(f'<c r="{ref}"><v>{v}</v></c>')
+        return f'<row r="{r}">{"".join(cells)}</row>'.encode()
+
+    with zipfile.ZipFile(path, "w", zipfile.ZIP_DEFLATED) as z:
+        for info in src.infolist():
+            if info.filename != "xl/worksheets/sheet1.xml":
+                z.writestr(info.filename, src.read(info.filename))
+                continue
+            with z.open(info.filename, "w", force_zip64=True) as fh:
+                fh.write(b'<?xml version="1.0" encoding="UTF-8"?><worksheet xmlns="http://schemas.openxmlformats.org/'
+                         b'spreadsheetml/2006/main"><sheetData>')
+                fh.write(row(1, cols))
+                for start in range(0, rows, 50_000):
+                    fh.write(b"".join(row(i + 2, [f"F-{i}", "fopdt", 1, 10, 1, 0.5, 10, "reverse"])
+                                      for i in range(start, min(start + 50_000, rows))))
+                fh.write(b"</sheetData></worksheet>")
+    inflated = sum(i.file_size for i in zipfile.ZipFile(path).infolist())
+    print(f"  huge.xlsx: {rows:,} rows, {path.stat().st_size / 1024 ** 2:.0f} MiB on disk, "
+          f"{inflated / 1024 ** 2:.0f} MiB inflated")
+    return ["check", str(path)]
+
+
 def fifo_record(folder: Path) -> list[str]:
     """A named pipe with no writer, named as a record."""
     path = folder / "pipe.csv"
@@ -120,6 +161,8 @@ CASES = {
     "bomb_xlsx": (bomb_xlsx, "4 GiB"),
     "long_record": (long_record, "4.6 GiB"),
     "huge_inventory": (huge_inventory, "killed at 300 s with 5.7 GiB"),
+    "huge_xlsx": (huge_xlsx, "-"),
+    "huge_xlsx_200k": (lambda f: huge_xlsx(f, 200_000), "-"),
     "fifo_record": (fifo_record, "hung for ever"),
     "fifo_inventory": (fifo_inventory, "hung for ever"),
     "long_cell": (long_cell, "-"),
@@ -140,6 +183,7 @@ def run_case(name: str, folder: Path, timeout: float = 600) -> dict:
     lines = proc.stderr.strip().splitlines()
     stats = json.loads(lines[-1]) if lines and lines[-1].startswith("{") else {}
     message = next((ln for ln in lines if ln.startswith(("plant-audit", "Error"))), "")
+    message = message or next((ln for ln in proc.stdout.splitlines() if "error" in ln), "")
     return {"case": name, "code": stats.get("code", proc.returncode), "seconds": wall,
             "peak_mib": stats.get("peak_mib", float("nan")), "message": message[:110], "before": before}
 

@@ -66,7 +66,7 @@ def test_readme_lists_every_limit():
 def test_too_many_rows_refused_while_streaming(tmp_path, monkeypatch):
     monkeypatch.setattr(inventory, "MAX_ROWS", 5)
     path = write_csv(tmp_path / "big.csv", [HEADER] + [good(f"F-{i}") for i in range(6)])
-    with pytest.raises(InventoryError, match=r"more than 5 loops \(row 7 is the 6th\).*split the inventory"):
+    with pytest.raises(InventoryError, match=r"more than 5 loops \(row 7 holds loop 6\).*split the inventory"):
         read_inventory(path)
     path = write_csv(tmp_path / "ok.csv", [HEADER] + [good(f"F-{i}") for i in range(5)])
     assert [r.tag for r in read_inventory(path).rows] == [f"F-{i}" for i in range(5)]
@@ -239,3 +239,9 @@ def test_record_cell_beyond_the_csv_field_limit(tmp_path):
     (tmp_path / "r.csv").write_text("time_s,value\n0,1\n1," + "9" * 200_000 + "\n")
     with pytest.raises(RecordError, match=r"r.csv line 3: not a readable CSV line"):
         read_record(tmp_path / "r.csv")
+
+
+def test_overlong_header_refused_naming_the_cell(tmp_path):
+    path = write_csv(tmp_path / "h.csv", [HEADER + ["n" * (MAX_CELL_CHARS + 1)], good("F-1") + ["x"]])
+    with pytest.raises(InventoryError, match=r"header I1: cell of 5,001 characters"):
+        read_inventory(path)
