@@ -208,12 +208,16 @@ def install(plan: OutputPlan) -> None:
             raise
         return
     plan.backup.mkdir()
-    # The old manifest goes first and the new one comes last: between, the folder is unmarked.
-    for name in sorted(plan.previous, key=lambda n: n != MANIFEST):
-        os.replace(out / name, plan.backup / name)
-    for name in sorted(os.listdir(stage), key=lambda n: n == MANIFEST):
-        os.replace(stage / name, out / name)
-        plan.installed.append(name)
+    try:
+        # The old manifest goes first and the new one comes last: between, the folder is unmarked.
+        for name in sorted(plan.previous, key=lambda n: n != MANIFEST):
+            os.replace(out / name, plan.backup / name)
+        for name in sorted(os.listdir(stage), key=lambda n: n == MANIFEST):
+            os.replace(stage / name, out / name)
+            plan.installed.append(name)
+    except BaseException:
+        roll_back(plan)  # the files moved so far go back
+        raise
     stage.rmdir()
 
 
@@ -223,7 +227,7 @@ def roll_back(plan: OutputPlan) -> None:
     Parameters
     ----------
     plan : OutputPlan
-        A plan whose :func:`install` completed.
+        A plan whose :func:`install` completed (in ``"merge"`` mode, also one that stopped part way).
     """
     out = plan.out
     if plan.mode == "new":
@@ -245,8 +249,9 @@ def roll_back(plan: OutputPlan) -> None:
             plan.backup = None
 
 
-def _clean(plan: OutputPlan) -> None:
-    for folder in (plan.stage, plan.backup):
+def _clean(plan: OutputPlan, succeeded: bool) -> None:
+    """Remove the staging folder; the kept previous outputs too, but only after a success."""
+    for folder in (plan.stage, plan.backup if succeeded else None):
         if folder is not None and folder.exists():
             shutil.rmtree(folder, ignore_errors=True)
 
@@ -323,9 +328,9 @@ def run_audit(inventory_path: str, options: AuditOptions, force: bool = False) -
     except BaseException:
         if installed:
             roll_back(plan)
-        _clean(plan)
+        _clean(plan, succeeded=False)  # a previous folder still aside (a failed undo) is left, never deleted
         raise
-    _clean(plan)
+    _clean(plan, succeeded=True)
     progress.close()
     return audit, {name: plan.out / path.name for name, path in staged.items()}
 

@@ -260,3 +260,29 @@ def test_no_history_leaves_none(tmp_path):
     assert main(["run", str(inv), "--out", str(tmp_path / "o"), "--no-history", "--quiet", "--no-pdf"]) == 1
     assert not (tmp_path / "audit-history.sqlite").exists()
     assert os.path.exists(tmp_path / "o" / "manifest.json")
+
+
+def test_move_failing_half_way_in_a_shared_folder_puts_everything_back(tmp_path, capsys, monkeypatch):
+    """Merge mode: the third file's move fails; the two already moved go back, the old ones return."""
+    inv = write_inventory(tmp_path / "loops.csv")
+    hist = tmp_path / "h" / "history.sqlite"
+    hist.parent.mkdir()
+    assert run(inv, tmp_path, hist, "--force", date="2026-03-01") == 1
+    before, hist_before = folder_state(tmp_path), history_state(hist)
+    real_replace, moved = os.replace, []
+
+    def flaky(src, dst):
+        if Path(src).parent.name.startswith(".") and ".partial-" in Path(src).parent.name:
+            moved.append(Path(dst).name)
+            if len(moved) == 3:
+                raise OSError(errno.EIO, "Input/output error", str(dst))
+        return real_replace(src, dst)
+
+    monkeypatch.setattr(os, "replace", flaky)
+    assert run(inv, tmp_path, hist, "--force") == 2
+    err = capsys.readouterr().err
+    assert "Input/output error" in err and "nothing was changed" in err
+    monkeypatch.undo()
+    assert folder_state(tmp_path) == before
+    assert history_state(hist) == hist_before
+    assert leftovers(tmp_path) == []
