@@ -561,6 +561,10 @@ _DAMAGE = (SyntaxError, ValueError, KeyError, IndexError, TypeError, OverflowErr
 """What openpyxl's sheet parser raises on a damaged sheet (its XML parse errors are SyntaxErrors)."""
 
 
+class DamagedSheet(InventoryError):
+    """A sheet whose XML cannot be parsed: the whole file is refused (a policy sheet too)."""
+
+
 def _damaged_guard(path: Path, sheet: str, read: Callable[[], "_Table"]) -> "_Table":
     """Run ``read``; a damaged sheet becomes a one-line InventoryError naming file and sheet."""
     try:
@@ -569,8 +573,8 @@ def _damaged_guard(path: Path, sheet: str, read: Callable[[], "_Table"]) -> "_Ta
         raise
     except _DAMAGE as exc:
         detail = " ".join(str(exc).split())[:160]
-        raise InventoryError(f"{path.name}: sheet '{sheet}' is damaged and cannot be read ({type(exc).__name__}: "
-                             f"{detail}); open and save it in a spreadsheet program, or restore a copy") from None
+        raise DamagedSheet(f"{path.name}: sheet '{sheet}' is damaged and cannot be read ({type(exc).__name__}: "
+                           f"{detail}); open and save it in a spreadsheet program, or restore a copy") from None
 
 
 def _find_sheet(names: list[str], wanted: str) -> str | None:
@@ -1299,6 +1303,8 @@ def read_inventory(path: str | Path) -> Inventory:
                 try:
                     ptable = _damaged_guard(p, pol, lambda: _read_xlsx_table(wb, pol, "setting", ""))
                     policy, policy_problems = _read_policy(ptable)
+                except DamagedSheet:
+                    raise
                 except InventoryError:
                     policy_problems = [Problem(pol, "A1", "", "no 'setting' header in the first 20 rows; "
                                                               "policy sheet ignored, defaults apply")]

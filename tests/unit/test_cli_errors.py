@@ -205,3 +205,23 @@ def test_inventory_a_folder_or_missing(capsys, tmp_path):
     one_line_exit_2(capsys, ["run", str(tmp_path / "none.xlsx"), "--out", str(tmp_path / "o"), *RUN],
                     "file not found")
     assert not (tmp_path / "o").exists()
+
+
+def test_damaged_policy_sheet_refuses_the_file_rather_than_using_defaults(capsys, tmp_path):
+    wb = Workbook()
+    ws = wb.active
+    ws.title = "loops"
+    for r in ROWS:
+        ws.append(r)
+    pol = wb.create_sheet("policy")
+    pol.append(["setting", "value"])
+    pol.append(["ms_max", 1.6])
+    good = tmp_path / "good.xlsx"
+    wb.save(good)
+    src = zipfile.ZipFile(good)
+    out = tmp_path / "policy_damaged.xlsx"
+    with zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as z:
+        for info in src.infolist():
+            data = src.read(info.filename)
+            z.writestr(info.filename, data[:-40] if info.filename == "xl/worksheets/sheet2.xml" else data)
+    one_line_exit_2(capsys, ["check", str(out)], "sheet 'policy' is damaged")
