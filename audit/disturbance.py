@@ -37,16 +37,19 @@ from __future__ import annotations
 
 import csv
 import datetime as _dt
+import io
+from array import array
 import math
 import sys
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Sequence
+from typing import Iterable, Sequence
 
 import numpy as np
 import pandas as pd
 from scipy.signal import fftconvolve, welch
 
+from .limits import MAX_RECORD_BYTES, MAX_RECORD_LINES, NotARegularFile, open_regular
 from .loop import LoopModel
 from .policy import Policy
 from .ranges import RECORD_INTERVAL, RECORD_VALUE
@@ -246,22 +249,76 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
         Naming the file, the line and the column of every problem (at most 20 shown).
     """
     shown = name or str(path)
-    try:
-        with open(path, newline="", encoding="utf-8-sig") as fh:
-            reader = csv.reader(fh)
-            try:
-                rows = list(reader)
-            except csv.Error as exc:   # e.g. a cell longer than the csv module's field limit
-                raise RecordError(f"{shown} line {reader.line_num}: {exc}") from None
-    except FileNotFoundError:
-        raise RecordError(f"{shown}: file not found") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise RecordError(f"{shown}: cannot be read as UTF-8 text ({type(exc).__name__})") from None
-    lines = [(i + 1, r) for i, r in enumerate(rows)
-             if any(c.strip() for c in r) and not r[0].lstrip().startswith("#")]
-    if not lines:
+    with _record_lines(path, shown) as lines:
+        return _read_lines(lines, shown, pv_lo, pv_hi, policy)
+
+
+class _record_lines:
+    """Context manager: the record's non-blank, non-comment lines as (line number, cells), streamed.
+
+    Only a regular file within ``MAX_RECORD_BYTES`` is opened (a FIFO or device is refused, not
+    read); more than ``MAX_RECORD_LINES`` lines, undecodable text or a malformed CSV line raise
+    RecordError naming the file and line.
+    """
+
+    def __init__(self, path: str | Path, shown: str) -> None:
+        self.path, self.shown = path, shown
+
+    def __enter__(self) -> Iterable[tuple[int, list[str]]]:
+        shown = self.shown
+        try:
+            raw = open_regular(self.path, MAX_RECORD_BYTES, "record", name=shown)
+        except FileNotFoundError:
+            raise RecordError(f"{shown}: file not found") from None
+        except NotARegularFile as exc:
+            raise RecordError(str(exc)) from None
+        except OSError as exc:
+            raise RecordError(f"{shown}: cannot be read ({exc.strerror or type(exc).__name__})") from None
+        self.fh = io.TextIOWrapper(raw, encoding="utf-8-sig", newline="")
+        return self._lines()
+
+    def _lines(self) -> Iterable[tuple[int, list[str]]]:
+        shown = self.shown
+        reader = csv.reader(self.fh)
+        n = 0
+        try:
+            for r in reader:
+                n = reader.line_num
+                if n > MAX_RECORD_LINES:
+                    raise RecordError(f"{shown}: more than {MAX_RECORD_LINES:,} lines; at most {MAX_RECORD_LINES:,} "
+                                      "are read (decimate the record or split it)")
+                if any(c.strip() for c in r) and not r[0].lstrip().startswith("#"):
+                    yield n, r
+        except UnicodeDecodeError as exc:
+            raise RecordError(f"{shown}: cannot be read as UTF-8 text ({type(exc).__name__})") from None
+        except csv.Error as exc:
+            raise RecordError(f"{shown} line {reader.line_num}: not a readable CSV line ({exc})") from None
+
+    def __exit__(self, *exc: object) -> None:
+        self.fh.close()
+
+
+class _Problems(list):
+    """A list of messages that keeps the first ``MAX_SHOWN + 1`` and counts all (``total``)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.total = 0
+
+    def append(self, message: str) -> None:
+        self.total += 1
+        if len(self) <= MAX_SHOWN:
+            super().append(message)
+
+
+def _read_lines(lines: Iterable[tuple[int, list[str]]], shown: str, pv_lo: float | None, pv_hi: float | None,
+                policy: Policy) -> Record:
+    """:func:`read_record` on the streamed lines of the record."""
+    lines = iter(lines)
+    first = next(lines, None)
+    if first is None:
         raise RecordError(f"{shown}: empty file; expected a header line such as 'time_s,value'")
-    hline, header = lines[0]
+    hline, header = first
     keys = [h.strip().lower() for h in header]
     tcols = [k for k in keys if k in TIME_COLUMNS]
     vcols = [k for k in keys if k in VALUE_COLUMNS]
@@ -277,14 +334,14 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
             raise RecordError(f"{shown}: column value_eu needs the row's pv_lo and pv_hi (pv_hi > pv_lo) "
                               f"to convert to % of range")
         notes.append(f"converted from engineering units with range {pv_lo:g} to {pv_hi:g}")
-    problems: list[str] = []
-    ts: list[float] = []
-    vs: list[float] = []
-    lnums: list[int] = []
+    problems = _Problems()
+    ts = array("d")   # compact while streaming: 8 bytes a sample
+    vs = array("d")
+    lnums = array("q")
     tz_seen: set[bool] = set()
     t0: _dt.datetime | None = None
     start = ""
-    for ln, row in lines[1:]:
+    for ln, row in lines:
         where = f"{shown} line {ln}"
         if len(row) <= max(ti, vi):
             problems.append(f"{where}: {len(row)} cells, expected {len(keys)}")
@@ -325,7 +382,7 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
         for k in np.flatnonzero(dts <= 0)[:MAX_SHOWN + 1]:
             problems.append(f"{shown} line {lnums[k + 1]} ({tname}): time not increasing "
                             f"({t[k + 1]:g} s after {t[k]:g} s, relative to the first sample)")
-    n_total = len(problems)
+    n_total = problems.total
     if not problems:
         if len(t) < policy.min_samples:
             problems.append(f"{shown}: {len(t)} sample{'s' if len(t) != 1 else ''}; "
@@ -338,7 +395,7 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
                 problems.append(f"{shown} lines {lnums[k]}-{lnums[k + 1]} ({tname}): gap of {dts[k]:g} s, "
                                 f"more than {policy.max_gap_s:g} x the median interval {med:g} s")
     if problems:
-        n_total = len(problems)
+        n_total = problems.total
         shown_p = problems[:MAX_SHOWN]
         more = f"; ... and {n_total - MAX_SHOWN} more" if n_total > MAX_SHOWN else ""
         raise RecordError("; ".join(shown_p) + more)
@@ -349,7 +406,11 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
     med = float(np.median(dts))
     jitter = float(np.max(np.abs(dts - med)) / med)
     if jitter > policy.uniform_tolerance:
-        n = int(math.floor(t[-1] / med + 1e-9)) + 1
+        span = t[-1] / med  # samples after resampling, less one [-]
+        if not span < MAX_RECORD_LINES:
+            raise RecordError(f"{shown}: resampling every {med:g} s over {t[-1]:g} s would give {span:.3g} "
+                              f"samples; at most {MAX_RECORD_LINES:,} are used (decimate the record)")
+        n = int(math.floor(span + 1e-9)) + 1
         tu = np.arange(n) * med
         v = np.interp(tu, t, v)
         notes.append(f"sampling not uniform (intervals {dts.min():g} to {dts.max():g} s); "
@@ -859,8 +920,15 @@ def disturbance_command(path: str, allowed: float, out: str | None = None) -> in
     print(f"trend           {an.trend:.4g} % of range per s (removed)")
     for note in an.notes:
         print(f"note            {note}")
+    from .output import FileRefused, write_file_safely
     try:
-        plot_spectrum(an, target, title=Path(path).name)
+        if target.exists() and target.resolve() == Path(path).resolve():
+            raise FileRefused(f"{target} is the record itself; give another --plot path")
+        write_file_safely(target, lambda tmp: plot_spectrum(an, tmp, title=Path(path).name), force=True,
+                          suffixes=(".svg",))
+    except FileRefused as exc:
+        print(f"plant-audit disturbance: {exc}", file=sys.stderr)
+        return 2
     except OSError as exc:
         print(f"plant-audit disturbance: cannot write {target}: {exc.strerror}", file=sys.stderr)
         return 2

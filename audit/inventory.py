@@ -36,6 +36,7 @@ import io
 import math
 import re
 import zipfile
+import zlib
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable, Iterable
@@ -43,6 +44,8 @@ from typing import Any, Callable, Iterable
 import numpy as np
 
 from . import units
+from .limits import MAX_CELL_CHARS, MAX_COLUMNS, MAX_INFLATED_BYTES, MAX_INVENTORY_BYTES, MAX_ROWS, NotARegularFile, \
+    read_regular
 from .policy import Policy
 from .ranges import POLICY_RANGES, ROW_RANGES, tf_problems
 from .rows import Inventory, LoopRow, Problem, printable, tag_key
@@ -319,7 +322,12 @@ def _is_blank(v: Any) -> bool:
 
 def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | None]]], key: str,
                  what: str) -> _Table:
-    """Find the header row (first of the first 20 rows with a ``key`` header) and collect the data."""
+    """Find the header row (first of the first 20 rows with a ``key`` header) and collect the data.
+
+    The limits of :mod:`audit.limits` apply while streaming: more than ``MAX_ROWS`` data rows, or a
+    non-blank cell right of column ``MAX_COLUMNS``, refuses the sheet at once; a cell longer than
+    ``MAX_CELL_CHARS`` is replaced by a marker that makes its row invalid.
+    """
     it = iter(rows)
     header_row, headers = 0, {}
     for rownum, values, _ in it:
@@ -327,7 +335,10 @@ def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | Non
             break
         if any(canonical_header(v) == key or (isinstance(v, str) and _norm(v) == key) for v in values):
             header_row = rownum
-            headers = {i + 1: v for i, v in enumerate(values) if not _is_blank(v)}
+            headers = _capped(sheet, rownum, values)
+            for col, h in headers.items():
+                if isinstance(h, Unreadable):
+                    raise InventoryError(f"sheet '{sheet}' header {_col_letter(col)}{rownum}: {h.message}")
             break
     if not header_row:
         raise InventoryError(f"sheet '{sheet}' has no '{key}' header in its first 20 rows; {what}")
@@ -335,14 +346,33 @@ def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | Non
     blank = 0
     prev = header_row
     for rownum, values, formats in it:
-        vals = {i + 1: v for i, v in enumerate(values) if not _is_blank(v)}
+        vals = _capped(sheet, rownum, values)
         if not vals:
             continue
+        if len(data) >= MAX_ROWS:
+            raise InventoryError(f"sheet '{sheet}' has more than {MAX_ROWS:,} loops (row {rownum} holds loop "
+                                 f"{MAX_ROWS + 1:,}); at most {MAX_ROWS:,} are read: split the inventory, "
+                                 "e.g. by area")
         blank += rownum - prev - 1
         prev = rownum
         fmts = {c: formats[c - 1] for c in vals if c - 1 < len(formats) and formats[c - 1]}
         data.append((rownum, vals, fmts))
     return _Table(sheet, header_row, headers, data, blank)
+
+
+def _capped(sheet: str, rownum: int, values: list[Any]) -> dict[int, Any]:
+    """The non-blank cells of one row by column (1-based), within the column and cell-length limits."""
+    vals: dict[int, Any] = {}
+    for i, v in enumerate(values):
+        if _is_blank(v):
+            continue
+        if i >= MAX_COLUMNS:
+            raise InventoryError(f"sheet '{sheet}' cell {_col_letter(i + 1)}{rownum} is right of column "
+                                 f"{_col_letter(MAX_COLUMNS)}; at most {MAX_COLUMNS} columns are read")
+        if isinstance(v, str) and len(v) > MAX_CELL_CHARS:
+            v = Unreadable(f"cell of {len(v):,} characters; at most {MAX_CELL_CHARS:,} are read")
+        vals[i + 1] = v
+    return vals
 
 
 def _xlsx_rows(ws) -> Iterable[tuple[int, list[Any], list[str | None]]]:
@@ -368,9 +398,13 @@ def _xlsx_rows(ws) -> Iterable[tuple[int, list[Any], list[str | None]]]:
         parser = WorkSheetParser(src, ws._shared_strings, data_only=True, epoch=wb.epoch,
                                  date_formats=wb._date_formats, timedelta_formats=wb._timedelta_formats)
         for rownum, cells in parser.parse():
+            cells = [c for c in cells if not _is_blank(c["value"])]  # styled empty cells carry nothing
             if not cells:
                 continue
             width = max(c["column"] for c in cells)
+            if width > MAX_COLUMNS:
+                raise InventoryError(f"sheet '{ws.title}' cell {_col_letter(width)}{rownum} is right of column "
+                                     f"{_col_letter(MAX_COLUMNS)}; at most {MAX_COLUMNS} columns are read")
             values: list[Any] = [None] * width
             formats: list[str | None] = [None] * width
             for c in cells:
@@ -428,8 +462,8 @@ def _uncomputed_formulas(xml: bytes) -> set[tuple[int, int]]:
 
 def _read_xlsx_table(wb_values, sheet_name: str, key: str, what: str) -> _Table:
     ws = wb_values[sheet_name]
+    table = _build_table(sheet_name, _xlsx_rows(ws), key, what)  # streamed first: the row limit refuses early
     xml = _sheet_xml(wb_values, ws)
-    table = _build_table(sheet_name, _xlsx_rows(ws), key, what)
     for m in _MERGE.finditer(xml):
         c0, r0 = _col_index(m.group(1)), int(m.group(2))
         c1, r1 = (_col_index(m.group(3)), int(m.group(4))) if m.group(3) else (c0, r0)
@@ -464,21 +498,28 @@ def _sniff_csv(text: str) -> str:
 
 
 def _read_csv_table(path: Path, data: bytes) -> _Table:
+    text = None
     for enc in ("utf-8-sig", "cp1252"):
         try:
             text = data.decode(enc)
             break
         except UnicodeDecodeError:
             continue
+    if text is None:
+        raise InventoryError(f"{path.name}: not readable as text (neither UTF-8 nor Windows-1252); "
+                             "save it as 'CSV UTF-8' and read that")
     if "\x00" in text:
         raise InventoryError(f"{path.name}: not a text CSV file (it contains binary data)")
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=_sniff_csv(text))
 
     def rows():
         start = 1
-        for values in reader:
-            yield start, values, [None] * len(values)
-            start = reader.line_num + 1
+        try:
+            for values in reader:
+                yield start, values, [None] * len(values)
+                start = reader.line_num + 1
+        except csv.Error as exc:
+            raise InventoryError(f"{path.name} line {reader.line_num}: not a readable CSV line ({exc})") from None
 
     return _build_table(path.stem, rows(), "tag", "the first line must name the columns, one of them 'tag'")
 
@@ -509,11 +550,38 @@ def _open_workbook(path: Path, data: bytes):
         raise InventoryError(f"{path.name} is an OpenDocument spreadsheet; save it as .xlsx and read that")
     if "xl/workbook.xml" not in names:
         raise InventoryError(f"{path.name} is a zip file but not an .xlsx workbook")
+    # Python's zipfile never inflates a part past the size its directory entry states (a part
+    # whose data inflates further fails its check as damaged), so the stated sizes bound the total.
+    inflated = sum(i.file_size for i in zf.infolist())
+    if inflated > MAX_INFLATED_BYTES:
+        raise InventoryError(f"{path.name} would inflate to {inflated / 1024 ** 2:,.0f} MiB once decompressed; "
+                             f"a workbook may hold at most {MAX_INFLATED_BYTES // 1024 ** 2:,} MiB: refused")
     from openpyxl import load_workbook
     try:
         return load_workbook(io.BytesIO(data), read_only=True, data_only=True)
     except Exception as exc:  # openpyxl raises many types on damaged files
         raise InventoryError(f"{path.name} cannot be opened as a workbook ({type(exc).__name__}: {exc})") from None
+
+
+_DAMAGE = (SyntaxError, ValueError, KeyError, IndexError, TypeError, OverflowError, EOFError, zipfile.BadZipFile,
+           zlib.error)
+"""What openpyxl's sheet parser raises on a damaged sheet (its XML parse errors are SyntaxErrors)."""
+
+
+class DamagedSheet(InventoryError):
+    """A sheet whose XML cannot be parsed: the whole file is refused (a policy sheet too)."""
+
+
+def _damaged_guard(path: Path, sheet: str, read: Callable[[], "_Table"]) -> "_Table":
+    """Run ``read``; a damaged sheet becomes a one-line InventoryError naming file and sheet."""
+    try:
+        return read()
+    except InventoryError:
+        raise
+    except _DAMAGE as exc:
+        detail = " ".join(str(exc).split())[:160]
+        raise DamagedSheet(f"{path.name}: sheet '{sheet}' is damaged and cannot be read ({type(exc).__name__}: "
+                           f"{detail}); open and save it in a spreadsheet program, or restore a copy") from None
 
 
 def _find_sheet(names: list[str], wanted: str) -> str | None:
@@ -532,16 +600,25 @@ _XL_ERRORS = ("#DIV/0!", "#N/A", "#NAME?", "#NULL!", "#NUM!", "#REF!", "#VALUE!"
               "#CALC!")
 
 
-class _Uncomputed:
-    """Marks a formula cell whose value was never computed."""
+class Unreadable:
+    """Marks a cell the reader cannot take at face value; ``message`` says why (an error on its row).
+
+    Parameters
+    ----------
+    message : str
+        The problem, as shown against the cell.
+    """
+
+    def __init__(self, message: str) -> None:
+        self.message = message
 
     def __repr__(self) -> str:
-        return "<formula without a value>"
+        return f"<{self.message}>"
 
 
-UNCOMPUTED = _Uncomputed()
 _UNCOMPUTED_MSG = ("formula without a computed value (the workbook was written by a program and never "
                    "recalculated); open it in a spreadsheet program, save it once, and read it again")
+UNCOMPUTED = Unreadable(_UNCOMPUTED_MSG)
 
 
 class _Bad(Exception):
@@ -614,7 +691,7 @@ def _json_value(v: Any) -> Any:
 
 
 def _plain(v: Any) -> Any:
-    return None if v is UNCOMPUTED else v
+    return None if isinstance(v, Unreadable) else v
 
 
 def _text(v: Any) -> str:
@@ -680,8 +757,8 @@ class _RowCheck:
     def raw(self, name: str) -> tuple[int, Any] | tuple[None, None]:
         g = self.given(name)
         for c, v in g:
-            if v is UNCOMPUTED:
-                self.err(name, _UNCOMPUTED_MSG, c)
+            if isinstance(v, Unreadable):
+                self.err(name, v.message, c)
                 return None, None
         if len(g) > 1 and len({_json_value(v) for _, v in g}) > 1:
             self.err(name, f"column {name} appears twice with different values "
@@ -856,8 +933,8 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
                     c0)
     only_formulas = bool(vals) and all(v is UNCOMPUTED for v in vals.values())
     for c, v in vals.items():
-        if v is UNCOMPUTED and c not in name_of:
-            chk.err("", _UNCOMPUTED_MSG, c)
+        if isinstance(v, Unreadable) and c not in name_of:
+            chk.err("", v.message, c)
     for c, base in unitless.items():
         if c in vals:
             chk.err("", f"column '{base}' needs its unit in the header: use one of "
@@ -1313,7 +1390,14 @@ def read_inventory(path: str | Path) -> Inventory:
         raise InventoryError(f"{p}: file not found")
     if p.is_dir():
         raise InventoryError(f"{p} is a folder; give the inventory workbook (.xlsx) or CSV file")
-    data = p.read_bytes()
+    try:
+        data = read_regular(p, MAX_INVENTORY_BYTES, "inventory")
+    except NotARegularFile as exc:
+        raise InventoryError(str(exc)) from None
+    except FileNotFoundError:
+        raise InventoryError(f"{p}: file not found") from None
+    except OSError as exc:
+        raise InventoryError(f"{p}: cannot be read ({exc.strerror or exc})") from None
     if not data:
         raise InventoryError(f"{p.name} is empty")
     sha = hashlib.sha256(data).hexdigest()
@@ -1331,13 +1415,15 @@ def read_inventory(path: str | Path) -> Inventory:
             loops = _find_sheet(list(sheets), "loops")
             if loops is None:
                 raise InventoryError(f"{p.name} has no 'loops' sheet; sheets found: {', '.join(sheets) or 'none'}")
-            table = _read_xlsx_table(wb, loops, "tag",
-                                     "the header row must name the columns, one of them 'tag'")
+            table = _damaged_guard(p, loops, lambda: _read_xlsx_table(
+                wb, loops, "tag", "the header row must name the columns, one of them 'tag'"))
             pol = _find_sheet(list(sheets), "policy")
             if pol is not None:
                 try:
-                    ptable = _read_xlsx_table(wb, pol, "setting", "")
+                    ptable = _damaged_guard(p, pol, lambda: _read_xlsx_table(wb, pol, "setting", ""))
                     policy, policy_problems = _read_policy(ptable)
+                except DamagedSheet:
+                    raise
                 except InventoryError:
                     policy_problems = [Problem(pol, "A1", "", "no 'setting' header in the first 20 rows; "
                                                               "policy sheet ignored, defaults apply")]
