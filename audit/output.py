@@ -137,11 +137,13 @@ def write_csv(path: Path, results: pd.DataFrame, columns: list[str]) -> None:
     results : pandas.DataFrame
         The results table, one row per inventory row.
     columns : list of str
-        Columns to write, in order (see :func:`output_columns`); the header row.
+        Columns to write, in order (see :func:`output_columns`); the header row. A header
+        that could be read as a formula is neutralised like any cell (the inventory's reader
+        already renames such headers; this writer does not rely on it).
     """
     with open(path, "w", newline="", encoding="utf-8") as fh:
         wr = csv.writer(fh)
-        wr.writerow(columns)
+        wr.writerow([neutralise_formula(str(c)) for c in columns])
         for rec in results[columns].itertuples(index=False, name=None):
             wr.writerow([csv_cell(v) for v in rec])
 

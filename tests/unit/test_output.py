@@ -55,3 +55,17 @@ def test_json_is_strict(tmp_path):
     assert doc["loops"][0]["gm"] == "inf" and doc["loops"][0]["gm_low"] is None
     assert doc["loops"][1]["rhp_closed"] is None and doc["policy"]["ms_max"] == 2.0
     assert [r["row"] for r in doc["loops"]] == [2, 3]
+
+
+def test_csv_formula_like_headers_neutralised(tmp_path):
+    """The writer does not trust the reader to have renamed formula-like headers: a header starting
+    with = + - @ gets the same leading apostrophe as a cell (OWASP, CSV Injection; common practice)."""
+    df = _frame().rename(columns={"owner": "=HYPERLINK(\"http://x\")"})
+    df["@sum(A1)"] = ["a", "b"]
+    cols = output_columns(df, ("=HYPERLINK(\"http://x\")", "@sum(A1)"))
+    write_csv(tmp_path / "r.csv", df, cols)
+    with open(tmp_path / "r.csv", encoding="utf-8", newline="") as fh:
+        header, first, _ = list(csv.reader(fh))
+    assert header[-2:] == ["'=HYPERLINK(\"http://x\")", "'@sum(A1)"]
+    assert not any(h.startswith(("=", "+", "-", "@")) for h in header)
+    assert header[:2] == ["row", "tag"] and first[-2:] == ["'-ops", "a"]  # known headers and cells as before

@@ -81,3 +81,16 @@ def test_work_list_and_invalid_rows(book):
 ])
 def test_cell_values(value, expected):
     assert cell_value(value) == expected
+
+
+def test_formula_like_header_is_a_text_cell(tmp_path):
+    """A formula-like column header that reached the results (the reader renames them; the writer
+    does not rely on it) is stored as a quote-prefixed text cell, never a formula (OWASP, CSV
+    Injection; common practice)."""
+    audit = make_audit(tmp_path)
+    audit.results["=1+2"] = "x"
+    audit.results["+cmd|' /C calc'!A0"] = "y"
+    path = write_results_xlsx(audit, build_report(audit, plot_limit=0), tmp_path / "results.xlsx")
+    header = {c.value: c for c in next(openpyxl.load_workbook(path)["loops"].iter_rows(max_row=1))}
+    for name in ("=1+2", "+cmd|' /C calc'!A0"):
+        assert header[name].data_type == "s" and header[name].quotePrefix, name
