@@ -560,7 +560,12 @@ def add_cascade_checks(audit) -> None:
         if not links.ok(i):
             continue
         inner_tag = rows[j].tag or f"row {rows[j].excel_row}"
-        pc = check_pair(res.iloc[i], res.iloc[j], inner_tag, ratio_min, marginal_pct)
+        try:
+            pc = check_pair(res.iloc[i], res.iloc[j], inner_tag, ratio_min, marginal_pct)
+        except Exception as exc:  # noqa: BLE001 - one pair's fault: marked on its outer row, the others go on
+            from .faults import row_fault
+            row_fault(audit, "cascade", i, exc)
+            continue
         basis[i], ratio[i], ok[i] = pc.basis, pc.ratio, pc.ok
         if pc.findings:
             old = res.at[i, "findings"]

@@ -5,7 +5,8 @@ Exit codes of ``run``: 0 every loop passes (marginal included), 1 any loop is
 unstable, fails or is invalid, 2 a mistake the user can fix: the inventory, an
 option, the output folder or the history cannot be used (one line, no traceback;
 nothing is changed), 3 an internal fault of the tool (a bug: one line, details with
-``PLANT_AUDIT_DEBUG=1``).
+``PLANT_AUDIT_DEBUG=1``; a fault inside a stage is contained: every row is still written, with
+the traceback in ``fault.log`` of the output folder, and the audit is not recorded in the history).
 """
 
 from __future__ import annotations
@@ -122,6 +123,13 @@ def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, j
         click.echo(f"{len(audit.results)} loops: {summary}")
         for name, path in written.items():
             click.echo(f"  {name}: {path}")
+    faults = audit.extras.get("faults")
+    if faults:  # contained internal faults: outputs written, results incomplete, not in the history
+        stages = ", ".join(dict.fromkeys(f.stage for f in faults if not f.skipped))
+        log = written.get("fault.log", Path(out_dir) / "fault.log")
+        click.echo(f"plant-audit: internal fault in stage {stages} ({faults[0].error}): the results are incomplete "
+                   f"and were not recorded in the history; details in {log}; please report it", err=True)
+        raise SystemExit(3)
     bad = audit.results["status"].isin(["unstable", "fails", "invalid"]).any()
     raise SystemExit(1 if bad else 0)
 

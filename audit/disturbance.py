@@ -725,39 +725,44 @@ def analyse_records(audit) -> None:
     for row in inv.rows:
         if not row.disturbance_file:
             continue
-        label = res.index[row.index]
         try:
-            full, shown = _confined(folder, row.disturbance_file)
-            rec = read_record(full, row.pv_lo, row.pv_hi, policy, name=shown)
-        except RecordError as exc:
-            msg = f"disturbance record: {exc}"
-            res.at[label, "dist_note"] = msg
-            _append(res, label, "message", msg)
-            unjudged[row.index] = msg
-            continue
-        an = analyse_record(rec, row.allowed_amplitude, policy)
-        if an.unusable:
-            msg = f"disturbance record {rec.name}: {an.unusable}"
-            res.at[label, "dist_note"] = "; ".join(list(an.notes[:-1]) + [msg])
-            _append(res, label, "message", msg)
-            unjudged[row.index] = msg
-            continue
-        store[row.index] = an
-        notes = list(an.notes)
-        if row.band_rad_s is not None or row.attenuation_db is not None:
-            notes.append("the row's band_rad_s/attenuation_db govern; derived values shown for comparison")
-        elif an.needs_attenuation and np.isfinite(an.band_rad_s) and np.isfinite(an.attenuation_db):
-            # no requirement on the row: the record's derived requirement is the one in force
-            res.at[label, "band_rad_s"] = an.band_rad_s
-            res.at[label, "attenuation_db"] = an.attenuation_db
-            notes.append("the requirement derived from the record is in force (band_rad_s, attenuation_db)")
-        res.at[label, "dist_band_rad_s"] = an.band_rad_s
-        res.at[label, "dist_attenuation_db"] = an.attenuation_db
-        res.at[label, "dist_amplitude"] = an.amplitude
-        res.at[label, "dist_std"] = an.std
-        res.at[label, "dist_peak"] = an.peak
-        res.at[label, "dist_trend_per_s"] = an.trend
-        res.at[label, "dist_note"] = "; ".join(notes)
+            label = res.index[row.index]
+            try:
+                full, shown = _confined(folder, row.disturbance_file)
+                rec = read_record(full, row.pv_lo, row.pv_hi, policy, name=shown)
+            except RecordError as exc:
+                msg = f"disturbance record: {exc}"
+                res.at[label, "dist_note"] = msg
+                _append(res, label, "message", msg)
+                unjudged[row.index] = msg
+                continue
+            an = analyse_record(rec, row.allowed_amplitude, policy)
+            if an.unusable:
+                msg = f"disturbance record {rec.name}: {an.unusable}"
+                res.at[label, "dist_note"] = "; ".join(list(an.notes[:-1]) + [msg])
+                _append(res, label, "message", msg)
+                unjudged[row.index] = msg
+                continue
+            store[row.index] = an
+            notes = list(an.notes)
+            if row.band_rad_s is not None or row.attenuation_db is not None:
+                notes.append("the row's band_rad_s/attenuation_db govern; derived values shown for comparison")
+            elif an.needs_attenuation and np.isfinite(an.band_rad_s) and np.isfinite(an.attenuation_db):
+                # no requirement on the row: the record's derived requirement is the one in force
+                res.at[label, "band_rad_s"] = an.band_rad_s
+                res.at[label, "attenuation_db"] = an.attenuation_db
+                notes.append("the requirement derived from the record is in force (band_rad_s, attenuation_db)")
+            res.at[label, "dist_band_rad_s"] = an.band_rad_s
+            res.at[label, "dist_attenuation_db"] = an.attenuation_db
+            res.at[label, "dist_amplitude"] = an.amplitude
+            res.at[label, "dist_std"] = an.std
+            res.at[label, "dist_peak"] = an.peak
+            res.at[label, "dist_trend_per_s"] = an.trend
+            res.at[label, "dist_note"] = "; ".join(notes)
+        except Exception as exc:  # noqa: BLE001 - one row's fault: marked on its row, the others go on
+            from .faults import row_fault
+            store.pop(row.index, None)
+            row_fault(audit, "records", row.index, exc)
 
 
 def judge_unusable_records(audit) -> None:
@@ -828,8 +833,20 @@ def add_residuals(audit) -> None:
         allowed.append(row.allowed_amplitude)
     if not rows:
         return
-    out = _residuals(models, analyses, allowed)
+    try:
+        out = _residuals(models, analyses, allowed)
+    except Exception:  # noqa: BLE001 - one row's fault must not cost the others: each alone
+        from .faults import row_fault
+        out = []
+        for row, m, an, a in zip(rows, models, analyses, allowed):
+            try:
+                out.append(_residuals([m], [an], [a])[0])
+            except Exception as exc:  # noqa: BLE001 - marked on its row
+                row_fault(audit, "residuals", row.index, exc)
+                out.append(None)
     for row, r in zip(rows, out):
+        if r is None:
+            continue
         label = res.index[row.index]
         store[row.index] = r
         res.at[label, "residual_amplitude"] = r.residual_amplitude

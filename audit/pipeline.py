@@ -228,25 +228,29 @@ STAGES: tuple[tuple[str, str, str], ...] = (
 
 
 def run_stages(audit: "Audit", progress: Callable[[str], None] | None = None) -> None:
-    """Run every stage in order, timing each.
+    """Run every stage in order, timing each; a fault of one stage is contained (:mod:`audit.faults`).
 
     Parameters
     ----------
     audit : Audit
         The run (from :func:`new_audit`); each stage adds to it in place, and the
-        stage's wall time [s] goes into ``audit.timings``.
+        stage's wall time [s] goes into ``audit.timings``. Faults go to ``audit.extras['faults']``.
     progress : callable or None
         Called with each stage's name before the stage runs; nothing when None.
     """
     import importlib
     import time
 
+    from .faults import finish, run_contained
+
+    done: list[str] = []
     for name, mod, fn in STAGES:
         if progress:
             progress(name)
         t0 = time.perf_counter()
-        getattr(importlib.import_module(mod), fn)(audit)
+        run_contained(audit, name, getattr(importlib.import_module(mod), fn), done)
         audit.timings[name] = time.perf_counter() - t0
+    finish(audit)
 
 
 def new_audit(inv: Inventory, options: AuditOptions) -> Audit:

@@ -10,6 +10,9 @@ Order of the end, so that a failed run changes neither the history nor a previou
 4. the staging folder is moved into place; the previous output folder is kept aside until
 5. the audit is recorded in the history (one transaction); if that fails, the previous
    output folder is put back; if it succeeds, the previous one is deleted.
+
+A run with an internal fault (:mod:`audit.faults`) writes its outputs and ``fault.log`` but is
+not recorded in the history: its results are incomplete.
 """
 
 from __future__ import annotations
@@ -28,7 +31,7 @@ from .cli import UserError
 from .output import output_columns, write_csv, write_json
 from .pipeline import STAGES, Audit, AuditOptions, new_audit, run_stages
 
-OUTPUT_NAMES = ("results.csv", "results.json", "report.html", "report.pdf", "results.xlsx")
+OUTPUT_NAMES = ("results.csv", "results.json", "report.html", "report.pdf", "results.xlsx", "fault.log")
 """Every file a run may write into the output folder, besides the manifest."""
 
 MANIFEST = "manifest.json"
@@ -302,7 +305,8 @@ def run_audit(inventory_path: str, options: AuditOptions, force: bool = False) -
         progress("write")
         t0 = time.perf_counter()
         pending = None
-        if options.record_history:
+        if options.record_history and not audit.extras.get("faults"):
+            # an audit with an internal fault is incomplete: written, never recorded
             # compared now (the report shows what changed), recorded only once the outputs are in place
             from .history import prepare_history
             pending = prepare_history(audit)
@@ -355,6 +359,9 @@ def write_outputs(audit: Audit, folder: str | Path | None = None) -> dict[str, P
     out.mkdir(parents=True, exist_ok=True)
     cols = output_columns(audit.results, audit.inventory.extra_columns)
     written = {}
+    if audit.extras.get("faults"):
+        from .faults import FAULT_LOG, write_fault_log
+        written[FAULT_LOG] = write_fault_log(audit, out)   # first: whatever fails later, the log is there
     write_csv(out / "results.csv", audit.results, cols)
     written["results.csv"] = out / "results.csv"
     write_json(out / "results.json", audit.results, cols, audit.meta)

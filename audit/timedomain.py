@@ -1235,6 +1235,19 @@ def step_traces(model: LoopModel, kind: str, t_end: float | None = None) -> Trac
     return tr
 
 
+def _steps_one_by_one(audit, stable) -> pd.DataFrame:
+    """Step figures loop by loop (after a fault of the batch): a loop that raises is marked on its row."""
+    from .faults import row_fault
+    parts = []
+    for i, m in enumerate(audit.models):
+        try:
+            parts.append(step_figures([m], audit.inventory.policy, None if stable is None else [stable[i]]))
+        except Exception as exc:  # noqa: BLE001 - marked on its row, its figures blank
+            row_fault(audit, "steps", i, exc)
+            parts.append(step_figures([None], audit.inventory.policy))
+    return pd.concat(parts, ignore_index=True) if parts else step_figures([], audit.inventory.policy)
+
+
 def add_step_results(audit) -> None:
     """Pipeline stage: add :data:`STEP_COLUMNS` to ``audit.results`` (rows with a model).
 
@@ -1251,7 +1264,10 @@ def add_step_results(audit) -> None:
     if "stable" in res.columns:
         stable = [None if pd.isna(v) else bool(v) for v in res["stable"].tolist()]
     from .parallel import step_figures_parallel
-    figs = step_figures_parallel(audit.models, audit.inventory.policy, stable, getattr(audit.options, "jobs", 1))
+    try:
+        figs = step_figures_parallel(audit.models, audit.inventory.policy, stable, getattr(audit.options, "jobs", 1))
+    except Exception:  # noqa: BLE001 - one loop's fault must not cost the others: each loop alone
+        figs = _steps_one_by_one(audit, stable)
     for c in STEP_COLUMNS:
         col = figs[c].to_numpy()
         res[c] = pd.Series(col, index=res.index, dtype=object if c == "step_note" else float)

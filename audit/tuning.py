@@ -1681,6 +1681,22 @@ def proposal_record(p: Proposal | None) -> dict[str, Any]:
     return rec
 
 
+def _propose_contained(audit, items, batch: list[int], policy: Policy) -> list[Proposal | None]:
+    """:func:`propose_many`; after a fault of the batch, loop by loop (None for a loop that raises)."""
+    try:
+        return propose_many(items, policy)
+    except Exception:  # noqa: BLE001 - one loop's fault must not cost the others
+        from .faults import row_fault
+        got: list[Proposal | None] = []
+        for item, i in zip(items, batch):
+            try:
+                got.append(propose_many([item], policy)[0])
+            except Exception as exc:  # noqa: BLE001 - marked on its row
+                row_fault(audit, "proposals", i, exc)
+                got.append(None)
+        return got
+
+
 def add_proposals(audit) -> None:
     """Pipeline stage: a proposal and a verdict for every row.
 
@@ -1736,7 +1752,10 @@ def add_proposals(audit) -> None:
                 if j is not None and i in composed and j in proposed_models:
                     m = compose(m, proposed_models[j])
                 items.append((m, rows[i], res.iloc[i]))
-            for (m, _, _), i, p in zip(items, batch, propose_many(items, policy)):
+            for (m, _, _), i, p in zip(items, batch, _propose_contained(audit, items, batch, policy)):
+                if p is None:   # an internal fault of this loop: no proposal, said on its row
+                    out[i] = Proposal("", note="no proposal: internal fault (see findings)")
+                    continue
                 out[i] = p
                 if p.settings is not None:
                     proposed_models[i] = m.with_controller(p.settings.controller())
