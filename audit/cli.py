@@ -120,6 +120,8 @@ def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, j
     if not quiet:
         counts = audit.results["status"].value_counts()
         summary = ", ".join(f"{counts.get(s, 0)} {s}" for s in ("passes", "marginal", "fails", "unstable", "invalid"))
+        if counts.get("not evaluated", 0):   # only after an internal fault
+            summary += f", {counts['not evaluated']} not evaluated"
         click.echo(f"{len(audit.results)} loops: {summary}")
         for name, path in written.items():
             click.echo(f"  {name}: {path}")

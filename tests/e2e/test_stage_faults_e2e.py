@@ -211,3 +211,15 @@ def test_one_row_that_raises_in_each_row_wise_stage(baseline, tmp_path, monkeypa
         # loop by loop after a batch fault: the same simulation, rounding may differ in the last digits
         for c in ("ms", "load_iae_s", "proposal_kc", "proposal_ti_s", "dist_amplitude"):
             assert (r[c] == b[c] == "") or math.isclose(num(r[c]), num(b[c]), rel_tol=1e-9), (r["tag"], c, r[c], b[c])
+
+
+def test_summary_counts_rows_not_evaluated(small, monkeypatch, capsys):
+    """Without --quiet the summary line counts the rows a fault left unjudged; still no traceback."""
+    inv, out, hist, _ = small
+    import audit.pipeline as pipeline
+    monkeypatch.setattr(pipeline, "evaluate_frequency", boom)
+    capsys.readouterr()
+    code = main(["run", str(inv), "--out", str(out), "--history", str(hist), "--no-pdf", "--date", "2026-03-02"])
+    got = capsys.readouterr()
+    assert code == 3 and "4 loops: 0 passes, 0 marginal, 0 fails, 0 unstable, 1 invalid, 3 not evaluated" in got.out
+    assert "Traceback" not in got.err and "internal fault in stage evaluate" in got.err
