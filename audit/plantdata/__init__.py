@@ -1,0 +1,1 @@
+"""Plant data: records, identification and loop health from routine operation."""
