@@ -29,7 +29,7 @@ class Column:
     name: str
     unit: str
     meaning: str
-    stage: str  # inventory | frequency | time | disturbance | proposal | priority | cascade
+    stage: str  # inventory | frequency | time | disturbance | proposal | priority | cascade | health
 
 
 C = Column
@@ -72,7 +72,8 @@ RESULT_COLUMNS: tuple[Column, ...] = (
     C("cascade_ratio", "-", "Inner-loop frequency over outer-loop frequency (wb_rad_s, else wc_rad_s), outer "
                             "loop evaluated with its inner loop inside.", "cascade"),
     C("cascade_ok", "-", "True when cascade_ratio >= policy cascade_ratio_min; blank when not checked.", "cascade"),
-    C("verdict", "-", "retune, not achievable by tuning, no change needed, check model or not evaluated.", "proposal"),
+    C("verdict", "-", "retune, not achievable by tuning, no change needed, check model, not evaluated, or check "
+                      "the valve first (a retune verdict of a loop whose valve is suspected sticking).", "proposal"),
     C("proposal_method", "-", "Which candidate is recommended, e.g. 'SIMC PI, tau_c = theta', 'AMIGO PID', "
                               "'max-ki PI at Ms <= 2'.", "proposal"),
     C("proposal_form", "-", "Controller form of the proposal (the row's, or ideal when no series form exists).", "proposal"),
@@ -97,7 +98,9 @@ RESULT_COLUMNS: tuple[Column, ...] = (
     C("priority_score", "-", "Priority: severity points + 30 x criticality weight + 60 x feasibility x benefit "
                              "(README, 'Priority').", "priority"),
     C("rank", "-", "Place on the work list, 1 = most urgent; blank when no action is needed.", "priority"),
-    C("action", "-", "retune, check the model or the valve, structural change, or fix the inventory row.", "priority"),
+    C("action", "-", "retune, check the model or the valve, structural change, fix the inventory row, return the "
+                     "loop to automatic, check the valve: suspected sticking, retuning will not cure it, or check "
+                     "valve sizing or range.", "priority"),
     C("reason", "-", "Why the loop is on the work list, in a few words.", "priority"),
     C("expected_improvement", "-", "Predicted change if the action is taken.", "priority"),
     C("load_iae_s", "s", "Integral of |e| after a unit load step (1 % of output) at the process input, "
@@ -137,6 +140,38 @@ RESULT_COLUMNS: tuple[Column, ...] = (
     C("residual_std_freq", "% of range", "sqrt(integral of the record's spectrum x |S(jw)|^2): the same "
                                          "standard deviation predicted in the frequency domain.", "disturbance"),
     C("residual_ok", "-", "True when residual_amplitude <= allowed_amplitude.", "disturbance"),
+    C("auto_pct", "%", "Share of the operating record with the loop closed (automatic or cascade, by the policy's "
+                       "mode words); blank without a mode signal.", "health"),
+    C("manual_pct", "%", "Share of the operating record in manual.", "health"),
+    C("op_limited_pct", "%", "Share of the record with op within op_limit_band_pct of 0 % or 100 %.", "health"),
+    C("pv_out_of_range_pct", "%", "Share of the record with pv below 0 % or above 100 % of its range.", "health"),
+    C("sp_changes", "-", "Set-point moves in the record (a ramp counts once).", "health"),
+    C("error_std_pct", "% of range", "Standard deviation of the control error sp - pv while the loop was closed.",
+      "health"),
+    C("iae_per_h", "% of range x s/h", "Integral of abs(sp - pv) while closed, per hour closed.", "health"),
+    C("oscillating", "-", "True when the control error oscillates: regular autocorrelation zero crossings "
+                          "(Thornhill et al. 2003) and amplitude >= oscillation_min_amplitude_pct.", "health"),
+    C("oscillation_period_s", "s", "Period of the oscillation (mean interval between alternate zero crossings "
+                                   "of the autocorrelation).", "health"),
+    C("oscillation_amplitude_pct", "% of range", "Amplitude of the error within an octave of the oscillation "
+                                                 "frequency.", "health"),
+    C("oscillation_regularity", "-", "Regularity r = mean/(3 std) of the period estimates; > 1 is regular.",
+      "health"),
+    C("valve_sticking", "-", "True when the curve-fitting test (He et al. 2007) finds the oscillating op "
+                             "triangular (stiction index >= 0.7); blank when the loop does not oscillate.",
+      "health"),
+    C("valve_sticking_confidence", "-", "How strongly the data points to stiction, 0 to 1: (stiction index "
+                                        "- 0.4)/0.6, clipped.", "health"),
+    C("stiction_index", "-", "Stiction index of the curve fit, MSE_sine/(MSE_sine + MSE_triangle).", "health"),
+    C("harris_index", "-", "Minimum-variance variance over the error's variance (Harris 1989): 1 = minimum "
+                           "variance, towards 0 = far from it.", "health"),
+    C("health_delay_samples", "-", "Delay in samples used for harris_index (model dead time + half the "
+                                   "controller's sample, over the record's sample interval, plus one).",
+      "health"),
+    C("health_findings", "-", "What the operating record shows, in words with the figures and the method, most "
+                              "fundamental first, separated by '; '.", "health"),
+    C("health_note", "-", "What the loop-health figures rest on (record, stretch analysed) or why they are "
+                          "missing.", "health"),
 )
 
 
@@ -170,7 +205,7 @@ def markdown_table(stage: str | None = None) -> str:
     ----------
     stage : str or None
         Only the columns added by this stage (``inventory``, ``frequency``, ``time``,
-        ``disturbance``, ``proposal``, ``priority``, ``cascade``); every column when None.
+        ``disturbance``, ``proposal``, ``priority``, ``cascade``, ``health``); every column when None.
 
     Returns
     -------

@@ -1110,6 +1110,9 @@ _POLICY_CHECKS: dict[str, tuple[str, Callable[[float], bool]]] = {
     "weight_high": (_NONNEG, lambda x: x >= 0),
     "weight_medium": (_NONNEG, lambda x: x >= 0),
     "weight_low": (_NONNEG, lambda x: x >= 0),
+    "auto_min_pct": ("a number in (0, 100]", lambda x: 0 < x <= 100),
+    "op_limited_max_pct": ("a number in (0, 100]", lambda x: 0 < x <= 100),
+    "harris_min": ("a number in (0, 1]", lambda x: 0 < x <= 1),
 }
 
 
@@ -1148,8 +1151,12 @@ def _read_policy(table: _Table) -> tuple[Policy, list[Problem]]:
             continue
         seen[key] = cell_s
         if v is None:
+            d = defaults[key]
             problems.append(Problem(table.sheet, cell_v, key, "blank value; the default "
-                                                              f"{defaults[key]:g} applies", "warning"))
+                                    f"{d if isinstance(d, str) else format(d, 'g')} applies", "warning"))
+            continue
+        if isinstance(defaults[key], str):              # word lists (mode words)
+            values[key] = str(v).strip()
             continue
         need, ok = _POLICY_CHECKS.get(key, (_POS, lambda x: x > 0))
         try:

@@ -220,6 +220,7 @@ STAGES: tuple[tuple[str, str, str], ...] = (
     ("steps", "audit.timedomain", "add_step_results"),
     ("residuals", "audit.disturbance", "add_residuals"),
     ("residual_check", "audit.pipeline", "judge_residuals"),
+    ("health", "audit.plantdata.health", "add_loop_health"),
     ("proposals", "audit.tuning", "add_proposals"),
     ("priority", "audit.priority", "add_priority"),
 )

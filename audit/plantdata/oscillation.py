@@ -28,6 +28,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import fft as _fft
 from scipy import signal as _sig
 
 #: Regularity above which the ACF zero crossings mark an oscillation (Thornhill et al. 2003). [-]
@@ -126,12 +127,34 @@ def autocorrelation(x: np.ndarray, max_lag: int | None = None) -> np.ndarray:
         max_lag = n // 2
     max_lag = int(min(max_lag, n - 1))
     z = x - x.mean()
-    nfft = 1 << int(math.ceil(math.log2(max(2 * n - 1, 2))))
-    f = np.fft.rfft(z, nfft)
-    acov = np.fft.irfft(f * np.conj(f), nfft)[: max_lag + 1]
+    nfft = _fft.next_fast_len(max(n + max_lag, 2), real=True)   # no wrap-around up to max_lag
+    f = _fft.rfft(z, nfft)
+    acov = _fft.irfft(f.real ** 2 + f.imag ** 2, nfft)[: max_lag + 1]
     if acov[0] <= 0:
         return np.zeros(max_lag + 1)
     return acov / acov[0]
+
+
+def detrend(x: np.ndarray) -> np.ndarray:
+    """The signal less its least-squares straight line (closed form, O(n)).
+
+    Parameters
+    ----------
+    x : ndarray
+        Samples, uniformly spaced. [any]
+
+    Returns
+    -------
+    ndarray
+        Residual of the straight-line fit against the sample index. [same as x]
+    """
+    x = np.asarray(x, dtype=float)
+    n = x.size
+    if n < 2:
+        return x - x.mean() if n else x.copy()
+    k = np.arange(n, dtype=float) - (n - 1) / 2.0
+    slope = float(np.einsum("i,i->", k, x)) / (n * (n * n - 1.0) / 12.0)   # sum k^2 in closed form
+    return x - x.mean() - slope * k
 
 
 def zero_crossings(r: np.ndarray) -> np.ndarray:
@@ -287,7 +310,7 @@ def detect_oscillation(e: np.ndarray, ts: float, *, min_amplitude_pct: float = 0
     n = e.size
     if n < 4 * MIN_CROSSINGS:
         return Oscillation(False, math.nan, math.nan, math.nan, 0, math.nan, 0, 0)
-    z = _sig.detrend(e)
+    z = detrend(e)
     r = autocorrelation(z) if acf is None else np.asarray(acf, dtype=float)
     zk = zero_crossings(r)[:MAX_CROSSINGS]
     zc = zk * ts
@@ -324,7 +347,7 @@ def autocorrelation_for_plot(e: np.ndarray, ts: float, periods: float = 6.0,
     -------
     Autocorrelation
     """
-    z = _sig.detrend(np.asarray(e, dtype=float))
+    z = detrend(np.asarray(e, dtype=float))
     r = autocorrelation(z)
     zc = zero_crossings(r)[:MAX_CROSSINGS] * ts
     if math.isfinite(period_s):

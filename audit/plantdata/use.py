@@ -17,11 +17,17 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 
 #: Default words, compared case-insensitively after trimming.
 DEFAULT_AUTOMATIC = ("auto", "automatic", "aut", "a")
 DEFAULT_MANUAL = ("man", "manual", "m")
 DEFAULT_CASCADE = ("cas", "cascade", "casc", "remote", "rsp")
+
+
+#: Mode classes, as :meth:`ModeWords.classes` codes them.
+AUTOMATIC, MANUAL, CASCADE, OTHER, MISSING = range(5)
+CLASS_NAMES = ("automatic", "manual", "cascade", "other", "missing")
 
 
 @dataclass(frozen=True)
@@ -60,29 +66,58 @@ class ModeWords:
 
         Parameters
         ----------
-        modes : ndarray of object
-            Mode words as logged; None or NaN where missing.
+        modes : ndarray of object or pandas.Categorical
+            Mode words as logged; None or NaN where missing (a Categorical, as the record
+            reader's codes and labels give it, is classified without touching each sample).
 
         Returns
         -------
         ndarray of str
             ``automatic``, ``manual``, ``cascade``, ``other`` or ``missing`` per sample.
         """
-        words = np.asarray(modes, dtype=object)
-        uniq, inv = np.unique(np.array([_norm(w) for w in words], dtype=object), return_inverse=True)
-        table = {}
-        for u in uniq:
-            if u == "":
-                table[u] = "missing"
-            elif u in self.automatic:
-                table[u] = "automatic"
-            elif u in self.cascade:
-                table[u] = "cascade"
-            elif u in self.manual:
-                table[u] = "manual"
-            else:
-                table[u] = "other"
-        return np.array([table[u] for u in uniq], dtype=object)[inv].astype(str)
+        return np.array(CLASS_NAMES)[self.classes(modes)]
+
+    def classes(self, modes: np.ndarray) -> np.ndarray:
+        """The class of every mode word as a small integer (index into :data:`CLASS_NAMES`).
+
+        Parameters
+        ----------
+        modes : ndarray of object or pandas.Categorical
+            Mode words as logged; None or NaN where missing.
+
+        Returns
+        -------
+        ndarray of int8
+            :data:`AUTOMATIC`, :data:`MANUAL`, :data:`CASCADE`, :data:`OTHER` or :data:`MISSING`.
+        """
+        codes, uniq = _factorize(modes)
+        lut = np.empty(len(uniq) + 1, dtype=np.int8)
+        for j, u in enumerate(uniq):
+            w = _norm(u)
+            lut[j] = (MISSING if w == "" else AUTOMATIC if w in self.automatic else CASCADE if w in self.cascade
+                      else MANUAL if w in self.manual else OTHER)
+        lut[-1] = MISSING                                    # code -1 takes the last entry
+        return lut[codes]
+
+    def unknown(self, modes: np.ndarray) -> tuple[str, ...]:
+        """The mode words seen that none of the lists holds, as written (trimmed), sorted.
+
+        Parameters
+        ----------
+        modes : ndarray of object
+            Mode words as logged; None or NaN where missing.
+        """
+        _, uniq = _factorize(modes)
+        known = set(self.automatic) | set(self.manual) | set(self.cascade) | {""}
+        return tuple(sorted({str(u).strip() for u in uniq if _norm(u) not in known}))
+
+
+def _factorize(modes) -> tuple[np.ndarray, list]:
+    """Integer codes (-1 missing) and the distinct words of a mode signal."""
+    if isinstance(modes, pd.Categorical):
+        return np.asarray(modes.codes), list(modes.categories)
+    codes, uniq = pd.factorize(pd.Series(np.asarray(modes, dtype=object)), use_na_sentinel=True)
+    return codes, list(uniq)
 
 
 def _norm(w) -> str:
@@ -213,7 +248,7 @@ def loop_use(t: np.ndarray, sp: np.ndarray | None, pv: np.ndarray | None, op: np
         Process value; None when not logged. [% of range]
     op : ndarray or None
         Controller output; None when not logged. [%]
-    mode : ndarray of object or None
+    mode : ndarray of object, pandas.Categorical or None
         Mode words as logged; None when not logged.
     words : ModeWords
         The site's mode words.
@@ -243,13 +278,13 @@ def loop_use(t: np.ndarray, sp: np.ndarray | None, pv: np.ndarray | None, op: np
         others: tuple[str, ...] = ()
         closed = everywhere
     else:
-        cls = words.classify(mode)
-        known = np.isin(cls, ("automatic", "cascade", "manual"))
-        closed = (cls == "automatic") | (cls == "cascade")
+        cls = words.classes(mode)
+        known = cls <= CASCADE
+        closed = (cls == AUTOMATIC) | (cls == CASCADE)
         auto = _share(w, closed, known)
-        cas = _share(w, cls == "cascade", known)
-        man = _share(w, cls == "manual", known)
-        others = tuple(sorted({str(m).strip() for m, c in zip(np.asarray(mode, dtype=object), cls) if c == "other"}))
+        cas = _share(w, cls == CASCADE, known)
+        man = _share(w, cls == MANUAL, known)
+        others = words.unknown(mode)
     opv = np.isfinite(op_)
     low = op_ <= op_lo + limit_band_pct
     high = op_ >= op_hi - limit_band_pct

@@ -38,9 +38,10 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import fft as _fft
 from scipy import signal as _sig
 
-from .oscillation import zero_crossings
+from .oscillation import detrend, zero_crossings
 
 #: Stiction index at or above which a valve is reported as sticking (He et al. 2007 use 0.6;
 #: see the module notes). [-]
@@ -124,15 +125,15 @@ def cross_correlation_oddness(op: np.ndarray, pv: np.ndarray, ts: float, dead_ti
     .. [1] A. Horch, "A simple method for detection of stiction in control valves", Control
        Engineering Practice 7 (1999) 1221-1231.
     """
-    u = _sig.detrend(np.asarray(op, dtype=float))
-    y = _sig.detrend(np.asarray(pv, dtype=float))
+    u = detrend(op)
+    y = detrend(pv)
     n = u.size
-    den = math.sqrt(float(u @ u) * float(y @ y))
+    den = math.sqrt(float(np.einsum("i,i->", u, u)) * float(np.einsum("i,i->", y, y)))
     if den == 0:
         return math.nan
-    nfft = 1 << int(math.ceil(math.log2(2 * n)))
-    c = np.fft.irfft(np.conj(np.fft.rfft(u, nfft)) * np.fft.rfft(y, nfft), nfft) / den
     m = n // 4
+    nfft = _fft.next_fast_len(n + m, real=True)                # no wrap-around up to lag m
+    c = _fft.irfft(np.conj(_fft.rfft(u, nfft)) * _fft.rfft(y, nfft), nfft) / den
     r = np.concatenate((c[-m:], c[: m + 1]))            # lags -m .. m
     shift = dead_time_s / ts
     z = zero_crossings(r) - m - shift                     # lags relative to the dead time
@@ -163,7 +164,7 @@ def half_cycles(x: np.ndarray, ts: float, period_s: float) -> np.ndarray:
         next; the signal itself is low-passed at five times the oscillation frequency only and
         interpolated band-limited (polyphase resampling) where a half cycle has few samples. [%]
     """
-    x = _sig.detrend(np.asarray(x, dtype=float))
+    x = detrend(x)
     f0 = 2.0 * ts / period_s
     if not (0 < f0 < 0.5) or x.size < 3 * period_s / ts:
         return np.zeros((0, _POINTS))

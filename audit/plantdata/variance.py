@@ -14,8 +14,8 @@ the normalised performance index of Desborough and Harris being eta = 1 - harris
 The AR order is chosen by an information criterion (AIC or BIC) over 1..max_order, every order
 fitted by least squares on the same samples (the first max_order held back), so that the
 criteria compare like with like. All orders come from one Cholesky factor of the lagged Gram
-matrix, itself built from the FFT autocovariance with exact end corrections: the cost is
-O(N log N + p^3) whatever the record length.
+matrix, itself built from the lagged products sum_t z_t z_{t-k} (k <= p) with exact end
+corrections: the cost is O(N p + p^3).
 
 References
 ----------
@@ -98,9 +98,8 @@ class HarrisIndex:
 def _gram(z: np.ndarray, p: int) -> np.ndarray:
     """Gram matrix of the columns [y_{t-1}, ..., y_{t-p}, y_t] over t = p .. n-1 (exact)."""
     n = z.size
-    nfft = 1 << int(math.ceil(math.log2(2 * n)))
-    f = np.fft.rfft(z, nfft)
-    s = np.fft.irfft(f * np.conj(f), nfft)[: p + 1]      # s[k] = sum_{t=k}^{n-1} z_t z_{t-k}
+    # s[k] = sum_{t>=k} z_t z_{t-k}; einsum, not BLAS: its threads only contend on a busy machine
+    s = np.array([float(np.einsum("i,i->", z[k:], z[: n - k])) for k in range(p + 1)])
     g = np.empty((p + 1, p + 1))
     # columns: lags 1..p, then lag 0 (y_t itself)
     lags = np.concatenate((np.arange(1, p + 1), [0]))
@@ -138,7 +137,7 @@ def fit_ar(y: np.ndarray, max_order: int = MAX_ORDER, criterion: str = "aic") ->
     Raises
     ------
     ValueError
-        For an unknown criterion, or fewer than ``10 * max_order`` samples.
+        For an unknown criterion, fewer than ``10 * max_order`` samples, or a degenerate series.
 
     Notes
     -----
@@ -154,7 +153,14 @@ def fit_ar(y: np.ndarray, max_order: int = MAX_ORDER, criterion: str = "aic") ->
         raise ValueError(f"{z.size} samples are too few for AR orders up to {p} (need {10 * p})")
     g = _gram(z, p)
     scale = max(float(np.trace(g)) / (p + 1), 1e-300)
-    r = _la.cholesky(g / scale + 1e-14 * np.eye(p + 1), lower=False) * math.sqrt(scale)
+    for jitter in (0.0, 1e-12, 1e-10, 1e-8, 1e-6):   # a perfectly predictable series is singular
+        try:
+            r = _la.cholesky(g / scale + jitter * np.eye(p + 1), lower=False) * math.sqrt(scale)
+            break
+        except np.linalg.LinAlgError:
+            continue
+    else:
+        raise ValueError("the series is constant or degenerate: no AR model")
     nobs = z.size - p
     ssr = np.array([float(np.sum(r[k:, -1] ** 2)) for k in range(1, p + 1)])   # orders 1..p
     sigma2 = ssr / nobs
@@ -232,7 +238,7 @@ def harris_index(e: np.ndarray, d: int, *, max_order: int = MAX_ORDER, criterion
     d = max(int(d), 1)
     z = np.asarray(e, dtype=float)
     z = z - z.mean()
-    var = float(z @ z) / z.size
+    var = float(np.einsum("i,i->", z, z)) / z.size
     if var <= 0:
         return HarrisIndex(math.nan, math.nan, 0.0, 0.0, d, 0)
     fit = fit_ar(z, max_order, criterion)
