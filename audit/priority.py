@@ -265,8 +265,13 @@ def health_issue(rec: Mapping[str, Any], policy: Policy) -> str | None:
     return None
 
 
-def _health_first(rec: Mapping[str, Any]) -> str:
-    return _txt(rec, "health_findings").split("; ")[0]
+def _health_first(rec: Mapping[str, Any], issue: str) -> str:
+    words = _txt(rec, "health_findings").split("; ")
+    key = {"manual": "mostly in manual", "sticking": "valve suspected", "saturation": "output at",
+           "oscillation": "oscillating"}[issue]
+    first = next((w for w in words if w.startswith(key)), words[0])
+    outside = next((w for w in words if "enters from outside" in w), "")
+    return f"{first}; {outside}" if issue == "oscillation" and outside else first
 
 
 def priority_of(rec: Mapping[str, Any], policy: Policy) -> Priority:
@@ -295,10 +300,10 @@ def priority_of(rec: Mapping[str, Any], policy: Policy) -> Priority:
         points = max(SEVERITY_POINTS[sev], HEALTH_POINTS[issue]) + CRITICALITY_POINTS * weight
         if issue == "oscillation":
             b = benefit(rec)
-            return Priority(sev, float(points + BENEFIT_POINTS * b), "retune", _health_first(rec),
+            return Priority(sev, float(points + BENEFIT_POINTS * b), "retune", _health_first(rec, issue),
                             _improvement(rec), b)
         act = {"manual": ACTION_AUTOMATIC, "sticking": ACTION_VALVE, "saturation": ACTION_SIZING}[issue]
-        return Priority(sev, float(points), act, _health_first(rec), "", 0.0)
+        return Priority(sev, float(points), act, _health_first(rec, issue), "", 0.0)
     return Priority(sev, float(score), action, _reason(rec, sev) if action else "",
                     _improvement(rec) if action else "", b)
 

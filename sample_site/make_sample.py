@@ -45,7 +45,7 @@ HEADERS = [
     "action", "sample_s", "pv_filter_s",
     "band_rad_s", "attenuation_db", "ms_max",
     "disturbance_file", "allowed_amplitude", "allowed_amplitude_eu",
-    "inner_loop", "outer_model_input",
+    "inner_loop", "outer_model_input", "data_file",
     "dcs_node",   # not a known column: carried to the results as an extra
 ]
 
@@ -75,7 +75,7 @@ LOOPS: list[dict] = [
       kc=2, ti_min=30, action="reverse", disturbance_file="records/broadband.csv", allowed_amplitude=1,
       pv_lo=0, pv_hi=4, dcs_node="PS2"),
     L("FIC-106", "Storm return pump flow", IP, "low", "fopdt", gain=1.0, tau1_s=5, dead_time_s=1, sample_s=0.5,
-      form="ideal", kc=0.5, ti_s=5, action="reverse", dcs_node="PS2"),
+      form="ideal", kc=0.5, ti_s=5, action="reverse", data_file="operation/FIC-106_operation.csv", dcs_node="PS2"),
     # fragile: an integral time of seconds on an integrating level
     L("LIC-107", "Screen channel level", IP, "medium", "ipdt", gain=0.01, tau1_s=4, dead_time_s=2, sample_s=0.5,
       form="ideal", kc=3, ti_s=25, action="reverse", band_rad_s=0.003, attenuation_db=10, dcs_node="PS1"),
@@ -92,7 +92,8 @@ LOOPS: list[dict] = [
     L("PIC-201", "Air main header pressure", AE, "high", "fopdt", gain=0.6, tau1_s=8, dead_time_s=1, sample_s=0.5,
       form="ideal", kc=1.5, ti_s=10, action="reverse", dcs_node="BLW"),
     L("FIC-211", "Lane 1 air flow", AE, "medium", "fopdt", gain=1.5, tau1_s=4, dead_time_s=1, sample_s=0.5,
-      form="ideal", kc=0.6, ti_s=4, action="reverse", band_rad_s=0.05, attenuation_db=6, dcs_node="AE1"),
+      form="ideal", kc=0.6, ti_s=4, action="reverse", band_rad_s=0.05, attenuation_db=6,
+      data_file="operation/FIC-211_operation.csv", dcs_node="AE1"),
     L("FIC-212", "Lane 2 air flow", AE, "medium", "fopdt", gain=1.5, tau1_s=4, dead_time_s=1, sample_s=0.5,
       form="ideal", pb_pct=160, reset_rpm=15, action="reverse", band_rad_s=0.05, attenuation_db=6, dcs_node="AE1"),
     L("FIC-213", "Lane 3 air flow", AE, "medium", "fopdt", gain=1.5, tau1_s=4, dead_time_s=1, sample_s=0.5,
@@ -122,7 +123,7 @@ LOOPS: list[dict] = [
       attenuation_db=6, inner_loop="AIC-221", outer_model_input="inner_sp", dcs_node="AE1"),
     L("FIC-241", "Return activated sludge flow", AE, "medium", "fopdt", gain=1.1, tau1_s=6, dead_time_s=2,
       sample_s=0.5, form="ideal", pb_pct=250, reset_rpm=10, action="reverse", band_rad_s=0.02, attenuation_db=6,
-      dcs_node="AE3"),
+      data_file="operation/FIC-241_operation.csv", dcs_node="AE3"),
     # wrong action: direct on a process whose PV rises with output
     L("FIC-242", "Surplus activated sludge flow", AE, "low", "fopdt", gain=1.0, tau1_s=6, dead_time_s=2,
       sample_s=0.5, form="ideal", kc=0.4, ti_s=6, action="direct", dcs_node="AE3"),
@@ -152,7 +153,7 @@ LOOPS: list[dict] = [
       sample_s=0.5, form="series", kc=0.5, ti_s=5, action="reverse", dcs_node="DG2"),
     L("FIC-305", "Digester 1 sludge feed flow", DG, "medium", "fopdt", gain=1.0, tau1_s=8, dead_time_s=3,
       sample_s=1, form="ideal", kc=0.7, ti_s=8, action="reverse", band_rad_s=0.01, attenuation_db=10,
-      dcs_node="DG1"),
+      data_file="operation/FIC-305_operation.csv", dcs_node="DG1"),
     # misses its requirement: 10 dB of attenuation up to 0.05 rad/s with 3 s of dead time and a slow pump
     L("FIC-306", "Digester 2 sludge feed flow", DG, "medium", "fopdt", gain=1.0, tau1_s=8, dead_time_s=3,
       sample_s=1, form="ideal", kc=0.7, ti_s=8, action="reverse", band_rad_s=0.05, attenuation_db=10,
@@ -267,7 +268,7 @@ LOOPS: list[dict] = [
     # fragile: too little integral time on a dead-time-heavy loop
     L("TIC-607", "Sludge pre-heater temperature", SD, "medium", "fopdt", gain=1.1, tau1_s=120, dead_time_s=40,
       sample_s=2, form="ideal", kc=1.4, ti_s=40, action="reverse", band_rad_s=0.001, attenuation_db=6,
-      dcs_node="SLD"),
+      data_file="operation/TIC-607_operation.csv", dcs_node="SLD"),
     L("LIC-608", "Centrate sump level", SD, "low", "ipdt", gain=-0.002, dead_time_s=3, sample_s=1, form="ideal",
       kc=2, ti_min=15, action="direct", dcs_node="SLD"),
 ]

@@ -366,7 +366,7 @@ def findings_of(h: LoopHealth, policy) -> list[str]:
     v = h.variance
     if v is not None and math.isfinite(v.harris_index) and v.harris_index < policy.harris_min:
         words.append(f"far from minimum variance: Harris index {_fmt(v.harris_index)} (AR({v.ar_order}), "
-                     f"delay {v.delay_samples} samples; Harris 1989)")
+                     f"delay {v.delay_samples} samples, Harris 1989)")
     return words
 
 
@@ -470,6 +470,10 @@ def add_loop_health(audit, source=None) -> None:
         d, note = data.get(i, (None, ""))
         if d is None:
             recs.append(health_record(None, policy, note))
+            if note:
+                old = audit.results.at[audit.results.index[i], "message"]
+                old = "" if old is None or (isinstance(old, float) and math.isnan(old)) else str(old)
+                audit.results.at[audit.results.index[i], "message"] = "; ".join(x for x in (old, note) if x)
             continue
         model = audit.models[i] if i < len(audit.models) else None
         dead = model.delay if model is not None else None
@@ -500,17 +504,106 @@ def add_loop_health(audit, source=None) -> None:
     audit.extras["retune_for_oscillation"] = frozenset(retune)
 
 
+#: Reader notes said in health_note, with file and line (every kind the reader has).
+_PROBLEM_KINDS = ("file", "header", "cell", "quality", "time", "order", "zone", "gap", "fill", "short",
+                  "resample", "flat", "units", "cap")
+#: Problems named one by one before the rest are counted. [-]
+_SHOWN = 3
+
+
+def record_arrays(rec) -> OperationData | None:
+    """A record's segments joined into arrays (gaps kept as jumps in time).
+
+    Parameters
+    ----------
+    rec : audit.plantdata.records.Record
+        As read by :func:`audit.plantdata.records.read_record`.
+
+    Returns
+    -------
+    OperationData or None
+        None when the record has no usable segment.
+    """
+    if not rec.segments:
+        return None
+    t = np.concatenate([s.t for s in rec.segments])
+
+    def joined(name: str) -> np.ndarray | None:
+        if name not in rec.signals:
+            return None
+        parts = [np.asarray(s.values[name], dtype=float) if name in s.values else np.full(s.n, np.nan)
+                 for s in rec.segments]
+        return np.concatenate(parts)
+
+    mode = None
+    if "mode" in rec.signals and all(s.mode is not None for s in rec.segments):
+        codes = np.concatenate([np.asarray(s.mode, dtype=np.int64) for s in rec.segments])
+        mode = pd.Categorical.from_codes(codes, categories=list(dict.fromkeys(rec.mode_labels)))
+    return OperationData(t, joined("sp"), joined("pv"), joined("op"), mode, rec.name)
+
+
+def _problems(rec) -> str:
+    probs = [n for n in rec.notes if n.kind in _PROBLEM_KINDS]
+    if not probs:
+        return ""
+    total = sum(n.count for n in probs)
+    shown = [str(n) for n in probs[:_SHOWN]]
+    more = f"; and {total - len(shown)} more" if total > len(shown) else ""
+    return "; ".join(shown) + more
+
+
 def operation_records(audit) -> dict:
     """Records of normal operation of the inventory's rows, as arrays (the reader's adapter).
+
+    A row's record (its ``data_file``) is read with :func:`audit.plantdata.records.read_record`
+    and used when it holds ``sp``, ``pv`` and ``op`` (``mode`` where logged). Problems the reader
+    found are named by file and line in the note; a record with nothing usable gives no figures,
+    only the note. The records read are kept in ``audit.extras['plant_records']`` (row position ->
+    Record) for later stages.
 
     Parameters
     ----------
     audit : Audit
-        The run; rows name their record in ``data_file``.
+        The run; paths are confined to the inventory's folder.
 
     Returns
     -------
     dict
         Row position -> (OperationData or None, note). Rows without a record are left out.
     """
-    return {}
+    from pathlib import Path
+
+    from . import records as _records
+
+    inv = audit.inventory
+    policy = inv.policy
+    folder = Path(inv.path).resolve().parent
+    rp = _records.ReadPolicy(max_gap_intervals=policy.max_gap_s, uniform_tolerance=policy.uniform_tolerance,
+                             min_samples=policy.min_samples)
+    kept = audit.extras.setdefault("plant_records", {})
+    out: dict = {}
+    for i, row in enumerate(inv.rows):
+        target = getattr(row, "data_file", None) or row.extras.get("data_file")
+        if not target or not row.valid:
+            continue
+        try:
+            full, shown = _records.confine(folder, str(target))
+        except _records.PathError as exc:
+            out[i] = (None, f"operating record: {exc}")
+            continue
+        rec = kept.get(i)
+        if rec is None:
+            rec = _records.read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, policy=rp, name=shown)
+            kept[i] = rec
+        problems = _problems(rec)
+        missing = [s for s in ("sp", "pv", "op") if s not in rec.signals]
+        if missing:
+            out[i] = (None, f"{shown}: no {', '.join(missing)} column, so no loop-health figures (they need "
+                            f"sp, pv and op of routine operation)" + (f"; {problems}" if problems else ""))
+            continue
+        data = record_arrays(rec)
+        if data is None:
+            out[i] = (None, f"{shown}: nothing usable" + (f"; {problems}" if problems else ""))
+            continue
+        out[i] = (data, problems)
+    return out
