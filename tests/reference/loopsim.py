@@ -16,7 +16,8 @@ Control Engineering Practice 13 (2005) 641-658, sec. 4 and Fig. 5.
 Four classes of cases, as in the issue's validation plan: stiction (well-tuned PI, sticking
 valve), aggressive (PI gain raised to a gain margin of 1.1-1.4, linear), sinusoid (well-tuned
 PI, external sinusoidal load), noise (well-tuned PI, coloured load noise only). All carry
-measurement noise. Tuning: SIMC with tau_c = theta (S. Skogestad, "Simple analytic rules for
+measurement noise. Two more classes repeat stiction and over-tuning on integrating processes
+(levels: k'/s, simulated as K/(tau s + 1) with tau = 1e7 s and K = k' tau). Tuning: SIMC with tau_c = theta (S. Skogestad, "Simple analytic rules for
 model reduction and PID controller tuning", J. Process Control 13 (2003) 291-309, eq. (21)-(22)).
 """
 
@@ -27,6 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 CLASSES = ("stiction", "aggressive", "sinusoid", "noise")
+INTEGRATING_CLASSES = ("stiction_integrating", "aggressive_integrating")
 
 
 @dataclass(frozen=True)
@@ -95,7 +97,21 @@ def make_cases(cls: str, n: int, seed: int, ts: float = 1.0) -> Cases:
     load_sd = rng.uniform(0.2, 1.0, n)
     load_tau = rng.uniform(10.0, 60.0, n)
     noise_sd = rng.uniform(0.05, 0.3, n)
-    if cls == "stiction":
+    if cls.endswith("_integrating"):
+        # integrating process k'/s as the limit of K/(tau s + 1) with tau >> record, K = k' tau
+        kint = rng.uniform(0.02, 0.1, n)                       # [%/s per %]
+        tau = np.full(n, 1e7)
+        K = kint * tau
+        kc = 1.0 / (kint * 2 * theta)                          # SIMC for an integrating process
+        ti = 8 * theta
+        load_sd = rng.uniform(0.05, 0.2, n)
+    if cls == "stiction_integrating":
+        S = rng.uniform(2.0, 6.0, n)
+        J = S * rng.uniform(0.4, 1.0, n)
+    elif cls == "aggressive_integrating":
+        base = Cases(K, tau, d, kc, ti, S, J, amp, per, load_sd, load_tau, z, noise_sd)
+        kc = kc * gain_margin(base, ts) / rng.uniform(1.03, 1.2, n)
+    elif cls == "stiction":
         S = rng.uniform(3.0, 10.0, n) / K        # K S: 3-10 % of PV range
         J = S * rng.uniform(0.4, 1.0, n)
         load_sd = rng.uniform(0.1, 0.5, n)

@@ -2,7 +2,8 @@
 
 Four classes of 120 loops each (tests/reference/loopsim.py): a sticking valve (two-parameter
 model of Choudhury, Thornhill and Shah, Control Eng. Practice 13 (2005) 641-658), an
-over-tuned PI (gain margin 1.03-1.2), an external sinusoidal load, and coloured noise only.
+over-tuned PI (gain margin 1.03-1.2), an external sinusoidal load, and coloured noise only;
+and two classes of 100 integrating loops (levels): a sticking valve and an over-tuned PI.
 Each record is 2,400 samples of 1 s. The rates measured are recorded in README.md
 ("Loop health from operating data"); the bounds below sit a little under them, so a change that
 costs detection or adds false alarms fails here.
@@ -20,7 +21,7 @@ import pytest
 from audit.plantdata.oscillation import detect_oscillation
 from audit.plantdata.valve import assess_valve
 
-from .loopsim import CLASSES, loop_response, make_cases, simulate
+from .loopsim import CLASSES, INTEGRATING_CLASSES, loop_response, make_cases, simulate
 
 N_CASES = 120
 N_SAMPLES = 2400
@@ -115,3 +116,36 @@ def test_amplitude_of_sinusoid(outcome):
     true_amp = c.sin_amp * np.abs(1.0 / (1.0 + L))
     amp = np.array([o.amplitude_pct for o in osc])
     assert np.mean(np.abs(amp - true_amp) <= 0.2 * true_amp) >= 0.95
+
+
+@pytest.fixture(scope="module")
+def integrating():
+    """Per integrating class (100 seeded levels each): oscillating and sticking flags, curve fit on pv."""
+    out = {}
+    for i, cls in enumerate(INTEGRATING_CLASSES):
+        c = make_cases(cls, 100, 300 + i)
+        tr = simulate(c, N_SAMPLES, 400 + i)
+        osc, stick = [], []
+        for j in range(100):
+            o = detect_oscillation(tr.sp[j] - tr.pv[j], tr.ts)
+            osc.append(o.oscillating)
+            stick.append(bool(o.oscillating and assess_valve(tr.op[j], tr.pv[j], tr.ts, o.period_s, integrating=True,
+                                                             dead_time_s=(c.d[j] + 0.5) * tr.ts).sticking))
+        out[cls] = (np.array(osc), np.array(stick))
+    return out
+
+
+def test_integrating_sticking_valves(integrating):
+    """Levels with a sticking valve (S = 2-6 %, J = 0.4-1 S): oscillation detected in 60/100 and the valve
+    reported in 57/100 (57 of the 60 detected). The misses are irregular cycles: with an integrating
+    process the load noise decides when the valve breaks free."""
+    osc, stick = integrating["stiction_integrating"]
+    assert osc.mean() >= 0.55 and stick.mean() >= 0.52
+    assert stick[osc].mean() >= 0.9
+
+
+def test_integrating_overtuned_not_blamed_on_the_valve(integrating):
+    """Over-tuned level loops (gain margin 1.03-1.2): oscillation detected in 79/100, valve reported in 0."""
+    osc, stick = integrating["aggressive_integrating"]
+    assert osc.mean() >= 0.7
+    assert stick.sum() == 0
