@@ -17,6 +17,7 @@ figures, not a timed test.
 from __future__ import annotations
 
 import argparse
+import os
 import resource
 import sys
 import time
@@ -91,7 +92,8 @@ def main(argv: list[str] | None = None) -> None:
     a = ap.parse_args(argv)
     n = int(round(a.days * 86400 / a.ts))
     rng = np.random.default_rng(a.seed)
-    print(f"{a.loops} loops, {n:,} samples each ({a.days:g} days every {a.ts:g} s)")
+    print(f"{a.loops} loops, {n:,} samples each ({a.days:g} days every {a.ts:g} s); load average at start "
+          f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs", flush=True)
     first = record("triangle", n, a.ts, np.random.default_rng(a.seed + 1))
     p = parts(*first, a.ts)
     print("one loop, by part [s]: " + ", ".join(f"{k} {v:.3f}" for k, v in p.items()))
@@ -107,6 +109,8 @@ def main(argv: list[str] | None = None) -> None:
         made += t1 - t0
         counts["oscillating"] += bool(h.oscillation is not None and h.oscillation.oscillating)
         counts["sticking"] += bool(h.valve is not None and h.valve.sticking)
+        if (i + 1) % 50 == 0 and i + 1 < a.loops:
+            print(f"  {i + 1} loops: analysis {total:.1f} s ({total / (i + 1):.3f} s per loop)", flush=True)
     wall = time.perf_counter() - t_all
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
     print(f"analysis {total:.1f} s ({total / a.loops:.3f} s per loop, {a.loops * n / total / 1e6:.1f} M samples/s); "

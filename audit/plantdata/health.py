@@ -244,6 +244,8 @@ class HealthPlots:
 
 #: Samples kept in a trend for the report (min/max per bucket keeps peaks). [-]
 TREND_POINTS = 1200
+#: Most points of the pv-op plot (the latest eight periods or so, evenly thinned). [-]
+PV_OP_POINTS = 2000
 
 HEALTH_COLUMNS = ("auto_pct", "manual_pct", "op_limited_pct", "pv_out_of_range_pct", "sp_changes",
                   "error_std_pct", "iae_per_h", "oscillating", "oscillation_period_s",
@@ -315,7 +317,8 @@ def health_plots(data: OperationData, h: LoopHealth) -> HealthPlots:
     if h.oscillation is not None and data.sp is not None and data.pv is not None and data.op is not None:
         period = h.oscillation.period_s if h.oscillation.oscillating else math.nan
         keep = b - a if not math.isfinite(period) else int(min(b - a, max(200, round(8 * period / h.ts))))
-        pvop = pv_op_points(data.op[b - keep:b], data.pv[b - keep:b], max_points=keep)
+        step = max(1, int(math.ceil(keep / PV_OP_POINTS)))     # at most PV_OP_POINTS points, evenly spaced
+        pvop = pv_op_points(data.op[b - keep:b:step], data.pv[b - keep:b:step], max_points=keep)
         e = np.asarray(data.sp[a:b], dtype=float) - np.asarray(data.pv[a:b], dtype=float)
         ac = autocorrelation_for_plot(e, h.ts, periods=6.0, period_s=period)
         lags, acf, zc = ac.lags_s, ac.values, ac.crossings_s

@@ -42,3 +42,16 @@ def test_missing_signal_and_dead_time_are_said():
     rng = np.random.default_rng(0)
     h = loop_health(t, np.full(1000, 50.0), 50 + rng.standard_normal(1000), np.full(1000, 50.0))
     assert h.variance is None and any("dead time" in n for n in h.notes)
+
+
+def test_plot_data_bounded_for_long_records():
+    """A day at 1 s with a slow oscillation: the report's arrays stay small whatever the record's length."""
+    from audit.plantdata.health import PV_OP_POINTS, OperationData, health_plots
+    t = np.arange(86400.0)
+    e = 2.0 * np.sin(2 * np.pi * t / 3000.0)
+    d = OperationData(t, np.full(t.size, 50.0), 50.0 - e, 50.0 + 3 * np.cos(2 * np.pi * t / 3000.0), None, "x.csv")
+    h = loop_health(d.t, d.sp, d.pv, d.op, None, dead_time_s=2.0)
+    assert h.oscillation.oscillating
+    p = health_plots(d, h)
+    assert p.t.size <= 5000 and p.pv_op.op.size <= PV_OP_POINTS and p.acf.size <= 2000
+    assert abs(p.period_s - 3000.0) < 30.0

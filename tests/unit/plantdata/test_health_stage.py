@@ -76,3 +76,38 @@ def test_record_arrays_joins_segments_and_mode_words(tmp_path):
     assert isinstance(d.mode, pd.Categorical)
     assert list(d.mode[198:202]) == ["AUTO", "AUTO", "AUTO", "MAN"]
     assert d.source == "r.csv"
+
+
+def test_every_health_column_is_documented():
+    """Each column the stage adds has its name, unit and meaning in audit.columns (README table)."""
+    from audit.columns import RESULT_COLUMNS
+    names = {c.name: c for c in RESULT_COLUMNS}
+    for c in HEALTH_COLUMNS:
+        assert c in names and names[c].stage == "health"
+
+
+def test_mode_words_from_the_policy_sheet(tmp_path):
+    """A site's own mode words in the policy sheet decide what counts as automatic."""
+    import openpyxl
+
+    from audit.plantdata.health import settings_from_policy
+    wb = openpyxl.Workbook()
+    ws = wb.active
+    ws.title = "loops"
+    ws.append(["tag", "service", "area", "criticality", "model", "gain", "tau1_s", "dead_time_s", "form", "kc",
+               "ti_s", "action", "sample_s"])
+    ws.append(["F-1", "flow", "A", "medium", "fopdt", 1, 5, 1, "ideal", 0.5, 5, "reverse", 0.5])
+    pol = wb.create_sheet("policy")
+    pol.append(["setting", "value"])
+    pol.append(["mode_automatic", "AUT, LOCAL"])
+    pol.append(["mode_manual", "HAND"])
+    pol.append(["auto_min_pct", 80])
+    p = tmp_path / "loops.xlsx"
+    wb.save(p)
+    inv = read_inventory(p)
+    assert not [x for x in inv.problems if x.sheet == "policy"]
+    st = settings_from_policy(inv.policy)
+    assert st.words.automatic == ("aut", "local") and st.words.manual == ("hand",)
+    assert list(st.words.classify(np.array(["LOCAL", "HAND", "AUTO"], dtype=object))) == ["automatic", "manual",
+                                                                                         "other"]
+    assert inv.policy.auto_min_pct == 80
