@@ -135,10 +135,17 @@ def disturbance(record, allowed, plot):
 @click.option("--pv-hi", type=float, default=None, help="PV range high, for *_eu columns [EU].")
 @click.option("--timezone", default=None, help="IANA zone of timestamps written without one.")
 @click.option("--json", "as_json", is_flag=True, help="Print JSON.")
-def identify(record, pv_lo, pv_hi, timezone, as_json):
-    """Identify a process model (fopdt, sopdt, ipdt) from a logged RECORD with op and pv."""
-    from .plantdata.command import identify_command
+@click.option("--write-inventory", "write_to", default=None,
+              help="With an inventory (.xlsx): write a copy with the identified models to this new file.")
+def identify(record, pv_lo, pv_hi, timezone, as_json, write_to):
+    """Identify a process model (fopdt, sopdt, ipdt) from a logged RECORD with op and pv,
+    or from every data_file of an inventory (.xlsx)."""
+    from .plantdata.command import identify_command, identify_inventory_command
 
+    if record.lower().endswith((".xlsx", ".xlsm")):
+        raise SystemExit(identify_inventory_command(record, write_to, as_json))
+    if write_to:
+        raise UserError("--write-inventory needs an inventory workbook (.xlsx) in place of RECORD")
     raise SystemExit(identify_command(record, pv_lo, pv_hi, as_json, timezone)[0])
 
 

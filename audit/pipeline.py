@@ -223,6 +223,7 @@ STAGES: tuple[tuple[str, str, str], ...] = (
     ("health", "audit.plantdata.health", "add_loop_health"),
     ("proposals", "audit.tuning", "add_proposals"),
     ("priority", "audit.priority", "add_priority"),
+    ("modelcheck", "audit.plantdata.modelcheck", "check_models"),
 )
 
 

@@ -109,3 +109,68 @@ def identify_command(path: str, pv_lo: float | None = None, pv_hi: float | None 
     else:
         print(format_identification(r))
     return (0 if r.identifiable else 1), r
+
+
+def identify_inventory_command(path: str, write_to: str | None = None, as_json: bool = False) -> int:
+    """``plant-audit identify INVENTORY.xlsx [--write-inventory NEW.xlsx]``: every row's ``data_file``.
+
+    Parameters
+    ----------
+    path : str
+        The inventory workbook.
+    write_to : str, optional
+        A new workbook: a copy of the inventory with the identified models (see
+        :mod:`audit.plantdata.writeback`).
+    as_json : bool
+        Print JSON instead of text.
+
+    Returns
+    -------
+    int
+        0 when at least one row got a model, 1 when none did, 2 when the copy cannot be written.
+    """
+    from pathlib import Path
+
+    from ..inventory import read_inventory
+    from .records import PathError, confine
+    from .writeback import WriteError, write_identified_inventory
+
+    inv = read_inventory(path)
+    folder = Path(path).resolve().parent
+    found: dict[int, tuple[str, Identification]] = {}
+    items = []
+    for row in inv.rows:
+        if not row.data_file:
+            continue
+        where = f"{inv.sheets[0] if inv.sheets else 'loops'}!{row.excel_row}"
+        try:
+            full, shown = confine(folder, row.data_file)
+        except PathError as exc:
+            items.append({"row": row.excel_row, "tag": row.tag, "record": None, "identifiable": False,
+                          "notes": [str(exc)]})
+            continue
+        r = identify_record(read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, name=shown), IdentifyPolicy())
+        if r.best is not None:
+            found[row.excel_row] = (shown, r)
+        items.append({"row": row.excel_row, "tag": row.tag, "where": where, **identification_json(r)})
+    summary = None
+    if write_to:
+        try:
+            summary = write_identified_inventory(path, write_to, found)
+        except WriteError as exc:
+            print(f"plant-audit identify: {exc}", file=sys.stderr)
+            return 2
+    if as_json:
+        print(json.dumps({"inventory": inv.name, "loops": items,
+                          "written": summary.path if summary else None}, indent=1, ensure_ascii=False))
+    else:
+        for it in items:
+            b = it.get("best")
+            what = (f"{b['model']}  fit {b['fit_pct']:.1f} %  " + "  ".join(
+                f"{k} {v:.4g}" for k, v in b["params"].items())) if b else \
+                f"no model: {(it['notes'] or [''])[-1]}"
+            print(f"{it['tag'] or 'row ' + str(it['row']):<12} {it.get('record') or '-':<28} {what}")
+        if summary:
+            print(f"written: {summary.path} ({summary.rows_changed} rows, {summary.cells_changed} cells changed, "
+                  f"each with a comment)")
+    return 0 if found else 1

@@ -51,6 +51,8 @@ Fitting
 6. Residual checks [2]_: whiteness by the Ljung-Box statistic over 20 lags
    (p > 0.01: white); correlation with past inputs (lags 0..20) against the 99 % bound
    2.58/sqrt(N).
+   A sopdt whose lead's interval holds 0 is refitted with the lead fixed at 0 (lead and dead
+   time trade off at low frequency, so a free lead would blur the dead time).
 7. Model selection by the Bayesian information criterion on the effective sample size,
    BIC = N_eff ln(RSS/N) + p ln(N_eff); a more complex model (sopdt) is chosen only when it
    lowers the BIC by more than ``bic_margin`` (default 10, "very strong" evidence in the
@@ -94,7 +96,8 @@ from .records import Record, Segment
 MODELS = ("fopdt", "sopdt", "ipdt")
 PARAMS = {"fopdt": ("gain", "tau1", "dead_time"),
           "sopdt": ("gain", "tau1", "tau2", "tau_lead", "dead_time"),
-          "ipdt": ("gain", "dead_time")}
+          "ipdt": ("gain", "dead_time"),
+          "sopdt0": ("gain", "tau1", "tau2", "dead_time")}     # sopdt with the lead fixed at 0 (internal)
 UNITS = {"gain": "-", "tau1": "s", "tau2": "s", "tau_lead": "s", "dead_time": "s"}
 LAGS = 20
 
@@ -354,6 +357,8 @@ def _shape(model: str, params: Mapping[str, float]) -> tuple[float, ...]:
         return (params["tau1"],)
     if model == "sopdt":
         return (params["tau1"], params["tau2"], params["tau_lead"])
+    if model == "sopdt0":
+        return (params["tau1"], params["tau2"], 0.0)
     return ()
 
 
@@ -581,6 +586,8 @@ def _nl_to_shape(model: str, x: np.ndarray) -> tuple[tuple[float, ...], float]:
         return (x[0],), x[1]
     if model == "sopdt":
         return (x[0], x[1], x[2]), x[3]
+    if model == "sopdt0":
+        return (x[0], x[1], 0.0), x[2]
     return (), x[0]
 
 
@@ -615,6 +622,8 @@ def _bounds(model: str, dt: float, T: float):
         return [tmin, 0.0], [tmax, thmax]
     if model == "sopdt":
         return [tmin, tmin, -tmax, 0.0], [tmax, tmax, tmax, thmax]
+    if model == "sopdt0":
+        return [tmin, tmin, 0.0], [tmax, tmax, thmax]
     return [0.0], [thmax]
 
 
@@ -641,6 +650,8 @@ def _full(model: str, x: np.ndarray, u, y, t, dt, keep=None) -> tuple[np.ndarray
     coef = _lsq(X, y) if keep is None else _lsq(X[keep], y[keep])
     names = list(PARAMS[model]) + ["bias"] + (["balance"] if model == "ipdt" else [])
     shape, theta = _nl_to_shape(model, x)
+    if model == "sopdt0":
+        shape = shape[:2]
     gain = coef[1]
     vals = [gain, *shape, theta, coef[0]]
     if model == "ipdt":
@@ -718,7 +729,9 @@ def fit_structure(model: str, op: np.ndarray, pv: np.ndarray, dt: float, step: t
         step = step_estimate(op, pv, dt)
     sx = np.array([seed.params["tau1"], seed.params["dead_time"]]) if seed is not None and seed.model == "fopdt" \
         else None
-    x = _fit_structure(model, u, pv, t, dt, _starts(model, step[0], step[1], dt, sx))
+    starts = _starts(model, step[0], step[1], dt, sx) if model != "sopdt0" else \
+        [[seed.params["tau1"], seed.params["tau2"], max(seed.params["dead_time"] + seed.params["tau_lead"], 0.0)]]
+    x = _fit_structure(model, u, pv, t, dt, starts)
     if x is None:
         return None
     full, names = _full(model, x, u, pv, t, dt)
@@ -755,11 +768,23 @@ def fit_structure(model: str, op: np.ndarray, pv: np.ndarray, dt: float, step: t
                     fit_h = nrmse_fit(pv[block], _predict(model, fh, u, t, dt)[block])
     params = {k: float(v) for k, v in zip(PARAMS[model], full)}
     ci = {k: float(v) for k, v in zip(PARAMS[model], half)}
-    if model == "sopdt" and params["tau2"] > params["tau1"]:
+    if model in ("sopdt", "sopdt0") and params["tau2"] > params["tau1"]:
         params["tau1"], params["tau2"] = params["tau2"], params["tau1"]
         ci["tau1"], ci["tau2"] = ci["tau2"], ci["tau1"]
-    return Fit(model, params, ci, float(full[len(PARAMS[model])]), nrmse_fit(pv, yhat), fit_h, rss, bic, n_eff,
-               ljung_box_p(e), _xcorr_past(e, op, LAGS), yhat)
+    if model == "sopdt0":
+        params = {"gain": params["gain"], "tau1": params["tau1"], "tau2": params["tau2"], "tau_lead": 0.0,
+                  "dead_time": params["dead_time"]}
+        ci = {"gain": ci["gain"], "tau1": ci["tau1"], "tau2": ci["tau2"], "tau_lead": 0.0,
+              "dead_time": ci["dead_time"]}
+    out = Fit("sopdt" if model == "sopdt0" else model, params, ci, float(full[len(PARAMS[model])]),
+              nrmse_fit(pv, yhat), fit_h, rss, bic, n_eff, ljung_box_p(e), _xcorr_past(e, op, LAGS), yhat)
+    if model == "sopdt" and not abs(params["tau_lead"]) > ci["tau_lead"]:
+        # the data do not show a lead (its interval holds 0): the lead and the dead time trade off at low
+        # frequency, so fix the lead at 0 and fit again
+        reduced = fit_structure("sopdt0", op, pv, dt, step, holdout, out)
+        if reduced is not None:
+            return reduced
+    return out
 
 
 def identify_arrays(op: np.ndarray, pv: np.ndarray, dt: float, policy: IdentifyPolicy = IdentifyPolicy(),

@@ -13,8 +13,8 @@ with measurement noise and a slow load:
   the set point asks for more than the pump can give (output pinned at 100 %).
 * FIC-211_operation.csv - lane 1 air flow, the air valve sticking (deadband plus stickband 4 %,
   slip jump 2.5 %): a limit cycle that no retune will remove.
-* TIC-607_operation.csv - sludge pre-heater temperature, tuned too tightly (the inventory's
-  settings give Ms above 4): it cycles with noise alone.
+* TIC-402_operation.csv - heat recovery water temperature, tuned too tightly (the inventory's
+  settings give Ms above 3): it cycles with noise alone (logged every 4 s).
 * FIC-305_operation.csv - digester 1 sludge feed flow, pushed by the thickener upstream, whose
   level cycles with a period of 150 s.
 """
@@ -117,11 +117,11 @@ def main() -> None:
     write("FIC-211_operation.csv", 0.5, 2, *simulate(
         rng, n=n, dt_s=0.5, K=1.5, tau=4.0, theta=1.0, kc=0.6, ti=4.0, sp=np.full(n, 55.0), op0=52.0,
         stiction=(4.0, 2.5), load_bias=2.0, load_sd=0.3))
-    # TIC-607: over-tuned, six hours every 2 s
-    n6 = int(6 * 3600 / 2.0)
-    write("TIC-607_operation.csv", 2.0, 1, *simulate(
-        rng, n=n6, dt_s=2.0, K=1.1, tau=120.0, theta=40.0, kc=1.4, ti=40.0, sp=np.full(n6, 60.0), op0=59.0,
-        noise=0.1, load_sd=4.0, load_tau=600.0))
+    # TIC-402: over-tuned, twelve hours every 2 s
+    n12 = int(12 * 3600 / 2.0)
+    write("TIC-402_operation.csv", 2.0, 2, *simulate(
+        rng, n=n12, dt_s=2.0, K=1.0, tau=600.0, theta=90.0, kc=2.5, ti=120.0, sp=np.full(n12, 60.0), op0=60.0,
+        noise=0.1, load_sd=4.0, load_tau=1800.0))
     # FIC-305: upstream thickener level cycling with a 10 min period
     write("FIC-305_operation.csv", 0.5, 2, *simulate(
         rng, n=n, dt_s=0.5, K=1.0, tau=8.0, theta=3.0, kc=0.7, ti=8.0, sp=np.full(n, 50.0), op0=50.0,

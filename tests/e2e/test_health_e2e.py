@@ -34,14 +34,14 @@ def test_every_row_back_and_only_five_with_records(site):
     code, rows, _ = site
     assert code in (0, 1) and len(rows) == 67
     with_records = {t for t, r in rows.items() if r["health_note"].startswith("operation/")}
-    assert with_records == {"FIC-106", "FIC-241", "FIC-211", "TIC-607", "FIC-305"}
+    assert with_records == {"FIC-106", "FIC-241", "FIC-211", "TIC-402", "FIC-305"}
 
 
 @pytest.mark.parametrize("tag,action,words", [
     ("FIC-106", "return the loop to automatic", "mostly in manual"),
     ("FIC-241", "check valve sizing or range", "output at its high limit"),
     ("FIC-211", "check the valve: suspected sticking, retuning will not cure it", "valve suspected sticking"),
-    ("TIC-607", "retune", "oscillating"),
+    ("TIC-402", "retune", "oscillating"),
     ("FIC-305", "retune", "enters from outside the loop"),
 ])
 def test_each_case_says_its_finding_and_takes_its_action(site, tag, action, words):
@@ -56,14 +56,14 @@ def test_sticking_valve_flags(site):
     _, rows, _ = site
     assert rows["FIC-211"]["valve_sticking"] == "true"
     assert float(rows["FIC-211"]["stiction_index"]) >= 0.7
-    assert rows["FIC-305"]["valve_sticking"] == "false" and rows["TIC-607"]["valve_sticking"] == "false"
+    assert rows["FIC-305"]["valve_sticking"] == "false" and rows["TIC-402"]["valve_sticking"] == "false"
     assert rows["FIC-211"]["verdict"] != "retune"
 
 
 def test_report_has_site_summary_and_loop_charts(site):
     _, _, html = site
     assert "From the operating records" in html
-    for tag in ("FIC-106", "FIC-241", "FIC-211", "TIC-607", "FIC-305"):
+    for tag in ("FIC-106", "FIC-241", "FIC-211", "TIC-402", "FIC-305"):
         assert f'>{tag}</a>' in html
     assert html.count('class="chart chart-health"') >= 13          # trends for 5, pv-op and ACF where closed
     assert "Autocorrelation: oscillation with a period of" in html
