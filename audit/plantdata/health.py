@@ -495,14 +495,19 @@ def add_loop_health(audit, source=None) -> None:
         if _not_the_valve(h):
             retune.add(i)
     res = audit.results
+    cols = {}
     for c in HEALTH_COLUMNS:
         vals = [r[c] for r in recs]
         if c in ("oscillating", "valve_sticking"):
-            res[c] = pd.array(vals, dtype="boolean")
+            cols[c] = pd.array(vals, dtype="boolean")
         elif c in ("health_findings", "health_note"):
-            res[c] = vals
+            cols[c] = pd.array(vals, dtype=object)
         else:
-            res[c] = np.asarray(vals, dtype=float)
+            cols[c] = np.asarray(vals, dtype=float)
+    # one concatenation (and a consolidated copy) instead of many inserts: later stages add columns too
+    new = pd.DataFrame(cols, index=res.index)
+    audit.results = pd.concat([res.drop(columns=[c for c in HEALTH_COLUMNS if c in res.columns]), new],
+                              axis=1).copy()
     audit.extras["health"] = extras
     audit.extras["retune_for_oscillation"] = frozenset(retune)
 

@@ -238,7 +238,8 @@ def check_models(audit) -> None:
 
     Adds :data:`MODELCHECK_COLUMNS`; stores each :class:`ModelCheck` in
     ``audit.extras['model_checks'][row.index]``; for disputed models adds the finding and the
-    action "re-identify the model". Run after the priority stage.
+    action "re-identify the model" (not when the loop-health stage suspects the valve: then the
+    data cannot judge the model, and the finding says so). Run after the priority stage.
 
     Parameters
     ----------
@@ -310,6 +311,13 @@ def check_models(audit) -> None:
         if mc is None or mc.verdict != "disputed":
             continue
         label = res.index[row.index]
+        stuck = res.at[label, "valve_sticking"] if "valve_sticking" in res.columns else None
+        if stuck is not None and stuck is not pd.NA and bool(stuck):
+            # loop health (audit.plantdata.health) suspects the valve: the logged op is not where the valve is
+            _append(res, label, "findings", "the data disagree with the model (" + "; ".join(mc.reasons) + "), "
+                    "but the valve is suspected sticking: the logged op is not the valve's position, so the data "
+                    "cannot judge the model; check the valve first")
+            continue
         words = "the data dispute the model (" + "; ".join(mc.reasons) + "): re-identify"
         st = res.at[label, "id_stable"]
         if st is True:

@@ -47,8 +47,10 @@ def test_every_row_back_and_only_five_with_records(site):
 def test_each_case_says_its_finding_and_takes_its_action(site, tag, action, words):
     _, rows, _ = site
     r = rows[tag]
-    assert r["action"] == action
+    assert action in r["action"].split("; ")         # the model check may add its own action beside it
     assert words in r["health_findings"]
+    if tag == "FIC-211":
+        assert "retune" not in r["action"].split("; ")
     assert r["rank"] != ""
 
 
