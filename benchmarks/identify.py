@@ -97,7 +97,7 @@ def main() -> None:
     print(f"wall {wall:.1f} s (of which simulating the records about {sim * a.records / a.jobs:.1f} s)")
     print(f"identification per record: median {np.median(fit) * 1e3:.0f} ms, 90th percentile "
           f"{np.percentile(fit, 90) * 1e3:.0f} ms; {a.records / fit.sum() * a.jobs:.1f} records/s on {a.jobs} "
-          f"process(es), {a.records * a.samples / fit.sum() * a.jobs / 1e6:.2f} M samples/s")
+          f"process(es), {a.records * a.samples / fit.sum() * a.jobs / 1e3:.1f} k samples/s")
     print(f"identified {len(ident)} of {a.records}; true structure chosen {100 * same:.1f} %")
     if ident:
         print(f"median |gain error| {100 * np.nanmedian([o[2] for o in ident]):.2f} %, median |dead-time error| "
