@@ -28,6 +28,7 @@ import pandas as pd
 from .columns import RESULT_COLUMNS
 from .health_report import health_summary, health_view
 from .loop import LoopModel
+from .plantdata.report_part import data_views
 from .policy import POLICY_HELP
 from .rows import LoopRow
 
@@ -225,6 +226,7 @@ class LoopDetail:
     plots: LoopPlots | None
     notes: tuple[str, ...] = ()
     health: Any = None                        # audit.health_report.HealthView when the row has an operating record
+    data: Any = None                  # audit.plantdata.report_part.DataCheckView: the model against plant data
 
 
 @dataclass(frozen=True)
@@ -319,6 +321,7 @@ class Report:
     detail_mode: str
     notes: tuple[str, ...] = field(default=())
     health: Any = None                       # audit.health_report.HealthSummary when any row has an operating record
+    plant_data: Any = None                   # audit.plantdata.report_part.PlantDataSection, None without records
 
     @property
     def top_work(self) -> tuple[WorkItem, ...]:
@@ -976,6 +979,8 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     drawn = dict(zip([j.key for j in jobs], mapper(plot_data, jobs)))
     details = tuple(d if d.anchor not in drawn else
                     replace(d, plots=drawn[d.anchor][0], notes=drawn[d.anchor][1] + d.notes) for d, _ in pairs)
+    plant_data, data = data_views(audit)
+    details = tuple(replace(d, data=data[d.index]) if d.index in data else d for d in details)
     present = [s for s in STATUS_ORDER if s in statuses] + sorted({s for s in statuses if s not in STATUS_ORDER})
     crit_order = [c for c in ("high", "medium", "low")] + sorted(
         {r.criticality for r in rows} - {"high", "medium", "low"})
@@ -1001,6 +1006,7 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
         detail_mode=mode,
         notes=tuple(notes),
         health=health_summary(audit, {d.index: d.anchor for d in details}),
+        plant_data=plant_data,
     )
 
 
