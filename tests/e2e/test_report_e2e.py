@@ -135,7 +135,7 @@ def test_sample_models_against_plant_data(sample_runs):
     assert rows["AIC-407"]["model_check"] == "not identifiable" and "op moved only" in rows["AIC-407"]["data_note"]
     assert rows["FIC-102"]["model_check"] == "confirmed" and rows["LIC-411"]["id_model"] == "ipdt"
     html = (sample_runs[0] / "report.html").read_text(encoding="utf-8")
-    assert "Models against plant data" in html and "8 loops with a logged record" in html
+    assert "Models against plant data" in html and "13 loops with a logged record" in html   # 8 plant records + 5 operating records
     section = html[html.index('id="loop-tic-607'):]
     section = section[:section.index("</section>")]
     assert "Model against plant data" in section and "<polyline" in section and "disputed" in section
