@@ -87,7 +87,7 @@ References
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Mapping, Sequence
 
 import numpy as np
@@ -154,7 +154,7 @@ class Fit:
         100 (1 - ||y - yhat|| / ||y - mean y||) on the whole record. [%]
     fit_holdout_pct : float
         Fit % on the held-out block (first or last ``holdout`` share) of a model fitted on the
-        rest; NaN when not computed. [%]
+        rest; NaN when not computed (computed for the chosen structure only). [%]
     rss : float
         Residual sum of squares. [%^2]
     bic : float
@@ -705,6 +705,40 @@ def _starts(model: str, step: np.ndarray, h: float, dt: float, seed: np.ndarray 
     return [[th], [0.5 * th + dt]]
 
 
+def _holdout(model: str, x: np.ndarray, op: np.ndarray, pv: np.ndarray, dt: float, share: float,
+             yhat: np.ndarray) -> float:
+    """Fit % on the held-out block (first or last ``share``, the livelier) of a refit on the rest. [%]"""
+    n = len(op)
+    t = np.arange(n) * dt
+    u = op - op[0]
+    m = int(round(n * share))
+    if not (m > 20 and n - m > 20):
+        return float("nan")
+    first = np.arange(n) < m
+    last = np.arange(n) >= n - m
+    block = first if np.std(yhat[first]) > np.std(yhat[last]) else last
+    keep = ~block
+    if not np.ptp(op[keep]) > 0:
+        return float("nan")
+    xh = _fit_structure(model, u, pv, t, dt, [x], keep)
+    if xh is None:
+        return float("nan")
+    fh, _ = _full(model, xh, u, pv, t, dt, keep)
+    return nrmse_fit(pv[block], _predict(model, fh, u, t, dt)[block])
+
+
+def _x_of(f: Fit) -> tuple[str, np.ndarray]:
+    """Internal structure name and nonlinear parameters of a fit (to refit it)."""
+    p = f.params
+    if f.model == "fopdt":
+        return "fopdt", np.array([p["tau1"], p["dead_time"]])
+    if f.model == "ipdt":
+        return "ipdt", np.array([p["dead_time"]])
+    if p["tau_lead"] == 0.0 and f.ci95["tau_lead"] == 0.0:
+        return "sopdt0", np.array([p["tau1"], p["tau2"], p["dead_time"]])
+    return "sopdt", np.array([p["tau1"], p["tau2"], p["tau_lead"], p["dead_time"]])
+
+
 def fit_structure(model: str, op: np.ndarray, pv: np.ndarray, dt: float, step: tuple[np.ndarray, float] | None = None,
                   holdout: float = 0.3, seed: Fit | None = None) -> Fit | None:
     """Fit one structure by output-error least squares (see the module notes).
@@ -766,21 +800,7 @@ def fit_structure(model: str, op: np.ndarray, pv: np.ndarray, dt: float, step: t
     except np.linalg.LinAlgError:
         half = np.full(p, np.inf)
     bic = n_eff * math.log(max(rss / n, 1e-300)) + p * math.log(n_eff)
-    fit_h = float("nan")
-    if holdout > 0:
-        # the held-out block: the first or the last share of the record, whichever the model says
-        # moves more (a quiet block would only measure noise)
-        m = int(round(n * holdout))
-        if m > 20 and n - m > 20:
-            first = np.arange(n) < m
-            last = np.arange(n) >= n - m
-            block = first if np.std(yhat[first]) > np.std(yhat[last]) else last
-            keep = ~block
-            if np.ptp(op[keep]) > 0:
-                xh = _fit_structure(model, u, pv, t, dt, [x], keep)
-                if xh is not None:
-                    fh, _ = _full(model, xh, u, pv, t, dt, keep)
-                    fit_h = nrmse_fit(pv[block], _predict(model, fh, u, t, dt)[block])
+    fit_h = _holdout(model, x, op, pv, dt, holdout, yhat) if holdout > 0 else float("nan")
     params = {k: float(v) for k, v in zip(PARAMS[model], full)}
     ci = {k: float(v) for k, v in zip(PARAMS[model], half)}
     if model in ("sopdt", "sopdt0") and params["tau2"] > params["tau1"]:
@@ -846,7 +866,7 @@ def identify_arrays(op: np.ndarray, pv: np.ndarray, dt: float, policy: IdentifyP
     step = step_estimate(op, pv, dt)
     fits: dict[str, Fit] = {}
     for m in sorted(policy.models, key=("fopdt", "ipdt", "sopdt").index):
-        f = fit_structure(m, op, pv, dt, step, policy.holdout, fits.get("fopdt"))
+        f = fit_structure(m, op, pv, dt, step, 0.0, fits.get("fopdt"))   # held-out fit: the chosen one only
         if f is not None and np.isfinite(f.rss):
             fits[m] = f
     if not fits:
@@ -859,6 +879,10 @@ def identify_arrays(op: np.ndarray, pv: np.ndarray, dt: float, policy: IdentifyP
         if so.bic < fits[best].bic - policy.bic_margin and so.params["tau2"] > dt:
             best = "sopdt"
     bf = fits[best]
+    if policy.holdout > 0:
+        name_x, x = _x_of(bf)
+        bf = replace(bf, fit_holdout_pct=_holdout(name_x, x, op, pv, dt, policy.holdout, bf.yhat))
+        fits[best] = bf
     if not bf.fit_pct >= policy.min_fit_pct:
         return refuse(f"best model ({best}) fits only {bf.fit_pct:.0f} % (less than {policy.min_fit_pct:g} %): "
                       f"the data do not support a model", fits)

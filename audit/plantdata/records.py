@@ -376,6 +376,7 @@ def _show(text: str) -> str:
 class _Chunk:
     lines: np.ndarray                    # int64 line (CSV) or row (Parquet) numbers
     cols: dict[str, pd.Series]           # source column (lower-case) -> raw values
+    bad: tuple[tuple[int, str], ...] = ()  # (line, why) of lines that are no readable CSV
 
 
 def _csv_header(fh) -> tuple[int, list[str]] | None:
@@ -403,7 +404,9 @@ def _csv_chunks(fh, first_line: int, names: list[str], want: list[int], rows: in
         lines = np.arange(line, line + nl, dtype=np.int64)
         line += nl
         df = None
-        if b"#" not in block and b'"' not in block:
+        limit = csv.field_size_limit()
+        long_line = max(map(len, raw)) > limit
+        if b"#" not in block and b'"' not in block and not long_line:
             try:
                 df = pd.read_csv(io.BytesIO(block), header=None, names=list(range(ncol)), usecols=want,
                                  keep_default_na=False, na_values=[""], skip_blank_lines=False, engine="c",
@@ -415,13 +418,19 @@ def _csv_chunks(fh, first_line: int, names: list[str], want: list[int], rows: in
         if df is None:                                      # slow path: line by line
             cells: list[list[str]] = [[] for _ in want]
             keep = []
-            for j, r in enumerate(csv.reader(b.decode("utf-8", "replace") for b in raw)):
+            bad = []
+            for j, b in enumerate(raw):
+                try:
+                    r = next(csv.reader([b.decode("utf-8")]), [])
+                except (csv.Error, UnicodeDecodeError) as exc:
+                    bad.append((int(lines[j]), f"not a readable CSV line ({str(exc)[:80]})"))
+                    continue
                 if not r or not any(c.strip() for c in r) or r[0].lstrip().startswith("#"):
                     continue
                 keep.append(j)
                 for c, i in enumerate(want):
                     cells[c].append(r[i] if i < len(r) else "")
-            yield _Chunk(lines[keep], {k: pd.Series(v, dtype=object) for k, v in zip(keys, cells)})
+            yield _Chunk(lines[keep], {k: pd.Series(v, dtype=object) for k, v in zip(keys, cells)}, tuple(bad))
             continue
         df = df[want]
         df.columns = keys
@@ -711,6 +720,8 @@ def read_record(path: str | Path, signals: Sequence[str] = SIGNALS, pv_lo: float
                 truncated = True
                 notes.add("cap", f"more than {policy.max_rows} data {unit}s; nothing after "
                                  f"{unit} {last} read (ReadPolicy.max_rows)")
+            for ln, why in ch.bad:
+                notes.add("cell", why, ln)
             n_rows += len(ch.lines)
             parts_l.append(ch.lines)
             parts_t.append(_times(ch.cols[tname], ch.lines, tname, notes, state))
@@ -851,6 +862,12 @@ def _segments(t, lines, vals, mode, ui, dt, policy: ReadPolicy, notes: _Notes, t
         ts = t[sel]
         dts = np.diff(ts)
         if float(np.max(np.abs(dts - dt)) / dt) > policy.uniform_tolerance:
+            span = (ts[-1] - ts[0]) / dt
+            if not span < policy.max_rows:
+                notes.add("cap", f"resampling every {dt:g} s over {ts[-1] - ts[0]:g} s would give {span:.3g} "
+                                 f"samples; at most {policy.max_rows:,} are used (decimate the record)",
+                          int(lines[sel[0]]), tname, int(lines[sel[-1]]))
+                continue
             steps = np.rint(dts / dt)
             holes = steps >= 2
             filled += int(np.sum(steps[holes] - 1))
