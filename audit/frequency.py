@@ -931,7 +931,8 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     out["stable"] &= z >= 0
 
     # ---- gain margins ----
-    negx = rex < 0
+    # (a pass through L = 0, at a zero on the imaginary axis, is no crossing of the negative real axis)
+    negx = (rex < 0) & (np.abs(Lx) > 1e-12)
     kfac = np.where(negx, -1.0 / np.where(negx, rex, -1.0), np.nan)
     with np.errstate(invalid="ignore"):
         up = negx & (kfac > 1.0)

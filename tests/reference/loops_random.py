@@ -110,7 +110,7 @@ def random_tf_loop(rng: np.random.Generator) -> LoopModel:
     ref = ref[ref > 0]
     w_ref = float(rng.choice(ref)) * float(10 ** rng.uniform(-0.3, 0.3))
     g = abs(P0.rational(np.array([1j * w_ref]))[0])
-    kc = float(10 ** rng.uniform(-0.7, 0.7)) / max(g, 1e-12)
+    kc = float(10 ** rng.uniform(-1.8, 0.5)) / max(g, 1e-12)
     ti = None if kind == "P" else float(10 ** rng.uniform(0.0, 1.0)) / w_ref
     td = float(10 ** rng.uniform(-1.0, 0.0)) / w_ref if kind == "PID" else 0.0
     C = Controller("ideal", kc=kc, ti=ti, td=td, alpha=0.1)
