@@ -908,7 +908,13 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     np.add.at(n_net, sx[left], np.where(down[left], 1, -1))
     a_lo = np.angle(one_plus[start])
     m = np.round((2.0 * a_lo + kpos * np.pi) / (2.0 * np.pi)).astype(int)
-    z = p_open - 2 * n_net + m
+    # the large arc: without dead time L -> L(inf) there, and a biproper loop with L(inf) < -1 crosses the
+    # ray (-inf, -1) once on it (L ~ L(inf) + a/s: from the side where L(jw) ends, to the other); counted
+    # once (no mirror half), +1 when downward (Im L > 0 at the end of the grid), as n counts
+    last = start + counts - 1
+    arc = np.where((tdelay[ents] == 0) & (st.l_inf_real[ents] < -1.0) & (batch.inner[ents] < 0),
+                   np.sign(L.imag[last]), 0.0).astype(int)
+    z = p_open - 2 * n_net - arc + m
     # neutral-type loops: |L(inf)| >= 1 with a delay cannot be stable
     neutral = (st.l_inf[ents] >= 1.0) & (tdelay[ents] > 0)
     min_dist = _seg_min(abs1, seg, n)
@@ -968,6 +974,16 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     zl = k_lim < gm
     gm = np.where(zl, k_lim, gm)
     w180 = np.where(zl, np.inf, w180)
+    # without dead time a biproper loop with L(inf) real and negative crosses the negative real axis at
+    # w = inf (the large arc): at the factor -1/L(inf) a closed-loop pole passes through infinity
+    lr = st.l_inf_real[ents]
+    with np.errstate(divide="ignore"):
+        k_arc = np.where((tdelay[ents] == 0) & (lr < 0) & (batch.inner[ents] < 0), -1.0 / lr, np.nan)
+    za = (k_arc > 1.0) & (k_arc < gm)
+    gm = np.where(za, k_arc, gm)
+    w180 = np.where(za, np.inf, w180)
+    zb = (k_arc < 1.0) & ~(gm_low >= k_arc)
+    gm_low = np.where(zb, k_arc, gm_low)
     out["gm"] = gm
     with np.errstate(divide="ignore"):
         out["gm_db"] = 20.0 * np.log10(gm)

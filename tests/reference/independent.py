@@ -112,15 +112,16 @@ def _refine(f, w: np.ndarray, passes: int = 60) -> tuple[np.ndarray, np.ndarray]
 
 
 def _tail_end(m: LoopModel, zeros, poles, l_inf: float) -> float:
-    """Where the grid of a loop with dead time ends: past the last point with |L| >= TAIL (strictly
-    proper), or TURNS turns of the delay past a hundred times the largest root (|L(inf)| > 0)."""
+    """Where the grid of a loop with dead time ends: past the last point with |L| >= TAIL and past a
+    hundred times the largest root (strictly proper), or TURNS turns of the delay past that (|L(inf)| > 0)."""
     mags = np.abs(np.concatenate([zeros, poles, [1.0 / m.delay]]))
     top = 100.0 * mags.max()
     if l_inf > 0:
         return top + TURNS * 2 * math.pi / m.delay
     w = np.geomspace(top * 1e-8, top * 1e8, 4001)
     above = np.flatnonzero(np.abs(m.rational(1j * w)) >= TAIL)
-    return float(w[min(above[-1] + 1, w.size - 1)]) if above.size else top
+    # (never before ``top``: a resonance's narrow peak may lie between these points)
+    return max(float(w[min(above[-1] + 1, w.size - 1)]), top) if above.size else top
 
 
 def _bisect(g, a: np.ndarray, b: np.ndarray, steps: int = 60) -> np.ndarray:
@@ -214,6 +215,8 @@ def evaluate_independent(m: LoopModel) -> Truth:
         kf.append(-1.0 / L0.real)
     if delay > 0 and 0 < l_inf < 1:
         kf.append(1.0 / l_inf)                   # infimum of the crossings as w -> inf
+    if delay == 0 and l_inf_real < 0:
+        kf.append(-1.0 / l_inf_real)             # the crossing at w = inf (a pole through infinity)
     kf = np.array(kf)
     up = kf[kf > 1]
     gm = float(up.min()) if up.size else math.inf
