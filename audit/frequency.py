@@ -710,7 +710,8 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray, cap:
     start = np.cumsum(npts) - npts
     pos = np.arange(seg.size) - start[seg]
     w = w_s[seg] * 10.0 ** (pos / per_dec)
-    mag = np.abs(_Points(batch, ents[seg], reuse=False)(w, delay=False))    # |e^{-jw theta}| = 1
+    with np.errstate(divide="ignore", invalid="ignore"):     # (a point on an undamped pole: |L| = inf, above)
+        mag = np.abs(_Points(batch, ents[seg], reuse=False)(w, delay=False))    # |e^{-jw theta}| = 1
     # (with 0 < |L(inf)| < 1 below 1 as well: |L| may fall through 1 close to its limit)
     linf = st.l_inf[ents]
     thr = np.maximum(TAIL_LEVEL, linf * (1 + 1e-3) + TAIL_LEVEL * linf)
@@ -729,9 +730,11 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray, cap:
     # it |L| ~ |L(j w_d)| h / |w - w_d| (h = |Re p|) falls below the level at w_d + h |L(j w_d)| / level
     r_loc, r_w, r_h, _ = _resonances(st, ents, pole=True)
     if r_loc.size:
-        peak = np.abs(_Points(batch, ents[r_loc], reuse=False)(r_w, delay=False))
-        hit = peak >= thr[r_loc]
-        end = (r_w + r_h * peak / thr[r_loc]) * TAIL_MARGIN
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            peak = np.abs(_Points(batch, ents[r_loc], reuse=False)(r_w, delay=False))
+            end = (r_w + r_h * peak / thr[r_loc]) * TAIL_MARGIN
+        # (a pole on the axis itself, h = 0, has no finite peak: such loops are decided apart)
+        hit = (peak >= thr[r_loc]) & np.isfinite(end)
         np.maximum.at(w_hi, r_loc[hit], end[hit])
     # without dead time the phase only settles beyond every corner: the grid goes on to ``top``,
     # so that a phase crossover where |L| is small (a large gain margin) and the crossover of a
@@ -936,7 +939,8 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     notes[st.axis_poles[ents] > 0] = AXIS_NOTE
     notes[min_dist < 1e-9] = "L(jw) passes through -1: marginally stable, treated as not stable"
     notes[capped] = "frequency grid capped; figures at very high frequency may be incomplete"
-    notes[z < 0] = "Nyquist count inconsistent (numerical); treated as not stable"
+    # (with open-loop poles on the axis the count means nothing: their note stays, they are decided apart)
+    notes[(z < 0) & (st.axis_poles[ents] == 0)] = "Nyquist count inconsistent (numerical); treated as not stable"
     out["stable"] &= z >= 0
 
     # ---- gain margins ----
