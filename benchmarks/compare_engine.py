@@ -99,7 +99,7 @@ def compare(a: pd.DataFrame, b: pd.DataFrame, models=None) -> dict[str, tuple[fl
     out = {}
     for c in a.columns:
         x, y = a[c], b[c]
-        if c in ("stable", "engine_note", "rhp_closed", "rhp_open"):
+        if c in ("stable", "engine_note", "lower_bounds", "rhp_closed", "rhp_open"):
             bad = sum(not (_missing(u) and _missing(v) or (not _missing(u) and not _missing(v) and u == v))
                       for u, v in zip(x.astype(object), y.astype(object)))
             out[c] = (0.0 if bad == 0 else np.inf, bad)
