@@ -224,6 +224,7 @@ STAGES: tuple[tuple[str, str, str], ...] = (
     ("residual_check", "audit.pipeline", "judge_residuals"),
     ("proposals", "audit.tuning", "add_proposals"),
     ("priority", "audit.priority", "add_priority"),
+    ("modelcheck", "audit.plantdata.modelcheck", "check_models"),
 )
 
 

@@ -27,6 +27,7 @@ import pandas as pd
 
 from .columns import RESULT_COLUMNS
 from .loop import LoopModel
+from .plantdata.report_part import data_views
 from .policy import POLICY_HELP
 from .rows import LoopRow
 
@@ -223,6 +224,7 @@ class LoopDetail:
     proposal: "ProposalView | None"
     plots: LoopPlots | None
     notes: tuple[str, ...] = ()
+    data: Any = None                  # audit.plantdata.report_part.DataCheckView: the model against plant data
 
 
 @dataclass(frozen=True)
@@ -316,6 +318,7 @@ class Report:
     glossary: tuple[GlossaryEntry, ...]
     detail_mode: str
     notes: tuple[str, ...] = field(default=())
+    plant_data: Any = None                   # audit.plantdata.report_part.PlantDataSection, None without records
 
     @property
     def top_work(self) -> tuple[WorkItem, ...]:
@@ -972,6 +975,8 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     drawn = dict(zip([j.key for j in jobs], mapper(plot_data, jobs)))
     details = tuple(d if d.anchor not in drawn else
                     replace(d, plots=drawn[d.anchor][0], notes=drawn[d.anchor][1] + d.notes) for d, _ in pairs)
+    plant_data, data = data_views(audit)
+    details = tuple(replace(d, data=data[d.index]) if d.index in data else d for d in details)
     present = [s for s in STATUS_ORDER if s in statuses] + sorted({s for s in statuses if s not in STATUS_ORDER})
     crit_order = [c for c in ("high", "medium", "low")] + sorted(
         {r.criticality for r in rows} - {"high", "medium", "low"})
@@ -996,6 +1001,7 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
         glossary=tuple(GlossaryEntry(c.name, c.unit, c.meaning) for c in RESULT_COLUMNS),
         detail_mode=mode,
         notes=tuple(notes),
+        plant_data=plant_data,
     )
 
 
