@@ -43,7 +43,9 @@ RESULT_COLUMNS: tuple[Column, ...] = (
     C("findings", "-", "Each broken or nearly broken limit in words with values, separated by '; '.", "frequency"),
     C("message", "-", "Every validation problem of the row, each naming sheet, cell and column, separated by '; '.", "inventory"),
     C("stable", "-", "Closed-loop stability, decided by the Nyquist argument on the exact-delay L(jw).", "frequency"),
-    C("rhp_closed", "-", "Number of closed-loop poles in the right half-plane (0 when stable).", "frequency"),
+    C("rhp_closed", "-", "Number of closed-loop poles in the right half-plane (0 when stable; poles on the imaginary "
+      "axis are not counted); blank when there are infinitely many (|L(inf)| > 1 with dead time: a neutral loop, "
+      "or an outer loop around one).", "frequency"),
     C("rhp_open", "-", "Number of open-loop poles of L in the right half-plane (integrators excluded).", "frequency"),
     C("gm", "-", "Gain margin: smallest factor k > 1 by which the loop gain can rise before instability; inf when none.", "frequency"),
     C("gm_db", "dB", "Gain margin in dB, 20 log10(gm).", "frequency"),
@@ -56,6 +58,8 @@ RESULT_COLUMNS: tuple[Column, ...] = (
     C("w_ms_rad_s", "rad/s", "Frequency of the sensitivity peak (inf when the supremum is the high-frequency limit).", "frequency"),
     C("mt", "-", "Complementary sensitivity peak, sup of |T(jw)|.", "frequency"),
     C("w_mt_rad_s", "rad/s", "Frequency of the complementary sensitivity peak (0 when the supremum is the w -> 0 limit).", "frequency"),
+    C("lower_bounds", "-", "Figures reported as lower bounds, not values ('ms', 'mt'): the peak search was cut "
+      "short on a loop passing near -1 very many times; blank when every figure is a value.", "frequency"),
     C("wb_rad_s", "rad/s", "Bandwidth: lowest frequency where |S| rises through 1/sqrt(2); blank when |S| starts above it.", "frequency"),
     C("band_rad_s", "rad/s", "Upper edge wd of the rejection band in force.", "frequency"),
     C("attenuation_db", "dB", "Required attenuation A in force.", "frequency"),
