@@ -339,3 +339,50 @@ def _form_groups(rows: list[Coupling], loop_rows: Sequence[LoopRow],
                 out[k] = Coupling(c.sheet, c.excel_row, c.from_tag, c.to_tag, None, c.source, c.target,
                                   (p,) + c.errors, c.warnings)
     return out, tuple(groups)
+
+
+#: Headers of the template's couplings sheet, with their help text (the loops sheet's units).
+TEMPLATE_HEADERS: tuple[tuple[str, str], ...] = (
+    ("from_tag", "Tag of the loop whose controller output acts (a row of the loops sheet)."),
+    ("to_tag", "Tag of the loop whose PV it moves (another row of the loops sheet)."),
+    ("model", "fopdt, sopdt, ipdt or tf, as on the loops sheet."),
+    ("gain", "Gain in % of the to-loop's PV range per % of the from-loop's output (ipdt: 1/s). Not zero."),
+    ("tau1_s", "Time constant [s]; rename to tau1_min or tau1_h for other units."),
+    ("tau2_s", "sopdt only: second time constant [s]."),
+    ("lead_s", "sopdt only: lead time [s]."),
+    ("dead_time_s", "Dead time of the coupling path [s]."),
+    ("num", "tf only: numerator coefficients, descending powers of s, separated by spaces."),
+    ("den", "tf only: denominator coefficients."),
+    ("note", "Free text (ignored by the tool)."),
+)
+
+#: The couplings sheet's instructions (also in the template's instructions sheet).
+TEMPLATE_HELP = (
+    "Interacting loops (optional 'couplings' sheet): one row per way one loop's controller output moves",
+    "another loop's PV: from_tag, to_tag and a model in the loops sheet's columns and units. Loops joined by",
+    f"couplings are audited together as a group (at most {MAX_GROUP} loops), each keeping its single-loop results.",
+    "Do not couple a cascade's inner loop or two loops of one cascade (the cascade already models that path).",
+)
+
+
+def write_template_sheet(wb) -> None:
+    """Add an empty ``couplings`` sheet with header notes to a template workbook.
+
+    Parameters
+    ----------
+    wb : openpyxl.Workbook
+        The template being written (the sheet goes after ``loops``).
+    """
+    from openpyxl.comments import Comment
+    from openpyxl.styles import Font, PatternFill
+
+    ws = wb.create_sheet("couplings", index=1)
+    for j, (name, text) in enumerate(TEMPLATE_HEADERS, start=1):
+        c = ws.cell(1, j, name)
+        c.font = Font(bold=True)
+        c.fill = PatternFill("solid", fgColor="DDE7F0")
+        note = Comment(text, "plant-audit")
+        note.width, note.height = 300, 110
+        c.comment = note
+        ws.column_dimensions[c.column_letter].width = max(10, len(name) + 4)
+    ws.freeze_panes = "A2"
