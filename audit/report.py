@@ -316,6 +316,7 @@ class Report:
     glossary: tuple[GlossaryEntry, ...]
     detail_mode: str
     notes: tuple[str, ...] = field(default=())
+    groups: tuple = field(default=())        # audit.multiloop.report.GroupSection, one per group
 
     @property
     def top_work(self) -> tuple[WorkItem, ...]:
@@ -996,7 +997,13 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
         glossary=tuple(GlossaryEntry(c.name, c.unit, c.meaning) for c in RESULT_COLUMNS),
         detail_mode=mode,
         notes=tuple(notes),
+        groups=_group_sections(audit),
     )
+
+
+def _group_sections(audit) -> tuple:
+    from .multiloop.report import group_sections
+    return group_sections(audit)
 
 
 def _loop_line(row: LoopRow, res: _Results, i: int, status: str, anchors: set[str]) -> LoopLine:
