@@ -138,12 +138,41 @@ def _process_elements(g: GroupModel) -> dict[tuple[int, int], _Element]:
     return out
 
 
-def _matrix(elements: dict[tuple[int, int], _Element], n: int, s: np.ndarray) -> np.ndarray:
-    s = np.asarray(s, complex)
-    out = np.zeros(s.shape + (n, n), complex)
-    for (i, j), e in elements.items():
-        out[..., i, j] = _value(e, s)
+def _horner(coef: np.ndarray, s: np.ndarray) -> np.ndarray:
+    """Row-wise polynomials (E, d), descending, at the points s (N,): (E, N), all rows at once."""
+    acc = np.zeros((coef.shape[0], s.size), complex)
+    for c in coef.T:
+        acc = acc * s[None, :] + c[:, None]
+    return acc
+
+
+def _padded(polys: list[tuple[float, ...]]) -> np.ndarray:
+    width = max(len(p) for p in polys)
+    out = np.zeros((len(polys), width))
+    for k, p in enumerate(polys):
+        out[k, width - len(p):] = p
     return out
+
+
+def _matrix(elements: dict[tuple[int, int], _Element], n: int, s: np.ndarray) -> np.ndarray:
+    """The matrix of the elements at every s; rational parts of all elements evaluated together."""
+    s = np.asarray(s, complex)
+    flat = s.ravel()
+    keys = list(elements)
+    els = [elements[k] for k in keys]
+    num = _horner(_padded([e.rational.num for e in els]), flat)
+    den = _horner(_padded([e.rational.den for e in els]), flat)
+    delay = np.array([e.delay for e in els])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        vals = num / den * np.exp(-delay[:, None] * flat[None, :])
+    for k, e in enumerate(els):
+        if e.inner is not None:
+            vals[k] = vals[k] * _inner_t(e.inner, flat)
+    out = np.zeros((flat.size, n, n), complex)
+    ii = np.array([k[0] for k in keys])
+    jj = np.array([k[1] for k in keys])
+    out[:, ii, jj] = vals.T
+    return out.reshape(s.shape + (n, n))
 
 
 def loop_matrix(group: GroupModel, s: np.ndarray) -> np.ndarray:
@@ -573,20 +602,28 @@ class Crossing:
     w: float
 
 
-def _crossings(f: Callable[[np.ndarray], np.ndarray], w: np.ndarray, x: np.ndarray, rounds: int = 3) -> tuple[np.ndarray, np.ndarray]:
-    """Roots of the real function x(w) = f(w) between sign changes on the grid, refined by resampling."""
-    k = np.flatnonzero(np.sign(x[:-1]) * np.sign(x[1:]) < 0)
+def _crossings(f: Callable[[np.ndarray], np.ndarray], w: np.ndarray, x: np.ndarray, keep: np.ndarray | None = None,
+               rounds: int = 3) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Sign changes of every column of x(w) (nw, m) on the grid, refined together by resampling.
+
+    ``f`` gives all columns at once, shape (N, m); ``keep`` (nw - 1, m) selects the intervals worth
+    refining. Returns (column, lo, hi) of every bracket.
+    """
+    change = np.sign(x[:-1]) * np.sign(x[1:]) < 0
+    if keep is not None:
+        change &= keep
+    k, col = np.nonzero(change)
     lo, hi = w[k], w[k + 1]
+    t = np.linspace(0.0, 1.0, 17)
     for _ in range(rounds):
         if k.size == 0:
             break
-        t = np.linspace(0.0, 1.0, 17)
         ws = lo[:, None] + (hi - lo)[:, None] * t[None, :]
-        xs = f(ws.ravel()).reshape(ws.shape)
+        xs = f(ws.ravel()).reshape(ws.shape + (x.shape[1],))[np.arange(k.size), :, col]
         sc = np.sign(xs[:, :-1]) * np.sign(xs[:, 1:]) < 0
         j = np.argmax(sc, axis=1)
         lo, hi = ws[np.arange(k.size), j], ws[np.arange(k.size), j + 1]
-    return lo, hi
+    return col, lo, hi
 
 
 @dataclass(frozen=True)
@@ -808,31 +845,28 @@ def analyse_group(group: GroupModel, stability: GroupStability | None = None) ->
         return 1.0 / np.diagonal(Sx, axis1=1, axis2=2) - 1.0       # (nw, n)
 
     Le = 1.0 / np.diagonal(S, axis1=1, axis2=2) - 1.0
+    # phase crossovers worth refining: on the negative real side with |L| between MARGIN_TAIL and 1
+    neg = (Le.real[:-1] < 0) | (Le.real[1:] < 0)
+    mag = np.maximum(np.abs(Le[:-1]), np.abs(Le[1:]))
+    col_i, a_im, b_im = _crossings(lambda x: leff(x).imag, w, Le.imag, neg & (mag > MARGIN_TAIL))
+    col_m, a_mg, b_mg = _crossings(lambda x: np.abs(leff(x)) - 1.0, w, np.abs(Le) - 1.0)
+    w_im = 0.5 * (a_im + b_im)
+    w_mg = 0.5 * (a_mg + b_mg)
+    l_im = leff(w_im)[np.arange(w_im.size), col_i] if w_im.size else np.zeros(0, complex)
+    l_mg = leff(w_mg)[np.arange(w_mg.size), col_m] if w_mg.size else np.zeros(0, complex)
     loops = []
     for i in range(n):
-        def f_im(x, i=i):
-            return leff(x)[:, i].imag
-
-        def f_mag(x, i=i):
-            return np.abs(leff(x)[:, i]) - 1.0
-
-        a, b = _crossings(f_im, w, Le[:, i].imag)
-        wx = 0.5 * (a + b)
         gm, w180 = math.inf, math.nan
-        if wx.size:
-            lx = leff(wx)[:, i]
-            k = np.flatnonzero((lx.real < 0) & (np.abs(lx) < 1))
-            if k.size:
-                j = k[np.argmin(1.0 / np.abs(lx[k]))]
-                gm, w180 = float(1.0 / abs(lx[j])), float(wx[j])
-        a, b = _crossings(f_mag, w, np.abs(Le[:, i]) - 1.0)
-        wx = 0.5 * (a + b)
+        k = np.flatnonzero((col_i == i) & (l_im.real < 0) & (np.abs(l_im) < 1))
+        if k.size:
+            j = k[np.argmax(np.abs(l_im[k]))]
+            gm, w180 = float(1.0 / abs(l_im[j])), float(w_im[j])
         pm, wcx = math.inf, math.nan
-        if wx.size:
-            ph = np.degrees(np.angle(leff(wx)[:, i]))
-            pmv = 180.0 - np.abs(ph)
+        k = np.flatnonzero(col_m == i)
+        if k.size:
+            pmv = 180.0 - np.abs(np.degrees(np.angle(l_mg[k])))
             j = int(np.argmin(np.abs(pmv)))
-            pm, wcx = float(pmv[j]), float(wx[j])
+            pm, wcx = float(pmv[j]), float(w_mg[k[j]])
         lam0 = float(rga0[i, i]) if rga0 is not None else math.nan
         loops.append(LoopInGroup(group.tags[i], gm, w180, pm, wcx, ms_peaks[i].value, ms_peaks[i].w, lam0,
                                  complex(rga_wc[i][i, i])))
