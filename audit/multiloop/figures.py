@@ -378,6 +378,9 @@ class GroupStability:
         det(I + L(jw)) on the imaginary axis from w_lo (0 without integrators) to w_hi.
     w_hi : float
         Frequency beyond which |L(s)| is small enough for the tail in closed form. [rad/s]
+    at_zero : int
+        Closed-loop poles at s = 0 (an integrating path that no loop holds at rest); the group
+        is then not stable whatever ``rhp_closed`` says. [-]
     """
 
     stable: bool
@@ -387,6 +390,32 @@ class GroupStability:
     note: str
     axis: Trace
     w_hi: float
+    at_zero: int = 0
+
+
+def _zero_order(coef: Sequence[float]) -> int:
+    """Number of roots at s = 0 of a polynomial (trailing zero coefficients)."""
+    k = 0
+    for c in reversed(coef):
+        if c != 0:
+            break
+        k += 1
+    return k
+
+
+def _open_loop_integrators(group: GroupModel) -> int:
+    """Poles at s = 0 of the open loop as the plant has them: each controller's, and each PV's.
+
+    A PV moved through integrating elements integrates once whichever output moves it: the
+    integrators of one row of G are shared (a tank with several inflows is one integrator), so a
+    row counts its largest integrator order, not the sum.
+    """
+    n = group.size
+    ctrl = sum(_zero_order(m.controller.rational.den) for m in group.loops)
+    rows = [0] * n
+    for (i, j), e in _process_elements(group).items():
+        rows[i] = max(rows[i], _zero_order(e.rational.den))
+    return ctrl + sum(rows)
 
 
 def _roots(coef: Sequence[float]) -> np.ndarray:
@@ -475,7 +504,11 @@ def group_stability(group: GroupModel) -> GroupStability:
     s = w_lo e^{j phi}, phi from -pi/2 to pi/2) - 2 x sum_i arg(1 + lambda_i(L(j w_hi))), the last
     term being exact for the tail and the large arc because there the Frobenius norm of L is below
     :data:`TAIL_BOUND`, so every eigenvalue factor 1 + lambda_i stays in the right half-plane.
-    Groups whose curve passes through (or within refinement of) the origin, with open-loop
+    With integrators, the closed loop keeps (open-loop integrators - k) poles at s = 0, k being the
+    order of the pole of det(I + L) at s = 0 read from the indentation; the open-loop count takes
+    each controller's integrators and, per PV, the largest integrator order of its row of G (the
+    plant's integrators, shared by the inputs that move one PV). Any pole at s = 0 makes the group
+    not stable (``at_zero``). Groups whose curve passes through (or within refinement of) the origin, with open-loop
     poles on the imaginary axis other than integrators, or with a high-frequency loop gain too
     large to bound, are reported not stable with a note.
 
@@ -531,7 +564,12 @@ def group_stability(group: GroupModel) -> GroupStability:
         if not semi.resolved:
             return GroupStability(False, None, P, None, "det(I + L) passes near the origin on the indentation around "
                                   "s = 0 (a closed-loop pole near s = 0): marginal, reported not stable", axis, w_hi)
-        delta += np.unwrap(np.angle(semi.det))[-1] - np.angle(semi.det[0])
+        d_ind = float(np.unwrap(np.angle(semi.det))[-1] - np.angle(semi.det[0]))
+        delta += d_ind
+        # det(I + L) ~ c s^-k near s = 0 turns by -k pi on the indentation; the closed loop keeps
+        # (open-loop integrators - k) poles at s = 0 (det(sI - A_cl) = det(sI - A_ol) det(I + L))
+        k = int(round(-d_ind / np.pi))
+        at_zero = _open_loop_integrators(group) - k
     lam = np.linalg.eigvals(_matrix(elements, n, np.array([1j * w_hi]))[0])
     delta -= 2.0 * float(np.sum(np.angle(1.0 + lam)))
     zf = P - delta / (2 * np.pi)
@@ -539,6 +577,13 @@ def group_stability(group: GroupModel) -> GroupStability:
     if abs(zf - z) > 0.05 or z < 0:
         return GroupStability(False, None, P, None, f"winding count not an integer ({zf:.3f}): not decided, "
                               "reported not stable", axis, w_hi)
+    if integ and at_zero != 0:
+        if at_zero < 0:
+            return GroupStability(False, None, P, None, "integrator count inconsistent on the indentation around "
+                                  "s = 0: not decided, reported not stable", axis, w_hi)
+        return GroupStability(False, z, P, z - P, f"{at_zero} closed-loop pole{'s' if at_zero != 1 else ''} at "
+                              "s = 0: an integrating path that no loop can hold at rest (the group drifts), "
+                              "reported not stable", axis, w_hi, at_zero)
     return GroupStability(z == 0, z, P, z - P, "", axis, w_hi)
 
 

@@ -124,3 +124,14 @@ def test_time_column_without_unit_and_gain_eu(tmp_path):
     msgs = problems(inv)
     assert any(m.startswith("couplings!F1") and "needs its unit" in m for m in msgs)
     assert any(m.startswith("couplings!G1 (gain_eu)") for m in msgs)
+
+
+def test_check_command_names_coupling_cells(tmp_path, capsys):
+    """`check` reports coupling problems by cell and exits 2; the loops themselves stay valid."""
+    from audit.cli import main
+    p = book(tmp_path, [loop("A"), loop("B")], [["A", "Q", "fopdt", 0.4, 60, 5]])
+    code = main(["check", str(p)])
+    out = capsys.readouterr().out
+    assert code == 2
+    assert "couplings!B2 (to_tag): unknown tag 'Q'" in out
+    assert "2 rows read, 2 valid, 0 invalid" in out

@@ -90,3 +90,35 @@ def test_detuned_forms():
     assert (c.kc, c.ti, c.td) == (1.0, 20.0, 1.0)
     p = detuned(Controller("parallel", kp=2.0, ki=0.2, kd=2.0), 2.0)
     assert p.kp == 1.0 and p.kp / p.ki == pytest.approx(20.0) and p.kd / p.kp == pytest.approx(1.0)
+
+
+def test_cascade_outer_loop_in_a_group_keeps_its_inner_loop():
+    """A cascade's outer loop (inner_pv) in a group: its diagonal element is the composed single-loop L
+    (inner set-point response inside, exact delays), and an uncoupled group of it and another loop has the
+    single-loop engine's verdict and Ms."""
+    inner = LoopModel("FIC-1", make_process("fopdt", 1.0, 5.0, dead_time=0.5), Controller("ideal", kc=1.0, ti=5.0))
+    outer = LoopModel("TIC-1", make_process("fopdt", 1.5, 120.0, dead_time=10.0), Controller("ideal", kc=2.0, ti=120.0),
+                      inner=inner)
+    a = loops()[0]
+    g = GroupModel(("TIC-1", "A"), (outer, a), {})
+    w = np.geomspace(1e-4, 1.0, 40)
+    np.testing.assert_allclose(loop_matrix(g, 1j * w)[:, 0, 0], outer.L(w), rtol=1e-12)
+    fig = analyse_group(g)
+    alone = evaluate([outer, a])
+    assert fig.stability.stable == bool(alone["stable"].all())
+    assert fig.loops[0].ms == pytest.approx(alone["ms"][0], rel=1e-4)
+
+
+def test_integrating_coupling_into_a_self_regulating_loop_drifts():
+    """Closed form (steady state): if loop A's output integrates into B's PV while B's own process is
+    self-regulating, A must rest at zero output and B's PV integrator can sit anywhere, offset by B's
+    output: a closed-loop pole at s = 0, so the group is not stable. The same coupling into an integrating
+    PV (a tank with two inflows: one integrator) leaves no pole at s = 0."""
+    a = LoopModel("A", make_process("fopdt", 1.0, 20.0, dead_time=2.0), Controller("ideal", kc=1.0, ti=20.0))
+    b = LoopModel("B", make_process("fopdt", 1.0, 30.0, dead_time=3.0), Controller("ideal", kc=1.0, ti=30.0))
+    cpl = {(1, 0): make_process("ipdt", 0.002, dead_time=2.0)}
+    st = group_stability(GroupModel(("A", "B"), (a, b), cpl))
+    assert not st.stable and st.at_zero == 1 and st.rhp_closed == 0 and "s = 0" in st.note
+    b_int = LoopModel("B", make_process("ipdt", 0.01, dead_time=3.0), Controller("ideal", kc=2.0, ti=300.0))
+    st2 = group_stability(GroupModel(("A", "B"), (a, b_int), cpl))
+    assert st2.at_zero == 0 and st2.stable
