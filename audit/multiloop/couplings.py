@@ -15,12 +15,13 @@ Rules (each problem located as ``couplings!cell (column)``)
 Errors make the coupling unused; the loops keep their single-loop results whatever the
 couplings hold.
 
-1. *Unknown tag*: ``from_tag`` or ``to_tag`` names no row of the loops sheet (tags compare
-   ignoring case and surrounding spaces).
+1. *Unknown tag*: ``from_tag`` or ``to_tag`` names no row of the loops sheet (tags compare as
+   the loops sheet compares them: :func:`audit.rows.tag_key`).
 2. *To itself*: ``from_tag`` equals ``to_tag`` (the loop's own model is on the loops sheet).
 3. *Duplicate*: the same (from_tag, to_tag) pair on an earlier row.
 4. *Model*: a missing or unknown model, a missing required value, a time column without unit,
-   a zero gain, an improper tf -- as on the loops sheet; ``gain_eu`` is refused (the coupling
+   a zero gain, an improper tf, a value outside the accepted ranges (:mod:`audit.ranges`) -- as on
+   the loops sheet; ``gain_eu`` is refused (the coupling
    has no PV range of its own).
 5. *Invalid loop*: the named loop's row has errors; the coupling cannot be evaluated.
 6. *Cascades*: a coupling between two loops of one cascade chain would close a cycle through
@@ -126,7 +127,9 @@ class CouplingSheet:
 
 
 def _key(tag: str | None) -> str:
-    return (tag or "").strip().casefold()
+    """Tags compare as the loops sheet compares them (NFKC, format characters removed, case folded)."""
+    from ..rows import tag_key
+    return tag_key(tag)
 
 
 def _validate_model(chk, sheet: str) -> Process | None:
@@ -175,6 +178,10 @@ def _validate_model(chk, sheet: str) -> Process | None:
             elif n_trim.size > len(d_):
                 chk.err("num", f"improper transfer function: numerator degree {n_trim.size - 1} exceeds "
                                f"denominator degree {len(d_) - 1}")
+            else:
+                from ..ranges import tf_problems
+                for col_, msg_ in tf_problems(n_, d_):
+                    chk.err(col_, msg_)
     if chk.has_errors:
         return None
     return make_process(model, got["gain"], got["tau1"], got["tau2"], got["lead"], dead, got["num"], got["den"])

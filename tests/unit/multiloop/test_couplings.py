@@ -135,3 +135,11 @@ def test_check_command_names_coupling_cells(tmp_path, capsys):
     assert code == 2
     assert "couplings!B2 (to_tag): unknown tag 'Q'" in out
     assert "2 rows read, 2 valid, 0 invalid" in out
+
+
+def test_out_of_range_values_refused_by_cell(tmp_path):
+    """The loops sheet's ranges (audit.ranges) apply to a coupling's model too."""
+    inv = read_inventory(book(tmp_path, [loop("A"), loop("B")], [["A", "B", "fopdt", 1e9, 60, 5]]))
+    msgs = problems(inv)
+    assert any(m.startswith("couplings!D2 (gain)") and "range" in m for m in msgs), msgs
+    assert inv.couplings.groups == ()
