@@ -20,7 +20,9 @@ proposals in place of the present settings of the loops that have one. When the 
 unstable or a loop's in-group Ms exceeds its limit, the proposals are detuned together by
 Luyben's biggest-log-modulus factor F (gain / F, integral time x F on every proposed loop; the
 smallest F for which the group is stable and L_cm max <= 2N dB), and the detuned settings are
-reported beside the single-loop ones.
+reported beside the single-loop ones. Where no detuning can restore the group (a negative
+Niederlinski index, or no factor up to 50), the loops' verdict becomes ``not achievable by
+tuning`` (the work list then asks for a structural change: re-pairing or decoupling).
 
 References
 ----------
@@ -303,6 +305,8 @@ def check_group_proposals(audit) -> None:
                         f"the single-loop proposals leave group {gr.group.gid} {why} when closed together; its "
                         f"Niederlinski index {fig1.niederlinski:.3g} < 0, so no detuning with integral action can "
                         f"help: change the pairing or decouple")
+            _not_by_tuning(res, members, f"group {gr.group.gid}: pairing with a negative Niederlinski index "
+                                         f"(change the pairing or decouple)")
             continue
         # Luyben's common factor, on the proposed loops only (the others keep their settings)
         proposed = [s is not None for s in settings]
@@ -316,6 +320,8 @@ def check_group_proposals(audit) -> None:
                     cols["group_proposal_note"][i] = (
                         f"the single-loop proposals leave group {gr.group.gid} {why} when closed together, and no "
                         f"common detuning factor up to 50 restores it: change the pairing or decouple")
+            _not_by_tuning(res, members, f"group {gr.group.gid}: no common detuning restores the group "
+                                         f"(change the pairing or decouple)")
             continue
         g2 = g1.with_controllers([detuned(c, sub.factor) if p else c for c, p in zip(ctrls, proposed)])
         fig2 = analyse_group(g2)
@@ -344,3 +350,13 @@ def check_group_proposals(audit) -> None:
         else:
             res[c] = pd.Series([np.nan if v is None else float(v) for v in vals], index=res.index, dtype=float)
     audit.extras["group_proposals"] = out
+
+
+def _not_by_tuning(res: pd.DataFrame, members: tuple[int, ...], why: str) -> None:
+    """Loops whose group no retuning can restore: the verdict says so, so the work list asks for a structural
+    change instead of a retune."""
+    for i in members:
+        if "verdict" in res.columns and str(res.at[i, "verdict"]) == "retune":
+            res.at[i, "verdict"] = "not achievable by tuning"
+            if "limiting_factor" in res.columns:
+                res.at[i, "limiting_factor"] = _prepend(res.at[i, "limiting_factor"], why)

@@ -65,6 +65,7 @@ def test_unstable_group_and_work_list(tmp_path):
         assert "negative steady-state relative gain" in r.group_note and "Niederlinski" in r.group_note
         assert "no detuning with integral action can help" in r.group_proposal_note
         assert math.isnan(r.group_detuning)
+        assert r.verdict == "not achievable by tuning" and r.action == "structural change"
     # the group's loops share a score and stand together, above the failing single loop
     assert res.loc["PIC-331"].priority_score == res.loc["FIC-332"].priority_score
     assert sorted([res.loc["PIC-331"]["rank"], res.loc["FIC-332"]["rank"]]) == [1, 2]
