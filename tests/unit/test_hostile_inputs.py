@@ -273,7 +273,7 @@ def test_disturbance_allowed_zero_is_an_error(tmp_path, capsys):
     code = main(["disturbance", str(tmp_path / "r.csv"), "--allowed", "0", "--plot", str(tmp_path / "p.svg")])
     err = capsys.readouterr().err
     assert code == 2
-    assert "--allowed must be a positive number" in err and "Traceback" not in err
+    assert "'--allowed'" in err and "must be a finite number above 0" in err and "Traceback" not in err
 
 
 def test_result_named_and_formula_headers_are_kept_apart(tmp_path, capsys):
