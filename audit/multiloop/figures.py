@@ -821,8 +821,8 @@ def pairing_warnings(tags: Sequence[str], rga_ss: np.ndarray | None, rga_wc: Seq
             elif abs(lw) > RGA_LARGE:
                 out.append(f"{tag}: relative gain at its crossover |{abs(lw):.3g}| > {RGA_LARGE:g}")
     if np.isfinite(ni) and ni < 0:
-        out.append(f"Niederlinski index {ni:.3g} < 0: with integral action in every loop the group is unstable "
-                   "whatever the settings")
+        out.append(f"Niederlinski index {ni:.3g} < 0: with integral action in every loop (and a stable open loop) "
+                   "the group is unstable whatever the settings")
     return out
 
 
