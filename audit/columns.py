@@ -29,7 +29,7 @@ class Column:
     name: str
     unit: str
     meaning: str
-    stage: str  # inventory | frequency | time | disturbance | proposal | priority | cascade | group
+    stage: str  # inventory | frequency | time | disturbance | proposal | priority | cascade | modelcheck | group
 
 
 C = Column
@@ -171,6 +171,32 @@ RESULT_COLUMNS: tuple[Column, ...] = (
     C("residual_std_freq", "% of range", "sqrt(integral of the record's spectrum x |S(jw)|^2): the same "
                                          "standard deviation predicted in the frequency domain.", "disturbance"),
     C("residual_ok", "-", "True when residual_amplitude <= allowed_amplitude.", "disturbance"),
+    C("model_check", "-", "The model against the loop's data_file: confirmed, disputed, not identifiable, record "
+                          "unusable or not checked; blank without a record.", "modelcheck"),
+    C("model_fit_pct", "%", "Fit of the inventory's model driven by the logged op against the logged pv, "
+                            "100 (1 - ||y - yhat|| / ||y - mean y||).", "modelcheck"),
+    C("id_model", "-", "Model structure the data support: fopdt, sopdt or ipdt (lowest BIC).", "modelcheck"),
+    C("id_gain", "-", "Identified process gain (ipdt: 1/s).", "modelcheck"),
+    C("id_gain_ci95", "-", "Half-width of the 95 % interval of id_gain (ipdt: 1/s).", "modelcheck"),
+    C("id_tau1_s", "s", "Identified largest time constant.", "modelcheck"),
+    C("id_tau1_ci95_s", "s", "Half-width of the 95 % interval of id_tau1_s.", "modelcheck"),
+    C("id_tau2_s", "s", "Identified second time constant (sopdt).", "modelcheck"),
+    C("id_lead_s", "s", "Identified lead time (sopdt; negative for an inverse response).", "modelcheck"),
+    C("id_dead_time_s", "s", "Identified dead time (continuous, not whole samples).", "modelcheck"),
+    C("id_dead_time_ci95_s", "s", "Half-width of the 95 % interval of id_dead_time_s.", "modelcheck"),
+    C("id_fit_pct", "%", "Fit of the identified model on the record.", "modelcheck"),
+    C("id_fit_holdout_pct", "%", "Fit of the identified structure, refitted without a held-out 30 % block, on "
+                                 "that block.", "modelcheck"),
+    C("gain_ratio", "-", "id_gain / the inventory's gain.", "modelcheck"),
+    C("dead_time_diff_s", "s", "id_dead_time_s minus the inventory's dead time.", "modelcheck"),
+    C("tau_ratio", "-", "id_tau1_s / the inventory's tau1.", "modelcheck"),
+    C("id_stable", "-", "Closed-loop stability with the identified model and the current tuning (exact Nyquist).",
+      "modelcheck"),
+    C("id_ms", "-", "Ms with the identified model and the loop's current tuning.", "modelcheck"),
+    C("id_gm_db", "dB", "Gain margin with the identified model and the current tuning.", "modelcheck"),
+    C("id_pm_deg", "deg", "Phase margin with the identified model and the current tuning.", "modelcheck"),
+    C("data_note", "-", "What the record reader and the identification said, or why the check could not run.",
+      "modelcheck"),
 )
 
 

@@ -171,6 +171,10 @@ INVENTORY_COLUMNS: tuple[InventoryColumn, ...] = tuple([
        "Largest acceptable PV deviation caused by the recorded disturbance, % of PV range.", "2", True),
     _C("allowed_amplitude_eu", "allowed_amplitude", "number", "EU",
        "The same in engineering units; needs pv_lo and pv_hi.", "5"),
+    _C("data_file", "data_file", "path", "-",
+       "Logged record of this loop (CSV or Parquet with op and pv: bump test, set-point changes or normal "
+       "operation), relative to the inventory's folder; checks the model against the data.",
+       "records/fic101.csv", True),
     _C("inner_loop", "inner_loop", "text", "-", "Tag of the inner loop when this row is a cascade's outer loop.",
        "TIC-410", True),
     _C("outer_model_input", "outer_model_input", "choice", "-",
@@ -889,22 +893,22 @@ def _parse_coeffs(chk: _RowCheck, name: str) -> tuple[float, ...] | None:
     return vals
 
 
-def _confine(chk: _RowCheck, base_dir: Path) -> str | None:
-    c, v = chk.raw("disturbance_file")
+def _confine(chk: _RowCheck, base_dir: Path, name: str = "disturbance_file") -> str | None:
+    c, v = chk.raw(name)
     if c is None:
         return None
     text = _text(v).replace("\\", "/")
     if text.startswith("/") or re.match(r"^[A-Za-z]:", text) or text.startswith("~"):
-        chk.err("disturbance_file", f"must be a path relative to the inventory's folder, got {_text(v)!r}", c)
+        chk.err(name, f"must be a path relative to the inventory's folder, got {_text(v)!r}", c)
         return None
     root = base_dir.resolve()
     target = (root / text).resolve()
     if target != root and root not in target.parents:
-        chk.err("disturbance_file", f"{_text(v)!r} leads outside the inventory's folder; "
-                                    f"keep disturbance records in that folder or below it", c)
+        chk.err(name, f"{_text(v)!r} leads outside the inventory's folder; "
+                      f"keep records in that folder or below it", c)
         return None
     if not target.is_file():
-        chk.warn("disturbance_file", f"file {_text(v)!r} not found in the inventory's folder", c)
+        chk.warn(name, f"file {_text(v)!r} not found in the inventory's folder", c)
     return str(target)
 
 
@@ -1021,6 +1025,7 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
 
     # Disturbance record
     dfile = _confine(chk, base_dir)
+    data_file = _confine(chk, base_dir, "data_file")
     if chk.present("allowed_amplitude_eu") and not span_ok:
         chk.err("allowed_amplitude_eu", "allowed_amplitude_eu needs pv_lo and pv_hi (with pv_hi > pv_lo)")
     am = [("allowed_amplitude", float, _POS)]
@@ -1143,7 +1148,7 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
         kc=kc, ti=ti, td=td, kp=kp, ki=ki, kd=kd, d_filter=d_filter if d_filter is not None else 0.1,
         action=action, sample=sample, pv_filter=pv_filter, band_rad_s=band, attenuation_db=atten,
         ms_max=ms_max, gm_min_db=gm_min_db, pm_min_deg=pm_min_deg, pv_lo=pv_lo, pv_hi=pv_hi,
-        disturbance_file=dfile, allowed_amplitude=allowed, inner_loop=inner_loop,
+        disturbance_file=dfile, allowed_amplitude=allowed, inner_loop=inner_loop, data_file=data_file,
         outer_model_input=outer_input, conventions=conventions, raw=raw, extras=extras,
         errors=tuple(p for p in problems if p.severity == "error"),
         warnings=tuple(p for p in problems if p.severity == "warning"),

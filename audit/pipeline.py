@@ -226,6 +226,7 @@ STAGES: tuple[tuple[str, str, str], ...] = (
     ("proposals", "audit.tuning", "add_proposals"),
     ("group_proposals", "audit.multiloop.stage", "check_group_proposals"),
     ("priority", "audit.priority", "add_priority"),
+    ("modelcheck", "audit.plantdata.modelcheck", "check_models"),
 )
 
 

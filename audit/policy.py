@@ -44,6 +44,17 @@ class Policy:
     change_ms, change_margin_db, change_pm_deg, change_band_db : float
         Change between audits above which a figure is reported as moved.
         [-], [dB], [deg], [dB]
+    model_gain_ratio_max : float
+        The data dispute the model when identified gain / model gain lies outside
+        [1/x, x] and the model's gain lies outside the identified 95 % interval. [-]
+    model_dead_time_tol : float
+        ... when the dead times differ by more than this share of the model's dead time
+        (at least one sample interval) and beyond the identified interval. [-]
+    model_tau_ratio_max : float
+        ... when identified tau1 / model tau1 lies outside [1/x, x] and beyond its interval. [-]
+    model_fit_gap_pct : float
+        ... when the model's fit % on the data trails the identified model's by more
+        than this. [%]
     """
 
     ms_max: float = 2.0
@@ -63,6 +74,10 @@ class Policy:
     change_margin_db: float = 1.0
     change_pm_deg: float = 5.0
     change_band_db: float = 3.0
+    model_gain_ratio_max: float = 1.5
+    model_dead_time_tol: float = 0.5
+    model_tau_ratio_max: float = 2.0
+    model_fit_gap_pct: float = 20.0
 
     def as_dict(self) -> dict[str, Any]:
         """The policy as a plain mapping (setting -> value), in declaration order."""
@@ -91,4 +106,8 @@ POLICY_HELP: dict[str, str] = {
     "change_margin_db": "Change in gain margin between audits reported as a move [dB].",
     "change_pm_deg": "Change in phase margin between audits reported as a move [deg].",
     "change_band_db": "Change in band attenuation between audits reported as a move [dB].",
+    "model_gain_ratio_max": "Data dispute the model when identified/model gain is outside [1/x, x] [-].",
+    "model_dead_time_tol": "Data dispute the model when the dead times differ by more than this share [-].",
+    "model_tau_ratio_max": "Data dispute the model when identified/model tau1 is outside [1/x, x] [-].",
+    "model_fit_gap_pct": "Data dispute the model when its fit % trails the identified model's by more [%].",
 }

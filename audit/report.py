@@ -27,6 +27,7 @@ import pandas as pd
 
 from .columns import RESULT_COLUMNS
 from .loop import LoopModel
+from .plantdata.report_part import data_views
 from .policy import POLICY_HELP
 from .rows import LoopRow
 
@@ -223,6 +224,7 @@ class LoopDetail:
     proposal: "ProposalView | None"
     plots: LoopPlots | None
     notes: tuple[str, ...] = ()
+    data: Any = None                  # audit.plantdata.report_part.DataCheckView: the model against plant data
 
 
 @dataclass(frozen=True)
@@ -317,6 +319,7 @@ class Report:
     detail_mode: str
     notes: tuple[str, ...] = field(default=())
     groups: tuple = field(default=())        # audit.multiloop.report.GroupSection, one per group
+    plant_data: Any = None                   # audit.plantdata.report_part.PlantDataSection, None without records
 
     @property
     def top_work(self) -> tuple[WorkItem, ...]:
@@ -973,6 +976,8 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     drawn = dict(zip([j.key for j in jobs], mapper(plot_data, jobs)))
     details = tuple(d if d.anchor not in drawn else
                     replace(d, plots=drawn[d.anchor][0], notes=drawn[d.anchor][1] + d.notes) for d, _ in pairs)
+    plant_data, data = data_views(audit)
+    details = tuple(replace(d, data=data[d.index]) if d.index in data else d for d in details)
     present = [s for s in STATUS_ORDER if s in statuses] + sorted({s for s in statuses if s not in STATUS_ORDER})
     crit_order = [c for c in ("high", "medium", "low")] + sorted(
         {r.criticality for r in rows} - {"high", "medium", "low"})
@@ -998,6 +1003,7 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
         detail_mode=mode,
         notes=tuple(notes),
         groups=_group_sections(audit),
+        plant_data=plant_data,
     )
 
 

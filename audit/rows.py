@@ -136,6 +136,7 @@ class LoopRow:
     allowed_amplitude: float | None = None  # [% of PV range]
     inner_loop: str | None = None         # tag of the inner loop of a cascade
     outer_model_input: str = "inner_pv"   # inner_pv | inner_sp
+    data_file: str | None = None          # plant record (op, pv) path, resolved inside the inventory folder
     conventions: dict[str, str] = field(default_factory=dict)
     raw: dict[str, Any] = field(default_factory=dict)
     extras: dict[str, Any] = field(default_factory=dict)
