@@ -29,7 +29,7 @@ class Column:
     name: str
     unit: str
     meaning: str
-    stage: str  # inventory | frequency | time | disturbance | proposal | priority | cascade | modelcheck | health
+    stage: str  # inventory | frequency | time | disturbance | proposal | priority | cascade | modelcheck | health | group
 
 
 C = Column
@@ -76,6 +76,32 @@ RESULT_COLUMNS: tuple[Column, ...] = (
     C("cascade_ratio", "-", "Inner-loop frequency over outer-loop frequency (wb_rad_s, else wc_rad_s), outer "
                             "loop evaluated with its inner loop inside.", "cascade"),
     C("cascade_ok", "-", "True when cascade_ratio >= policy cascade_ratio_min; blank when not checked.", "cascade"),
+    C("group_id", "-", "Group of interacting loops (couplings sheet) the loop belongs to, G1, G2, ...; blank when "
+                       "none.", "group"),
+    C("status_alone", "-", "The loop's status from its single-loop audit, before the group checks; blank when in "
+                           "no group.", "group"),
+    C("group_stable", "-", "Stability of the whole group with every loop closed (generalised Nyquist criterion on "
+                           "det(I + L), exact delays).", "group"),
+    C("group_rhp_closed", "-", "Closed-loop poles of the group in the right half-plane; blank when not decided.",
+      "group"),
+    C("group_niederlinski", "-", "Niederlinski index det G(0)/prod g_ii(0); blank unless every loop of the group has "
+                                 "integral action and no element integrates.", "group"),
+    C("group_sigma_peak", "-", "Peak over w of the largest singular value of the group's sensitivity matrix "
+                               "(I + L)^-1; blank when the group is unstable.", "group"),
+    C("rga_ss", "-", "Steady-state relative gain of the loop's pairing, lambda_ii(0) (Bristol); blank when an "
+                     "element integrates.", "group"),
+    C("rga_wc", "-", "Magnitude of the relative gain lambda_ii at the loop's own crossover frequency wc_rad_s.",
+      "group"),
+    C("ms_in_group", "-", "Peak of the loop's own sensitivity |S_ii| with the other loops of its group closed; blank "
+                          "when the group is unstable.", "group"),
+    C("gm_in_group", "-", "Gain margin of the loop with the other loops of its group closed (ratio); inf when "
+                          "none; blank when the group is unstable.", "group"),
+    C("gm_in_group_db", "dB", "gm_in_group in dB.", "group"),
+    C("pm_in_group_deg", "deg", "Phase margin of the loop with the other loops of its group closed; blank when "
+                               "the group is unstable.", "group"),
+    C("wc_in_group_rad_s", "rad/s", "Gain-crossover frequency of pm_in_group_deg.", "group"),
+    C("group_note", "-", "Pairing warnings (negative or large relative gains, negative Niederlinski index) and why "
+                         "a group was not decided, separated by '; '.", "group"),
     C("verdict", "-", "retune, not achievable by tuning, no change needed, check model, not evaluated, or check "
                       "the valve first (a retune verdict of a loop whose valve is suspected sticking).", "proposal"),
     C("proposal_method", "-", "Which candidate is recommended, e.g. 'SIMC PI, tau_c = theta', 'AMIGO PID', "
@@ -99,6 +125,14 @@ RESULT_COLUMNS: tuple[Column, ...] = (
       "proposal"),
     C("proposal_note", "-", "Warnings on the proposal (action, form, settings moving by more than a factor two), "
                             "separated by '; '.", "proposal"),
+    C("group_detuning", "-", "Common detuning factor F on the proposals of the loop's group (gain / F, integral "
+                             "time x F; Luyben's biggest log modulus); 1 when the proposals keep the group within "
+                             "its limits.", "group"),
+    C("group_proposal_settings", "-", "The proposal detuned by group_detuning, in the row's own terms; blank when "
+                                      "no detuning is needed.", "group"),
+    C("group_proposal_ms", "-", "Ms of the loop with its group closed and the group's proposals (detuned when "
+                                "needed) in place.", "group"),
+    C("group_proposal_note", "-", "What closing the group does to the single-loop proposals.", "group"),
     C("priority_score", "-", "Priority: severity points + 30 x criticality weight + 60 x feasibility x benefit "
                              "(README, 'Priority').", "priority"),
     C("rank", "-", "Place on the work list, 1 = most urgent; blank when no action is needed.", "priority"),

@@ -1413,6 +1413,7 @@ def read_inventory(path: str | Path) -> Inventory:
     base_dir = p.resolve().parent
     policy = Policy()
     policy_problems: list[Problem] = []
+    ctable = None
     is_csv = p.suffix.lower() in (".csv", ".txt") and not data.startswith((b"PK", _OLE))
     if is_csv:
         table = _read_csv_table(p, data)
@@ -1436,6 +1437,7 @@ def read_inventory(path: str | Path) -> Inventory:
                 except InventoryError:
                     policy_problems = [Problem(pol, "A1", "", "no 'setting' header in the first 20 rows; "
                                                               "policy sheet ignored, defaults apply")]
+            ctable = _couplings_table(wb, sheets)
         finally:
             wb.close()
     rows, header_problems, extra_columns = _rows_from_table(table, base_dir)
@@ -1447,9 +1449,28 @@ def read_inventory(path: str | Path) -> Inventory:
         name = canonical_header(h)
         if name and name not in letters:
             letters[name] = _col_letter(col)
+    couplings = None
+    if isinstance(ctable, Problem):
+        policy_problems.append(ctable)
+    elif ctable is not None:
+        from .multiloop.couplings import read_couplings
+        couplings = read_couplings(ctable, rows)
+        policy_problems.extend(couplings.problems)
     return Inventory(path=str(path), name=p.name, sha256=sha, rows=tuple(rows), policy=policy,
                      problems=tuple(header_problems) + tuple(policy_problems), blank_rows=table.blank_rows,
-                     sheets=sheets, extra_columns=extra_columns, column_letters=letters)
+                     sheets=sheets, extra_columns=extra_columns, column_letters=letters, couplings=couplings)
+
+
+def _couplings_table(wb, sheets: tuple[str, ...]) -> "_Table | Problem | None":
+    """The optional ``couplings`` sheet as plain cells (read by :mod:`audit.multiloop.couplings`)."""
+    name = _find_sheet(list(sheets), "couplings")
+    if name is None:
+        return None
+    try:
+        return _read_xlsx_table(wb, name, "from_tag", "")
+    except InventoryError:
+        return Problem(name, "A1", "", "no 'from_tag' header in the first 20 rows; couplings sheet ignored, "
+                                       "every loop audited alone")
 
 
 # --------------------------------------------------------------------------------------

@@ -35,6 +35,9 @@ whatever its model says, with the action that follows from the data; the first t
 
 The score is the larger of these points and the model's severity points, plus the criticality
 points, plus the benefit points of a retune.
+Groups of interacting loops (``group_id``, couplings sheet) are ranked as one item: every loop of a
+group that needs action takes the highest score among them, and they stand together on the list
+(ordered by tag within the group), since retuning one of them changes what the others see.
 """
 
 from __future__ import annotations
@@ -323,11 +326,19 @@ def work_list(results: pd.DataFrame, policy: Policy) -> pd.DataFrame:
     -------
     pandas.DataFrame
         Indexed like ``results``, columns :data:`PRIORITY_COLUMNS`; ``rank`` is 1 for the most
-        urgent row and missing for rows that need no action. Ties are broken by tag, then row.
+        urgent row and missing for rows that need no action. Loops of a group (``group_id``) that need
+        action share the group's highest score and stand together. Ties are broken by group, tag, then row.
     """
     pr = [priority_of(results.iloc[i], policy) for i in range(len(results))]
+    groups = [("" if pd.isna(g) else str(g)) for g in results["group_id"]] if "group_id" in results.columns \
+        else [""] * len(results)
+    top: dict[str, float] = {}
+    for g, p in zip(groups, pr):
+        if g and p.action:
+            top[g] = max(top.get(g, 0.0), p.score)
+    score = [top[g] if g and p.action else p.score for g, p in zip(groups, pr)]
     out = pd.DataFrame({
-        "priority_score": [p.score for p in pr],
+        "priority_score": score,
         "action": [p.action or "" for p in pr],
         "reason": [p.reason for p in pr],
         "expected_improvement": [p.expected_improvement for p in pr],
@@ -335,7 +346,7 @@ def work_list(results: pd.DataFrame, policy: Policy) -> pd.DataFrame:
     tags = results["tag"].astype(str).tolist() if "tag" in results.columns else [""] * len(results)
     rows = results["row"].tolist() if "row" in results.columns else list(range(len(results)))
     todo = [i for i, p in enumerate(pr) if p.action]
-    todo.sort(key=lambda i: (-round(pr[i].score, 9), tags[i], rows[i]))
+    todo.sort(key=lambda i: (-round(score[i], 9), groups[i], tags[i], rows[i]))
     rank = [pd.NA] * len(results)
     for r, i in enumerate(todo, start=1):
         rank[i] = r

@@ -172,6 +172,7 @@ class Rendered:
     status_mix: Markup | None
     trend: Markup | None
     health: dict[str, tuple[tuple[str, Markup], ...]] = field(default_factory=dict)   # loop anchor -> charts
+    groups: dict[str, Markup] = field(default_factory=dict)   # group id -> generalised Nyquist chart
 
 
 def render_chart(chart) -> Markup:
@@ -217,7 +218,10 @@ def draw(report: Report, mapper: Callable = map) -> Rendered:
     from .health_charts import health_charts
     health = {d.anchor: tuple((c.caption, render_chart(c)) for c in health_charts(d.health))
               for d in report.details if d.health is not None}
-    return Rendered(loops, mix, trend, health)
+    from .multiloop.report import group_nyquist_chart
+    groups = {g.gid: render_chart(group_nyquist_chart(g, f"gnyq-{g.gid.lower()}"))
+              for g in getattr(report, "groups", ()) if g.evaluated and g.W.size}
+    return Rendered(loops, mix, trend, health, groups)
 
 
 def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False) -> str:

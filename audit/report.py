@@ -321,6 +321,7 @@ class Report:
     detail_mode: str
     notes: tuple[str, ...] = field(default=())
     health: Any = None                       # audit.health_report.HealthSummary when any row has an operating record
+    groups: tuple = field(default=())        # audit.multiloop.report.GroupSection, one per group
     plant_data: Any = None                   # audit.plantdata.report_part.PlantDataSection, None without records
 
     @property
@@ -1006,8 +1007,14 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
         detail_mode=mode,
         notes=tuple(notes),
         health=health_summary(audit, {d.index: d.anchor for d in details}),
+        groups=_group_sections(audit),
         plant_data=plant_data,
     )
+
+
+def _group_sections(audit) -> tuple:
+    from .multiloop.report import group_sections
+    return group_sections(audit)
 
 
 def _loop_line(row: LoopRow, res: _Results, i: int, status: str, anchors: set[str]) -> LoopLine:

@@ -168,3 +168,4 @@ class Inventory:
     sheets: tuple[str, ...] = ()
     extra_columns: tuple[str, ...] = ()  # unknown headers, carried to the results
     column_letters: dict[str, str] = field(default_factory=dict)  # canonical column -> sheet column letter
+    couplings: "CouplingSheet | None" = None  # noqa: F821  (audit.multiloop.couplings; None without the sheet)

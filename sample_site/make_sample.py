@@ -271,6 +271,33 @@ LOOPS: list[dict] = [
       data_file="records/plant/tic607_bump.csv", dcs_node="SLD"),
     L("LIC-608", "Centrate sump level", SD, "low", "ipdt", gain=-0.002, dead_time_s=3, sample_s=1, form="ideal",
       kc=2, ti_min=15, action="direct", dcs_node="SLD"),
+
+    # ---- Interacting loops (see COUPLINGS): each passes alone
+    # blend tank: pre-heated thickened sludge feed sets dry solids, hot dilution water sets temperature;
+    # each flow moves both (relative gain 0.75): the dry-solids loop fails with its partner closed
+    L("AIC-611", "Sludge blend tank dry solids", SD, "high", "fopdt", gain=0.9, tau1_s=400, dead_time_s=60,
+      sample_s=5, form="ideal", kc=4, ti_s=400, action="reverse", dcs_node="SLD"),
+    L("TIC-612", "Sludge blend tank temperature", SD, "medium", "fopdt", gain=1.0, tau1_s=300, dead_time_s=30,
+      sample_s=2, form="ideal", kc=4.5, ti_s=300, action="reverse", dcs_node="SLD"),
+    # gas compressor: suction pressure on the recycle valve, recycle flow on the speed -- the wrong
+    # pairing (negative relative gain): stable one by one, unstable together
+    L("PIC-331", "Gas compressor suction pressure", DG, "high", "fopdt", gain=0.5, tau1_s=60, dead_time_s=5,
+      sample_s=1, form="ideal", kc=2, ti_s=60, action="reverse", dcs_node="DIG"),
+    L("FIC-332", "Gas compressor recycle flow", DG, "medium", "fopdt", gain=0.7, tau1_s=30, dead_time_s=2,
+      sample_s=0.5, form="ideal", kc=1.5, ti_s=30, action="reverse", dcs_node="DIG"),
+]
+
+# The couplings sheet: how one loop's output moves another loop's PV (invented, like everything here).
+COUPLING_HEADERS = ["from_tag", "to_tag", "model", "gain", "tau1_s", "dead_time_s", "note"]
+COUPLINGS: list[dict] = [
+    {"from_tag": "TIC-612", "to_tag": "AIC-611", "model": "fopdt", "gain": -0.6, "tau1_s": 350, "dead_time_s": 50,
+     "note": "hot dilution water lowers dry solids"},
+    {"from_tag": "AIC-611", "to_tag": "TIC-612", "model": "fopdt", "gain": 0.5, "tau1_s": 280, "dead_time_s": 40,
+     "note": "pre-heated sludge feed raises the temperature"},
+    {"from_tag": "FIC-332", "to_tag": "PIC-331", "model": "fopdt", "gain": 0.8, "tau1_s": 50, "dead_time_s": 4,
+     "note": "speed raises suction draw"},
+    {"from_tag": "PIC-331", "to_tag": "FIC-332", "model": "fopdt", "gain": 1.0, "tau1_s": 40, "dead_time_s": 3,
+     "note": "recycle valve opening raises recycle flow"},
 ]
 
 POLICY = [
@@ -301,6 +328,12 @@ def build_workbook() -> Workbook:
     ws.freeze_panes = "B2"
     for j, h in enumerate(HEADERS, start=1):
         ws.column_dimensions[ws.cell(1, j).column_letter].width = 34 if h == "service" else max(9, len(h) + 2)
+    cpl = wb.create_sheet("couplings")
+    cpl.append(COUPLING_HEADERS)
+    for c in COUPLINGS:
+        cpl.append([c.get(h) for h in COUPLING_HEADERS])
+    for j in range(1, len(COUPLING_HEADERS) + 1):
+        cpl.cell(1, j).font, cpl.cell(1, j).fill = bold, fill
     pol = wb.create_sheet("policy")
     pol.append(["setting", "value", "meaning"])
     for row in POLICY:

@@ -125,6 +125,20 @@ def test_sample_pdf_names_every_loop_and_carries_the_caution(sample_runs):
     assert "frequency ω [rad/s]" in text and "time [s]" in text
 
 
+def test_sample_groups_of_interacting_loops(sample_runs):
+    """The sample's couplings sheet: two groups, each with its section, and the group verdicts in results.csv."""
+    html = (sample_runs[0] / "report.html").read_text(encoding="utf-8")
+    for gid in ("g1", "g2"):
+        assert f'id="group-{gid}"' in html
+    assert "Generalised Nyquist curve of group G1" in html
+    with open(sample_runs[0] / "results.csv", newline="", encoding="utf-8") as f:
+        rows = {r["tag"]: r for r in csv.DictReader(f)}
+    assert rows["AIC-611"]["status_alone"] == "passes" and rows["AIC-611"]["status"] == "fails"
+    assert "passes alone, fails with its group G1 closed" in rows["AIC-611"]["findings"]
+    assert rows["PIC-331"]["status"] == "unstable" and rows["PIC-331"]["group_stable"] == "false"
+    assert rows["FIC-102"]["group_id"] == ""
+
+
 def test_sample_models_against_plant_data(sample_runs):
     """The sample site's records: the stale dead time is disputed, the small bump not identifiable,
     the bump tests confirmed; the report carries the site summary and each loop's part."""
