@@ -1,4 +1,4 @@
-"""The command line: ``plant-audit run|check|template|disturbance|generate|history``.
+"""The command line: ``plant-audit run|check|template|disturbance|identify|generate|history``.
 
 ``main(argv)`` takes a list and returns the exit code, so tests call it directly.
 Exit codes of ``run``: 0 every loop passes (marginal included), 1 any loop is
@@ -174,6 +174,26 @@ def disturbance(record, allowed, plot):
     from .disturbance import disturbance_command
 
     raise SystemExit(disturbance_command(record, allowed, plot))
+
+
+@cli.command()
+@click.argument("record", type=click.Path(dir_okay=False))
+@click.option("--pv-lo", type=float, default=None, help="PV range low, for *_eu columns [EU].")
+@click.option("--pv-hi", type=float, default=None, help="PV range high, for *_eu columns [EU].")
+@click.option("--timezone", default=None, help="IANA zone of timestamps written without one.")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON.")
+@click.option("--write-inventory", "write_to", default=None,
+              help="With an inventory (.xlsx): write a copy with the identified models to this new file.")
+def identify(record, pv_lo, pv_hi, timezone, as_json, write_to):
+    """Identify a process model (fopdt, sopdt, ipdt) from a logged RECORD with op and pv,
+    or from every data_file of an inventory (.xlsx)."""
+    from .plantdata.command import identify_command, identify_inventory_command
+
+    if record.lower().endswith((".xlsx", ".xlsm")):
+        raise SystemExit(identify_inventory_command(record, write_to, as_json))
+    if write_to:
+        raise UserError("--write-inventory needs an inventory workbook (.xlsx) in place of RECORD")
+    raise SystemExit(identify_command(record, pv_lo, pv_hi, as_json, timezone)[0])
 
 
 @cli.command()

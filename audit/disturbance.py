@@ -35,15 +35,11 @@ References
 
 from __future__ import annotations
 
-import csv
-import datetime as _dt
-import io
-from array import array
 import math
 import sys
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterable, Sequence
+from typing import Sequence
 
 import numpy as np
 import pandas as pd
@@ -51,6 +47,7 @@ from scipy.signal import fftconvolve, welch
 
 from .limits import MAX_RECORD_BYTES, MAX_RECORD_LINES, NotARegularFile, open_regular
 from .loop import LoopModel
+from .plantdata import records as _records
 from .policy import Policy
 from .ranges import RECORD_INTERVAL, RECORD_VALUE
 from .rows import printable
@@ -189,49 +186,14 @@ class Residual:
 
 # --------------------------------------------------------------------------- reading
 
-def _show(text: str) -> str:
-    text = text if len(text) <= 40 else text[:37] + "..."
-    return repr(text)
-
-
-def _parse_float(text: str) -> float | None:
-    try:
-        v = float(text.strip().replace("\u2212", "-"))
-    except ValueError:
-        return None
-    return v
-
-
-def _number_cell(raw: str, where: str, problems: list[str]) -> float | None:
-    """A finite number from a record cell, or None with the reason added to ``problems``.
-
-    Parameters
-    ----------
-    raw : str
-        The cell's text, stripped.
-    where : str
-        File, line and column, for the message.
-    problems : list of str
-        Messages so far; one is added when the cell is empty or not a finite number.
-    """
-    if raw == "":
-        problems.append(f"{where}: empty")
-        return None
-    v = _parse_float(raw)
-    if v is None or not math.isfinite(v):
-        problems.append(f"{where}: not a number: {_show(raw)}")
-        return None
-    return v
-
-
 def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | None = None,
                 policy: Policy = Policy(), name: str | None = None) -> Record:
-    """Read and validate a disturbance record.
+    """Read and validate a disturbance record with the one record reader.
 
     Parameters
     ----------
     path : str or Path
-        The CSV file.
+        The CSV (or Parquet) file; see :mod:`audit.plantdata.records` for the format.
     pv_lo, pv_hi : float, optional
         PV range, needed for a ``value_eu`` column. [engineering units]
     policy : Policy
@@ -246,179 +208,37 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
     Raises
     ------
     RecordError
-        Naming the file, the line and the column of every problem (at most 20 shown).
+        Naming the file, the line and the column of every problem (at most 20 shown):
+        not a regular file or over ``MAX_RECORD_BYTES``, more than ``MAX_RECORD_LINES``
+        lines, unreadable cells or times, time not increasing, a gap (a disturbance
+        record must be one uniform stretch), too few samples. Quality words are missing
+        values; short holes are filled and said in the notes.
     """
     shown = name or str(path)
-    with _record_lines(path, shown) as lines:
-        return _read_lines(lines, shown, pv_lo, pv_hi, policy)
-
-
-class _record_lines:
-    """Context manager: the record's non-blank, non-comment lines as (line number, cells), streamed.
-
-    Only a regular file within ``MAX_RECORD_BYTES`` is opened (a FIFO or device is refused, not
-    read); more than ``MAX_RECORD_LINES`` lines, undecodable text or a malformed CSV line raise
-    RecordError naming the file and line.
-    """
-
-    def __init__(self, path: str | Path, shown: str) -> None:
-        self.path, self.shown = path, shown
-
-    def __enter__(self) -> Iterable[tuple[int, list[str]]]:
-        shown = self.shown
-        try:
-            raw = open_regular(self.path, MAX_RECORD_BYTES, "record", name=shown)
-        except FileNotFoundError:
-            raise RecordError(f"{shown}: file not found") from None
-        except NotARegularFile as exc:
-            raise RecordError(str(exc)) from None
-        except OSError as exc:
-            raise RecordError(f"{shown}: cannot be read ({exc.strerror or type(exc).__name__})") from None
-        self.fh = io.TextIOWrapper(raw, encoding="utf-8-sig", newline="")
-        return self._lines()
-
-    def _lines(self) -> Iterable[tuple[int, list[str]]]:
-        shown = self.shown
-        reader = csv.reader(self.fh)
-        n = 0
-        try:
-            for r in reader:
-                n = reader.line_num
-                if n > MAX_RECORD_LINES:
-                    raise RecordError(f"{shown}: more than {MAX_RECORD_LINES:,} lines; at most {MAX_RECORD_LINES:,} "
-                                      "are read (decimate the record or split it)")
-                if any(c.strip() for c in r) and not r[0].lstrip().startswith("#"):
-                    yield n, r
-        except UnicodeDecodeError as exc:
-            raise RecordError(f"{shown}: cannot be read as UTF-8 text ({type(exc).__name__})") from None
-        except csv.Error as exc:
-            raise RecordError(f"{shown} line {reader.line_num}: not a readable CSV line ({exc})") from None
-
-    def __exit__(self, *exc: object) -> None:
-        self.fh.close()
-
-
-class _Problems(list):
-    """A list of messages that keeps the first ``MAX_SHOWN + 1`` and counts all (``total``)."""
-
-    def __init__(self) -> None:
-        super().__init__()
-        self.total = 0
-
-    def append(self, message: str) -> None:
-        self.total += 1
-        if len(self) <= MAX_SHOWN:
-            super().append(message)
-
-
-def _read_lines(lines: Iterable[tuple[int, list[str]]], shown: str, pv_lo: float | None, pv_hi: float | None,
-                policy: Policy) -> Record:
-    """:func:`read_record` on the streamed lines of the record."""
-    lines = iter(lines)
-    first = next(lines, None)
-    if first is None:
-        raise RecordError(f"{shown}: empty file; expected a header line such as 'time_s,value'")
-    hline, header = first
-    keys = [h.strip().lower() for h in header]
-    tcols = [k for k in keys if k in TIME_COLUMNS]
-    vcols = [k for k in keys if k in VALUE_COLUMNS]
-    if len(tcols) != 1 or len(vcols) != 1:
-        raise RecordError(f"{shown} line {hline}: the header needs exactly one time column "
-                          f"({', '.join(TIME_COLUMNS)}) and one value column ({', '.join(VALUE_COLUMNS)}); "
-                          f"found {', '.join(_show(h) for h in header)}")
-    tname, vname = tcols[0], vcols[0]
-    ti, vi = keys.index(tname), keys.index(vname)
-    notes: list[str] = []
-    if vname == "value_eu":
-        if pv_lo is None or pv_hi is None or not pv_hi > pv_lo:
-            raise RecordError(f"{shown}: column value_eu needs the row's pv_lo and pv_hi (pv_hi > pv_lo) "
-                              f"to convert to % of range")
-        notes.append(f"converted from engineering units with range {pv_lo:g} to {pv_hi:g}")
-    problems = _Problems()
-    ts = array("d")   # compact while streaming: 8 bytes a sample
-    vs = array("d")
-    lnums = array("q")
-    tz_seen: set[bool] = set()
-    t0: _dt.datetime | None = None
-    start = ""
-    for ln, row in lines:
-        where = f"{shown} line {ln}"
-        if len(row) <= max(ti, vi):
-            problems.append(f"{where}: {len(row)} cells, expected {len(keys)}")
-            continue
-        traw, vraw = row[ti].strip(), row[vi].strip()
-        bad = False
-        if tname == "timestamp":
-            try:
-                stamp = _dt.datetime.fromisoformat(traw)
-            except ValueError:
-                problems.append(f"{where} ({tname}): not an ISO 8601 time: {_show(traw)}")
-                bad = True
-            else:
-                tz_seen.add(stamp.tzinfo is not None)
-                if len(tz_seen) > 1:
-                    problems.append(f"{where} ({tname}): time zone given on some lines and not on others")
-                    bad = True
-                else:
-                    if t0 is None:
-                        t0, start = stamp, traw
-                    tval = (stamp - t0).total_seconds()
-        else:
-            tv = _number_cell(traw, f"{where} ({tname})", problems)
-            if tv is None:
-                bad = True
-            else:
-                tval = tv * (60.0 if tname == "time_min" else 1.0)
-        vv = _number_cell(vraw, f"{where} ({vname})", problems)
-        if bad or vv is None:
-            continue
-        ts.append(tval)
-        vs.append(vv)
-        lnums.append(ln)
-    t = np.asarray(ts, float)
-    v = np.asarray(vs, float)
-    if len(t) > 1:
-        dts = np.diff(t)
-        for k in np.flatnonzero(dts <= 0)[:MAX_SHOWN + 1]:
-            problems.append(f"{shown} line {lnums[k + 1]} ({tname}): time not increasing "
-                            f"({t[k + 1]:g} s after {t[k]:g} s, relative to the first sample)")
-    n_total = problems.total
-    if not problems:
-        if len(t) < policy.min_samples:
-            problems.append(f"{shown}: {len(t)} sample{'s' if len(t) != 1 else ''}; "
-                            f"at least {policy.min_samples} are needed")
-        else:
-            dts = np.diff(t)
-            med = float(np.median(dts))
-            gaps = np.flatnonzero(dts > policy.max_gap_s * med)
-            for k in gaps:
-                problems.append(f"{shown} lines {lnums[k]}-{lnums[k + 1]} ({tname}): gap of {dts[k]:g} s, "
-                                f"more than {policy.max_gap_s:g} x the median interval {med:g} s")
-    if problems:
-        n_total = problems.total
-        shown_p = problems[:MAX_SHOWN]
-        more = f"; ... and {n_total - MAX_SHOWN} more" if n_total > MAX_SHOWN else ""
-        raise RecordError("; ".join(shown_p) + more)
-    if vname == "value_eu":
-        v = (v - pv_lo) / (pv_hi - pv_lo) * 100.0
-    t = t - t[0]
-    dts = np.diff(t)
-    med = float(np.median(dts))
-    jitter = float(np.max(np.abs(dts - med)) / med)
-    if jitter > policy.uniform_tolerance:
-        span = t[-1] / med  # samples after resampling, less one [-]
-        if not span < MAX_RECORD_LINES:
-            raise RecordError(f"{shown}: resampling every {med:g} s over {t[-1]:g} s would give {span:.3g} "
-                              f"samples; at most {MAX_RECORD_LINES:,} are used (decimate the record)")
-        n = int(math.floor(span + 1e-9)) + 1
-        tu = np.arange(n) * med
-        v = np.interp(tu, t, v)
-        notes.append(f"sampling not uniform (intervals {dts.min():g} to {dts.max():g} s); "
-                     f"resampled every {med:g} s by linear interpolation")
-        t = tu
-    else:
-        t = np.arange(len(t)) * med
-    return Record(shown, t, v, med, tuple(notes), start)
+    try:
+        open_regular(path, MAX_RECORD_BYTES, "record", name=shown).close()
+    except FileNotFoundError:
+        raise RecordError(f"{shown}: file not found") from None
+    except NotARegularFile as exc:
+        raise RecordError(str(exc)) from None
+    except OSError as exc:
+        raise RecordError(f"{shown}: cannot be read ({exc.strerror or type(exc).__name__})") from None
+    rp = _records.ReadPolicy(max_gap_intervals=policy.max_gap_s, uniform_tolerance=policy.uniform_tolerance,
+                             min_samples=policy.min_samples, max_rows=MAX_RECORD_LINES)
+    rec = _records.read_record(path, signals=VALUE_COLUMNS[:1], pv_lo=pv_lo, pv_hi=pv_hi, policy=rp, name=shown)
+    if rec.truncated:
+        raise RecordError(f"{shown}: more than {MAX_RECORD_LINES:,} lines; at most {MAX_RECORD_LINES:,} are read "
+                          f"(decimate the record or split it)")
+    for kinds in (("file", "header", "cell", "time", "order", "cap"), ("gap", "short")):
+        problems = rec.notes_of(*kinds)
+        if problems:
+            total = sum(n.count for n in problems)
+            shown_p = [str(n) for n in problems if n.count == 1][:MAX_SHOWN]
+            more = f"; ... and {total - len(shown_p)} more" if total > len(shown_p) else ""
+            raise RecordError("; ".join(shown_p) + more)
+    seg = rec.segments[0]
+    notes = tuple(n.text for n in rec.notes)
+    return Record(rec.name, np.arange(seg.n) * seg.dt, seg.values["value"], seg.dt, notes, rec.start_text)
 
 
 # --------------------------------------------------------------------------- analysis

@@ -50,10 +50,17 @@ BLOCK_POINTS = 2_000_000
 MAX_POINTS = 400_000
 #: Loops evaluated together (one grid, one set of searches). [-]
 CHUNK_LOOPS = 1000
+#: Damping below which a root of L gets grid points of its own around it. [-]
+CLUSTER_ZETA = 0.05
+#: Points on the tangent scale across a lightly damped root's circle (about 0.1 rad of its angle each). [-]
+CLUSTER_POINTS = 31
+#: Ratio of the geometric run that joins a root's tangent scale to the log grid. [-]
+CLUSTER_RATIO = 1.5
 
 FIGURE_COLUMNS = (
     "stable", "rhp_closed", "rhp_open", "gm", "gm_db", "w180_rad_s", "gm_low", "pm_deg", "wc_rad_s",
     "dm_s", "ms", "w_ms_rad_s", "mt", "w_mt_rad_s", "wb_rad_s", "band_s_db", "band_l_db", "engine_note",
+    "lower_bounds",
 )
 
 
@@ -298,6 +305,10 @@ class _Static:
     zeta: np.ndarray       # smallest damping of complex roots [-] (1 when none)
     l_inf: np.ndarray      # lim |L| as w -> inf of the own rational part [-]
     l_inf_real: np.ndarray  # its signed value (real) [-]
+    res_w: np.ndarray = None      # lightly damped roots (poles and zeros, zeta < CLUSTER_ZETA): |Im| [rad/s]
+    res_h: np.ndarray = None      # their |Re| [rad/s]
+    res_own: np.ndarray = None    # their entry
+    res_pole: np.ndarray = None   # True for a pole
 
 
 def _row_roots(coef: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -371,6 +382,10 @@ def _static(batch: Batch) -> _Static:
     zeta = np.full(n, np.inf)
     np.minimum.at(zeta, own[cplx], np.abs(allr[cplx].real) / scale[cplx])
     zeta[np.isposinf(zeta)] = 1.0
+    # lightly damped roots (upper half-plane ones; the grid gets points placed by each of them)
+    is_pole = np.concatenate([np.zeros(rn.size, bool), np.ones(rd.size, bool)])
+    light = (allr.imag > 0) & (np.abs(allr.real) < CLUSTER_ZETA * scale)
+    res = (allr.imag[light], np.abs(allr.real[light]), own[light], is_pole[light])
     l_inf = np.zeros(n)
     l_inf_real = np.zeros(n)
     same = has_d & ((width_n - first_n) == (width_d - first_d))
@@ -386,7 +401,7 @@ def _static(batch: Batch) -> _Static:
             zeta[i] = min(zeta[i], zeta[j])
             l_inf[i] = 0.0 if l_inf[j] == 0 else l_inf[i] * l_inf[j] / max(abs(1 - l_inf[j]), 1e-12)
             l_inf_real[i] = 0.0 if l_inf[j] == 0 else l_inf[i]
-    return _Static(k, p_own, axis, c_min, c_max, zeta, l_inf, l_inf_real)
+    return _Static(k, p_own, axis, c_min, c_max, zeta, l_inf, l_inf_real, *res)
 
 
 def _total_delay(batch: Batch) -> np.ndarray:
@@ -695,8 +710,12 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray, cap:
     start = np.cumsum(npts) - npts
     pos = np.arange(seg.size) - start[seg]
     w = w_s[seg] * 10.0 ** (pos / per_dec)
-    mag = np.abs(_Points(batch, ents[seg], reuse=False)(w, delay=False))    # |e^{-jw theta}| = 1
-    thr = np.maximum(TAIL_LEVEL, st.l_inf[ents] * (1 + 1e-3) + TAIL_LEVEL * st.l_inf[ents])
+    with np.errstate(divide="ignore", invalid="ignore"):     # (a point on an undamped pole: |L| = inf, above)
+        mag = np.abs(_Points(batch, ents[seg], reuse=False)(w, delay=False))    # |e^{-jw theta}| = 1
+    # (with 0 < |L(inf)| < 1 below 1 as well: |L| may fall through 1 close to its limit)
+    linf = st.l_inf[ents]
+    thr = np.maximum(TAIL_LEVEL, linf * (1 + 1e-3) + TAIL_LEVEL * linf)
+    thr = np.where(linf < 1.0, np.minimum(thr, np.maximum(0.5 * (1.0 + linf), TAIL_LEVEL)), thr)
     above = mag >= thr[seg]
     last = _seg_max(np.where(above, pos, -1), seg, ents.size, -1)
     w_hi = np.where(last >= 0, w_s * 10.0 ** ((last + 1) / per_dec), w_lo * 100.0) * TAIL_MARGIN
@@ -707,6 +726,20 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray, cap:
         mag_end = mag[start + npts - 1]
         w_hi = np.where(end_above, top * np.maximum(mag_end / thr, 1.0) * 2.0, w_hi)
     w_hi = np.maximum(w_hi, 100.0 * w_lo)
+    # a resonance narrower than the scan's step: |L| at each lightly damped pole itself, and past
+    # it |L| ~ |L(j w_d)| h / |w - w_d| (h = |Re p|) falls below the level at w_d + h |L(j w_d)| / level
+    r_loc, r_w, r_h, _ = _resonances(st, ents, pole=True)
+    if r_loc.size:
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            peak = np.abs(_Points(batch, ents[r_loc], reuse=False)(r_w, delay=False))
+            end = (r_w + r_h * peak / thr[r_loc]) * TAIL_MARGIN
+        # (a pole on the axis itself, h = 0, has no finite peak: such loops are decided apart)
+        hit = (peak >= thr[r_loc]) & np.isfinite(end)
+        np.maximum.at(w_hi, r_loc[hit], end[hit])
+    # without dead time the phase only settles beyond every corner: the grid goes on to ``top``,
+    # so that a phase crossover where |L| is small (a large gain margin) and the crossover of a
+    # biproper loop whose |L| never rises above the level are on it
+    w_hi = np.where(tdelay[ents] > 0, w_hi, np.maximum(w_hi, top))
     # one more turn of the delay spiral: its first crossing of the negative real axis is the
     # largest-|L| crossing of the tail, which sets the gain margin when none lies further in
     td = tdelay[ents]
@@ -728,6 +761,67 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray, cap:
     if over.any() and cap:
         n_lin = np.where(over, np.maximum(MAX_POINTS - n_log, 0), n_lin)
     return w_lo, w_hi, w_mid, h_log, n_log, n_lin, over, np.maximum(w_a, w_lo), n_low
+
+
+def _resonances(st: _Static, ents: np.ndarray, pole: bool | None = None):
+    """Lightly damped roots of the entries ``ents``: (position in ``ents``, |Im| [rad/s], |Re| [rad/s],
+    is a pole); ``pole`` True or False keeps poles or zeros only."""
+    pos = np.full(st.k.size, -1)
+    pos[ents] = np.arange(ents.size)
+    loc = pos[st.res_own]
+    keep = loc >= 0
+    if pole is not None:
+        keep &= st.res_pole == pole
+    return loc[keep], st.res_w[keep], st.res_h[keep], st.res_pole[keep]
+
+
+def _cluster_points(st: _Static, ents: np.ndarray, w_lo: np.ndarray, w_hi: np.ndarray, h_log: np.ndarray):
+    """Grid points placed by every lightly damped root p = -h + j w_d of the entries (poles and zeros).
+
+    Near such a root L follows a circle, c / (h + j (w - w_d)) for a pole: its angle moves by
+    atan((w - w_d) / h), all of it within a few h of w_d, however small h is. The points sit at
+    w_d + h tan(phi) for CLUSTER_POINTS equal steps of phi across (-pi/2, pi/2) (about 0.1 rad of the
+    circle each), then on a geometric run (ratio CLUSTER_RATIO) out to the log grid's own step, so
+    that no step of the grid can pass over the root. Returns (position in ``ents``, w) [-], [rad/s].
+    """
+    loc, wd, h, _ = _resonances(st, ents)
+    if loc.size == 0:
+        return np.zeros(0, int), np.zeros(0)
+    h = np.maximum(h, 1e-9 * wd)
+    phi = np.linspace(-0.5 * np.pi, 0.5 * np.pi, CLUSTER_POINTS + 2)[1:-1]
+    core = h[:, None] * np.tan(phi)[None, :]
+    x_out = h * np.tan(phi[-1])
+    reach = wd * np.expm1(h_log[loc])
+    n_geo = np.ceil(np.log(np.maximum(reach / x_out, 1.0)) / np.log(CLUSTER_RATIO)).astype(int)
+    j = np.arange(1, int(n_geo.max(initial=0)) + 1)
+    geo = x_out[:, None] * CLUSTER_RATIO ** j[None, :]
+    geo = np.where(j[None, :] <= n_geo[:, None], geo, np.nan)
+    off = np.concatenate([core, geo, -geo], axis=1)
+    w = wd[:, None] + off
+    seg = np.broadcast_to(loc[:, None], w.shape)
+    ok = np.isfinite(w) & (w > w_lo[loc][:, None]) & (w < w_hi[loc][:, None])
+    return seg[ok], w[ok]
+
+
+def _merge_points(seg, w, eseg, ew, n):
+    """The grid (``seg``, ``w``: sorted by segment, ascending within) with points (``eseg``, ``ew``)
+    added in order; equal points once. Returns seg, w, start, counts."""
+    if ew.size:
+        aff = np.zeros(n, bool)
+        aff[eseg] = True
+        mine = aff[seg]
+        sub_seg = np.concatenate([seg[mine], eseg])
+        sub_w = np.concatenate([w[mine], ew])
+        o = np.lexsort((sub_w, sub_seg))
+        sub_seg, sub_w = sub_seg[o], sub_w[o]
+        dup = np.concatenate([[False], (sub_seg[1:] == sub_seg[:-1]) & (sub_w[1:] <= sub_w[:-1])])
+        sub_seg, sub_w = sub_seg[~dup], sub_w[~dup]
+        seg = np.concatenate([seg[~mine], sub_seg])
+        w = np.concatenate([w[~mine], sub_w])
+        o = np.argsort(seg, kind="stable")
+        seg, w = seg[o], w[o]
+    counts = np.bincount(seg, minlength=n)
+    return seg, w, np.cumsum(counts) - counts, counts
 
 
 def _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin, w_a, n_low):
@@ -763,6 +857,7 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     out: dict[str, np.ndarray] = {}
     w_lo, w_hi, w_mid, h_log, n_log, n_lin, capped, w_a, n_low = grid
     seg, w, start, counts = _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin, w_a, n_low)
+    seg, w, start, counts = _merge_points(seg, w, *_cluster_points(st, ents, w_lo, w_hi, h_log), n)
     ent_pt = ents[seg]
     L = eval_L(batch, ent_pt, w)
     one_plus = 1.0 + L
@@ -819,24 +914,38 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     np.add.at(n_net, sx[left], np.where(down[left], 1, -1))
     a_lo = np.angle(one_plus[start])
     m = np.round((2.0 * a_lo + kpos * np.pi) / (2.0 * np.pi)).astype(int)
-    z = p_open - 2 * n_net + m
+    # the large arc: without dead time L -> L(inf) there, and a biproper loop with L(inf) < -1 crosses the
+    # ray (-inf, -1) once on it (L ~ L(inf) + a/s: from the side where L(jw) ends, to the other); counted
+    # once (no mirror half), +1 when downward (Im L > 0 at the end of the grid), as n counts
+    last = start + counts - 1
+    arc = np.where((tdelay[ents] == 0) & (st.l_inf_real[ents] < -1.0) & (batch.inner[ents] < 0),
+                   np.sign(L.imag[last]), 0.0).astype(int)
+    z = p_open - 2 * n_net - arc + m
     # neutral-type loops: |L(inf)| >= 1 with a delay cannot be stable
     neutral = (st.l_inf[ents] >= 1.0) & (tdelay[ents] > 0)
     min_dist = _seg_min(abs1, seg, n)
     marginal = (min_dist < 1e-9) | (st.axis_poles[ents] > 0)
-    out["rhp_closed"] = np.maximum(z, 0)
+    # |L(inf)| > 1 with dead time: infinitely many closed-loop poles in the right half-plane (no count)
+    endless = neutral & (st.l_inf[ents] > 1.0)
+    out["rhp_closed"] = np.where(endless, np.nan, np.maximum(z, 0))
     out["stable"] = (z == 0) & ~neutral & ~marginal
     out["_z_raw"] = z
+    out["_endless"] = endless
     notes = np.full(n, "", object)
-    notes[neutral] = "high-frequency loop gain |L(inf)| >= 1 with dead time: not stable"
+    notes[neutral] = ("high-frequency loop gain |L(inf)| = 1 with dead time: closed-loop poles approach the "
+                      "imaginary axis without end; not stable")
+    notes[endless] = ("high-frequency loop gain |L(inf)| > 1 with dead time (a neutral loop): infinitely many "
+                      "closed-loop poles in the right half-plane")
     notes[st.axis_poles[ents] > 0] = AXIS_NOTE
     notes[min_dist < 1e-9] = "L(jw) passes through -1: marginally stable, treated as not stable"
     notes[capped] = "frequency grid capped; figures at very high frequency may be incomplete"
-    notes[z < 0] = "Nyquist count inconsistent (numerical); treated as not stable"
+    # (with open-loop poles on the axis the count means nothing: their note stays, they are decided apart)
+    notes[(z < 0) & (st.axis_poles[ents] == 0)] = "Nyquist count inconsistent (numerical); treated as not stable"
     out["stable"] &= z >= 0
 
     # ---- gain margins ----
-    negx = rex < 0
+    # (a pass through L = 0, at a zero on the imaginary axis, is no crossing of the negative real axis)
+    negx = (rex < 0) & (np.abs(Lx) > 1e-12)
     kfac = np.where(negx, -1.0 / np.where(negx, rex, -1.0), np.nan)
     with np.errstate(invalid="ignore"):
         up = negx & (kfac > 1.0)
@@ -863,6 +972,25 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     w180 = np.where(z0, 0.0, w180)
     z1 = (k0 < 1.0) & ~(gm_low >= k0)
     gm_low = np.where(z1, k0, gm_low)
+    # with dead time and 0 < |L(inf)| < 1 the crossings of the negative real axis go on for ever, their
+    # |L| tending to |L(inf)|: the margin is the infimum over all of them, at most the limit 1/|L(inf)|
+    # (reached as w -> inf when |L| approaches |L(inf)| from below)
+    linf_e = st.l_inf[ents]
+    with np.errstate(divide="ignore"):
+        k_lim = np.where((tdelay[ents] > 0) & (linf_e > 0) & (linf_e < 1.0), 1.0 / linf_e, np.inf)
+    zl = k_lim < gm
+    gm = np.where(zl, k_lim, gm)
+    w180 = np.where(zl, np.inf, w180)
+    # without dead time a biproper loop with L(inf) real and negative crosses the negative real axis at
+    # w = inf (the large arc): at the factor -1/L(inf) a closed-loop pole passes through infinity
+    lr = st.l_inf_real[ents]
+    with np.errstate(divide="ignore"):
+        k_arc = np.where((tdelay[ents] == 0) & (lr < 0) & (batch.inner[ents] < 0), -1.0 / lr, np.nan)
+    za = (k_arc > 1.0) & (k_arc < gm)
+    gm = np.where(za, k_arc, gm)
+    w180 = np.where(za, np.inf, w180)
+    zb = (k_arc < 1.0) & ~(gm_low >= k_arc)
+    gm_low = np.where(zb, k_arc, gm_low)
     out["gm"] = gm
     with np.errstate(divide="ignore"):
         out["gm_db"] = 20.0 * np.log10(gm)
@@ -915,9 +1043,12 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
         h = p.hidden(w_a)
         groups.append((ent_pt[h], w[h], w[h + 1], L[h], L[h + 1], seg[h], p.best, p.bound, p.fun))
     for p, found in zip(peaks, _branch_and_bound(batch, groups)):
-        p.add(*found)
+        p.add(*found[:3])
+        p.dropped = np.fmax(p.dropped, found[3])
     out["ms"], out["w_ms_rad_s"] = peaks[0].result()
     out["mt"], out["w_mt_rad_s"] = peaks[1].result()
+    ms_b, mt_b = peaks[0].is_bound(out["ms"]), peaks[1].is_bound(out["mt"])
+    out["lower_bounds"] = np.where(ms_b & mt_b, "ms mt", np.where(ms_b, "ms", np.where(mt_b, "mt", ""))).astype(object)
 
     # ---- bandwidth: first rise of |S| through 1/sqrt(2) ----
     wb = np.full(n, np.nan)
@@ -1004,7 +1135,7 @@ def _t_bound(La: np.ndarray, Lb: np.ndarray) -> np.ndarray:
 BNB_ROUNDS = 14
 #: Grid intervals per loop and magnitude given to the branch and bound, and pieces kept in play
 #: (highest bounds first). [-]
-BNB_PIECES = 16
+BNB_PIECES = 64
 
 
 def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tuple[np.ndarray, ...]]:
@@ -1021,8 +1152,10 @@ def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tu
     """
     out = [([], [], []) for _ in groups]
     if not groups or sum(g[0].size for g in groups) == 0:
-        return [tuple(np.zeros(0, t) for t in (float, float, int)) for _ in groups]
+        return [tuple(np.zeros(0, t) for t in (float, float, int)) + (np.full(g[6].size, -np.inf),)
+                for g in groups]
     best = [g[6].copy() for g in groups]
+    dropped = [np.full(g[6].size, -np.inf) for g in groups]
     kind = np.concatenate([np.full(g[0].size, i) for i, g in enumerate(groups)]).astype(int)
     ent, a, b, La, Lb, loop = (np.concatenate([g[k] for g in groups]) for k in range(6))
 
@@ -1060,7 +1193,13 @@ def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tu
         crowded = np.bincount(key)[key] > BNB_PIECES
         if crowded.any() and (r % 3 == 2 or r == rounds - 1):     # (pieces at most double per round)
             few, many = live[~crowded], live[crowded]
-            live = np.sort(np.concatenate([few, _top_by_seg(many, up[many], key[crowded], BNB_PIECES)]))
+            kept = _top_by_seg(many, up[many], key[crowded], BNB_PIECES)
+            gone = np.setdiff1d(many, kept, assume_unique=True)
+            for i in range(len(groups)):
+                sel = gone[kind[gone] == i]
+                if sel.size:
+                    np.maximum.at(dropped[i], loop[sel], up[sel])
+            live = np.sort(np.concatenate([few, kept]))
         kind, ent, loop, a, b, La, Lb = (x[live] for x in (kind, ent, loop, a, b, La, Lb))
     if kind.size:
         found = _find_maxima(batch, [(ent[kind == i], a[kind == i], b[kind == i], g[8]) for i, g in enumerate(groups)])
@@ -1068,7 +1207,7 @@ def _branch_and_bound(batch: Batch, groups, rounds: int = BNB_ROUNDS) -> list[tu
             for lst, val in zip(out[i], (wf, ff, loop[kind == i])):
                 lst.append(val)
     return [tuple(np.concatenate(lst) if lst else np.zeros(0, t) for lst, t in zip(o, (float, float, int)))
-            for o in out]
+            + (d,) for o, d in zip(out, dropped)]
 
 
 class _Peak:
@@ -1096,6 +1235,8 @@ class _Peak:
             cand = cand[np.maximum(upper[cand - 1], upper[cand]) >= self.gmax[seg[cand]]]
         self.cand = _top_by_seg(cand, vals[cand], seg[cand], 8)       # the highest 8 per loop
         self.wpk, self.fpk, self.seg_pk = [], [], []
+        #: per loop, the highest bound of an interval the cap on pieces left unsearched
+        self.dropped = np.full(n, -np.inf)
 
     def first_job(self):
         """Search job over the brackets around the grid maxima, started from the grid maximum."""
@@ -1131,7 +1272,21 @@ class _Peak:
         up = self.bound(self.L[hid], self.L[hid + 1])       # the piece bound, tighter than ``upper``
         keep = up > level[hid]
         hid, up = hid[keep], up[keep]
-        return _top_by_seg(hid, up, self.seg[hid], BNB_PIECES)   # the highest BNB_PIECES per loop
+        top = _top_by_seg(hid, up, self.seg[hid], BNB_PIECES)    # the highest BNB_PIECES per loop
+        left = np.ones(hid.size, bool)
+        left[np.searchsorted(hid, top)] = False
+        self.note_dropped(self.seg[hid[left]], up[left])
+        return top
+
+    def note_dropped(self, loops: np.ndarray, bounds: np.ndarray) -> None:
+        """Remember the bounds of intervals left unsearched by the cap on pieces (see :attr:`is_bound`)."""
+        if loops.size:
+            np.maximum.at(self.dropped, loops, bounds)
+
+    def is_bound(self, value: np.ndarray) -> np.ndarray:
+        """Per loop: True where an interval left unsearched (cap on pieces) may hold more than ``value``,
+        so that the value reported is a lower bound of the peak, not the peak."""
+        return self.dropped > value * (1.0 + 1e-9)
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
         """Peak value and its frequency per loop (0 or inf for a limit). [-], [rad/s]"""
@@ -1406,10 +1561,13 @@ def _evaluate(models, band_rad_s) -> pd.DataFrame:
     band_in = np.array([np.nan if b is None else float(b) for b in band_rad_s], float)
     batch, top = build_batch(models)
     ne = batch.num.shape[0]
-    res = {c: np.full(ne, np.nan, object if c == "engine_note" else float) for c in FIGURE_COLUMNS}
+    text = ("engine_note", "lower_bounds")
+    res = {c: np.full(ne, np.nan, object if c in text else float) for c in FIGURE_COLUMNS}
     res["stable"] = np.zeros(ne, bool)
     res["engine_note"] = np.full(ne, "", object)
+    res["lower_bounds"] = np.full(ne, "", object)
     zraw = np.zeros(ne, int)
+    endless = np.zeros(ne, bool)        # infinitely many closed-loop RHP poles
     if ne:
         st = _static(batch)
         tdel = _total_delay(batch)
@@ -1431,13 +1589,24 @@ def _evaluate(models, band_rad_s) -> pd.DataFrame:
                         o = _evaluate_block(batch, blk, st, tdel, p_open[blk], band_e[blk],
                                             tuple(g[sub] for g in grid))
                     zraw[blk] = o.pop("_z_raw")
+                    endless[blk] = o.pop("_endless")
                     for c, v in o.items():
                         res[c][blk] = v
-        res["rhp_open"] = p_open.astype(float)
+            # an outer loop around an inner loop with infinitely many closed-loop RHP poles has as many
+            # open-loop ones: not stable, no count
+            sick = outer[endless[batch.inner[outer]]]
+            if sick.size:
+                endless[sick] = True
+                res["stable"][sick] = False
+                res["rhp_closed"][sick] = np.nan
+                p_open[sick] = -1
+                res["engine_note"][sick] = ("inner loop with infinitely many closed-loop poles in the right "
+                                            "half-plane: not stable")
+        res["rhp_open"] = np.where(p_open < 0, np.nan, p_open).astype(float)
     ok = top >= 0
     frame = {}
     for c in FIGURE_COLUMNS:
-        if c in ("stable", "engine_note"):
+        if c == "stable" or c in text:
             col = np.full(nmod, None, object)
             vals = res[c][top[ok]]
             col[ok] = [bool(v) for v in vals] if c == "stable" else list(vals)

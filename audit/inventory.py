@@ -171,6 +171,10 @@ INVENTORY_COLUMNS: tuple[InventoryColumn, ...] = tuple([
        "Largest acceptable PV deviation caused by the recorded disturbance, % of PV range.", "2", True),
     _C("allowed_amplitude_eu", "allowed_amplitude", "number", "EU",
        "The same in engineering units; needs pv_lo and pv_hi.", "5"),
+    _C("data_file", "data_file", "path", "-",
+       "Logged record of this loop (CSV or Parquet with op and pv: bump test, set-point changes or normal "
+       "operation), relative to the inventory's folder; checks the model against the data.",
+       "records/fic101.csv", True),
     _C("inner_loop", "inner_loop", "text", "-", "Tag of the inner loop when this row is a cascade's outer loop.",
        "TIC-410", True),
     _C("outer_model_input", "outer_model_input", "choice", "-",
@@ -889,22 +893,22 @@ def _parse_coeffs(chk: _RowCheck, name: str) -> tuple[float, ...] | None:
     return vals
 
 
-def _confine(chk: _RowCheck, base_dir: Path) -> str | None:
-    c, v = chk.raw("disturbance_file")
+def _confine(chk: _RowCheck, base_dir: Path, name: str = "disturbance_file") -> str | None:
+    c, v = chk.raw(name)
     if c is None:
         return None
     text = _text(v).replace("\\", "/")
     if text.startswith("/") or re.match(r"^[A-Za-z]:", text) or text.startswith("~"):
-        chk.err("disturbance_file", f"must be a path relative to the inventory's folder, got {_text(v)!r}", c)
+        chk.err(name, f"must be a path relative to the inventory's folder, got {_text(v)!r}", c)
         return None
     root = base_dir.resolve()
     target = (root / text).resolve()
     if target != root and root not in target.parents:
-        chk.err("disturbance_file", f"{_text(v)!r} leads outside the inventory's folder; "
-                                    f"keep disturbance records in that folder or below it", c)
+        chk.err(name, f"{_text(v)!r} leads outside the inventory's folder; "
+                      f"keep records in that folder or below it", c)
         return None
     if not target.is_file():
-        chk.warn("disturbance_file", f"file {_text(v)!r} not found in the inventory's folder", c)
+        chk.warn(name, f"file {_text(v)!r} not found in the inventory's folder", c)
     return str(target)
 
 
@@ -1021,6 +1025,7 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
 
     # Disturbance record
     dfile = _confine(chk, base_dir)
+    data_file = _confine(chk, base_dir, "data_file")
     if chk.present("allowed_amplitude_eu") and not span_ok:
         chk.err("allowed_amplitude_eu", "allowed_amplitude_eu needs pv_lo and pv_hi (with pv_hi > pv_lo)")
     am = [("allowed_amplitude", float, _POS)]
@@ -1143,7 +1148,7 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
         kc=kc, ti=ti, td=td, kp=kp, ki=ki, kd=kd, d_filter=d_filter if d_filter is not None else 0.1,
         action=action, sample=sample, pv_filter=pv_filter, band_rad_s=band, attenuation_db=atten,
         ms_max=ms_max, gm_min_db=gm_min_db, pm_min_deg=pm_min_deg, pv_lo=pv_lo, pv_hi=pv_hi,
-        disturbance_file=dfile, allowed_amplitude=allowed, inner_loop=inner_loop,
+        disturbance_file=dfile, allowed_amplitude=allowed, inner_loop=inner_loop, data_file=data_file,
         outer_model_input=outer_input, conventions=conventions, raw=raw, extras=extras,
         errors=tuple(p for p in problems if p.severity == "error"),
         warnings=tuple(p for p in problems if p.severity == "warning"),
@@ -1343,8 +1348,12 @@ def _read_policy(table: _Table) -> tuple[Policy, list[Problem]]:
             continue
         seen[key] = cell_s
         if v is None:
+            d = defaults[key]
             problems.append(Problem(table.sheet, cell_v, key, "blank value; the default "
-                                                              f"{defaults[key]:g} applies", "warning"))
+                                    f"{d if isinstance(d, str) else format(d, 'g')} applies", "warning"))
+            continue
+        if isinstance(defaults[key], str):              # word lists (mode words)
+            values[key] = str(v).strip()
             continue
         rng = POLICY_RANGES[key]
         need, ok = f"{rng.describe()} (the range accepted)", rng.accepts
@@ -1404,6 +1413,7 @@ def read_inventory(path: str | Path) -> Inventory:
     base_dir = p.resolve().parent
     policy = Policy()
     policy_problems: list[Problem] = []
+    ctable = None
     is_csv = p.suffix.lower() in (".csv", ".txt") and not data.startswith((b"PK", _OLE))
     if is_csv:
         table = _read_csv_table(p, data)
@@ -1427,6 +1437,7 @@ def read_inventory(path: str | Path) -> Inventory:
                 except InventoryError:
                     policy_problems = [Problem(pol, "A1", "", "no 'setting' header in the first 20 rows; "
                                                               "policy sheet ignored, defaults apply")]
+            ctable = _couplings_table(wb, sheets)
         finally:
             wb.close()
     rows, header_problems, extra_columns = _rows_from_table(table, base_dir)
@@ -1438,9 +1449,28 @@ def read_inventory(path: str | Path) -> Inventory:
         name = canonical_header(h)
         if name and name not in letters:
             letters[name] = _col_letter(col)
+    couplings = None
+    if isinstance(ctable, Problem):
+        policy_problems.append(ctable)
+    elif ctable is not None:
+        from .multiloop.couplings import read_couplings
+        couplings = read_couplings(ctable, rows)
+        policy_problems.extend(couplings.problems)
     return Inventory(path=str(path), name=p.name, sha256=sha, rows=tuple(rows), policy=policy,
                      problems=tuple(header_problems) + tuple(policy_problems), blank_rows=table.blank_rows,
-                     sheets=sheets, extra_columns=extra_columns, column_letters=letters)
+                     sheets=sheets, extra_columns=extra_columns, column_letters=letters, couplings=couplings)
+
+
+def _couplings_table(wb, sheets: tuple[str, ...]) -> "_Table | Problem | None":
+    """The optional ``couplings`` sheet as plain cells (read by :mod:`audit.multiloop.couplings`)."""
+    name = _find_sheet(list(sheets), "couplings")
+    if name is None:
+        return None
+    try:
+        return _read_xlsx_table(wb, name, "from_tag", "")
+    except InventoryError:
+        return Problem(name, "A1", "", "no 'from_tag' header in the first 20 rows; couplings sheet ignored, "
+                                       "every loop audited alone")
 
 
 # --------------------------------------------------------------------------------------

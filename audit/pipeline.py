@@ -219,11 +219,15 @@ STAGES: tuple[tuple[str, str, str], ...] = (
     ("records", "audit.disturbance", "analyse_records"),
     ("evaluate", "audit.pipeline", "evaluate_frequency"),
     ("cascade", "audit.cascade", "add_cascade_checks"),
+    ("groups", "audit.multiloop.stage", "add_group_checks"),
     ("steps", "audit.timedomain", "add_step_results"),
     ("residuals", "audit.disturbance", "add_residuals"),
     ("residual_check", "audit.pipeline", "judge_residuals"),
+    ("health", "audit.plantdata.health", "add_loop_health"),
     ("proposals", "audit.tuning", "add_proposals"),
+    ("group_proposals", "audit.multiloop.stage", "check_group_proposals"),
     ("priority", "audit.priority", "add_priority"),
+    ("modelcheck", "audit.plantdata.modelcheck", "check_models"),
 )
 
 

@@ -44,6 +44,32 @@ class Policy:
     change_ms, change_margin_db, change_pm_deg, change_band_db : float
         Change between audits above which a figure is reported as moved.
         [-], [dB], [deg], [dB]
+    model_gain_ratio_max : float
+        The data dispute the model when identified gain / model gain lies outside
+        [1/x, x] and the model's gain lies outside the identified 95 % interval. [-]
+    model_dead_time_tol : float
+        ... when the dead times differ by more than this share of the model's dead time
+        (at least one sample interval) and beyond the identified interval. [-]
+    model_tau_ratio_max : float
+        ... when identified tau1 / model tau1 lies outside [1/x, x] and beyond its interval. [-]
+    model_fit_gap_pct : float
+        ... when the model's fit % on the data trails the identified model's by more
+        than this. [%]
+    mode_automatic, mode_manual, mode_cascade : str
+        The site's mode words (comma-separated, any case) for automatic, manual and cascade
+        in operating records.
+    auto_min_pct : float
+        A loop closed (automatic or cascade) for less of its record than this is mostly in
+        manual. [%]
+    op_limited_max_pct : float
+        A loop whose output sits at a limit for more of its record than this needs its valve
+        sizing or range checked. [%]
+    op_limit_band_pct : float
+        An output within this of 0 % or 100 % counts as at the limit. [%]
+    oscillation_min_amplitude_pct : float
+        Smallest oscillation amplitude of the control error that matters. [% of range]
+    harris_min : float
+        A Harris index below this puts the loop far from minimum variance. [-]
     """
 
     ms_max: float = 2.0
@@ -63,6 +89,18 @@ class Policy:
     change_margin_db: float = 1.0
     change_pm_deg: float = 5.0
     change_band_db: float = 3.0
+    model_gain_ratio_max: float = 1.5
+    model_dead_time_tol: float = 0.5
+    model_tau_ratio_max: float = 2.0
+    model_fit_gap_pct: float = 20.0
+    mode_automatic: str = "auto, automatic, aut, a"
+    mode_manual: str = "man, manual, m"
+    mode_cascade: str = "cas, cascade, casc, remote, rsp"
+    auto_min_pct: float = 50.0
+    op_limited_max_pct: float = 10.0
+    op_limit_band_pct: float = 0.5
+    oscillation_min_amplitude_pct: float = 0.25
+    harris_min: float = 0.3
 
     def as_dict(self) -> dict[str, Any]:
         """The policy as a plain mapping (setting -> value), in declaration order."""
@@ -91,4 +129,18 @@ POLICY_HELP: dict[str, str] = {
     "change_margin_db": "Change in gain margin between audits reported as a move [dB].",
     "change_pm_deg": "Change in phase margin between audits reported as a move [deg].",
     "change_band_db": "Change in band attenuation between audits reported as a move [dB].",
+    "model_gain_ratio_max": "Data dispute the model when identified/model gain is outside [1/x, x] [-].",
+    "model_dead_time_tol": "Data dispute the model when the dead times differ by more than this share [-].",
+    "model_tau_ratio_max": "Data dispute the model when identified/model tau1 is outside [1/x, x] [-].",
+    "model_fit_gap_pct": "Data dispute the model when its fit % trails the identified model's by more [%].",
+    "mode_automatic": "Mode words of the operating records that mean automatic (comma-separated, any case).",
+    "mode_manual": "Mode words that mean manual (comma-separated, any case).",
+    "mode_cascade": "Mode words that mean cascade or remote set point (comma-separated, any case).",
+    "auto_min_pct": "A loop closed for less than this share of its record is mostly in manual [%].",
+    "op_limited_max_pct": "Share of the record with the output at a limit above which valve sizing or range "
+                          "is checked [%].",
+    "op_limit_band_pct": "An output within this of 0 % or 100 % counts as at its limit [%].",
+    "oscillation_min_amplitude_pct": "Smallest oscillation amplitude of the control error that matters "
+                                     "[% of range].",
+    "harris_min": "Harris index below which a loop is far from minimum variance [-] (1 = minimum variance).",
 }

@@ -19,6 +19,25 @@ and every invalid row (>= 630) above every failing loop (<= 550). Within the low
 spread (at most 30 x 3 + 60 = 150 points) lets a high-criticality loop with a large feasible
 benefit pass a low-criticality loop of the next class up, which is intended.
 Ties are broken by tag, then by row number, so the list is deterministic.
+
+Loop health from operating records (``audit.plantdata.health``) can put a loop on the work list
+whatever its model says, with the action that follows from the data; the first that applies wins:
+
+* closed less than ``auto_min_pct`` of the record: **return the loop to automatic** (350 points);
+* the valve suspected sticking (curve-fitting test): **check the valve: suspected sticking,
+  retuning will not cure it** (400 points); no retune is offered for that loop, whatever its
+  model says, and its verdict becomes ``check the valve first``;
+* the output at a limit more than ``op_limited_max_pct`` of the record: **check valve sizing or
+  range** (300 points);
+* (then the model's own action, as above;)
+* oscillating with no sign of a valve fault: **retune** (350 points), with the model's proposal
+  (the proposals stage makes one for such a loop even when its model passes).
+
+The score is the larger of these points and the model's severity points, plus the criticality
+points, plus the benefit points of a retune.
+Groups of interacting loops (``group_id``, couplings sheet) are ranked as one item: every loop of a
+group that needs action takes the highest score among them, and they stand together on the list
+(ordered by tag within the group), since retuning one of them changes what the others see.
 """
 
 from __future__ import annotations
@@ -53,7 +72,14 @@ FEASIBILITY: dict[str, float] = {
     "not evaluated": 0.0,
     "": 1.0,            # proposals not requested: the benefit is unknown, counted as zero below
 }
-ACTIONS = ("retune", "check the model or the valve", "structural change", "fix the inventory row")
+ACTION_AUTOMATIC = "return the loop to automatic"
+ACTION_VALVE = "check the valve: suspected sticking, retuning will not cure it"
+ACTION_SIZING = "check valve sizing or range"
+ACTIONS = ("retune", "check the model or the valve", "structural change", "fix the inventory row",
+           ACTION_AUTOMATIC, ACTION_VALVE, ACTION_SIZING)
+#: Points of the findings from operating records (see the module notes). [-]
+HEALTH_POINTS: dict[str, float] = {"manual": 350.0, "sticking": 400.0, "saturation": 300.0,
+                                   "oscillation": 350.0}
 PRIORITY_COLUMNS = ("priority_score", "rank", "action", "reason", "expected_improvement")
 
 
@@ -208,6 +234,50 @@ def _action(sev: str, verdict: str) -> str | None:
     return "retune"
 
 
+def _flag(rec: Mapping[str, Any], key: str) -> bool:
+    v = rec.get(key) if hasattr(rec, "get") else None
+    return v is not None and not (not isinstance(v, (bool, str)) and pd.isna(v)) and bool(v)
+
+
+def health_issue(rec: Mapping[str, Any], policy: Policy) -> str | None:
+    """The finding from operating records that decides the action, if any.
+
+    Parameters
+    ----------
+    rec : mapping
+        One results row with the health columns ``auto_pct`` [%], ``valve_sticking``,
+        ``op_limited_pct`` [%] and ``oscillating`` (absent or blank: no finding).
+    policy : Policy
+        ``auto_min_pct`` [%] and ``op_limited_max_pct`` [%].
+
+    Returns
+    -------
+    str or None
+        ``manual``, ``sticking``, ``saturation`` or ``oscillation`` (the first that applies, in
+        that order), None when the record shows none of them.
+    """
+    auto = _num(rec, "auto_pct")
+    if math.isfinite(auto) and auto < policy.auto_min_pct:
+        return "manual"
+    if _flag(rec, "valve_sticking"):
+        return "sticking"
+    lim = _num(rec, "op_limited_pct")
+    if math.isfinite(lim) and lim > policy.op_limited_max_pct:
+        return "saturation"
+    if _flag(rec, "oscillating"):
+        return "oscillation"
+    return None
+
+
+def _health_first(rec: Mapping[str, Any], issue: str) -> str:
+    words = _txt(rec, "health_findings").split("; ")
+    key = {"manual": "mostly in manual", "sticking": "valve suspected", "saturation": "output at",
+           "oscillation": "oscillating"}[issue]
+    first = next((w for w in words if w.startswith(key)), words[0])
+    outside = next((w for w in words if "enters from outside" in w), "")
+    return f"{first}; {outside}" if issue == "oscillation" and outside else first
+
+
 def priority_of(rec: Mapping[str, Any], policy: Policy) -> Priority:
     """Score, action and words of one results row.
 
@@ -229,6 +299,15 @@ def priority_of(rec: Mapping[str, Any], policy: Policy) -> Priority:
     score = SEVERITY_POINTS[sev] + CRITICALITY_POINTS * weight + BENEFIT_POINTS * feas * b
     if action is None:
         score = SEVERITY_POINTS[sev] + CRITICALITY_POINTS * weight if sev != "passes" else 0.0
+    issue = health_issue(rec, policy) if sev != "invalid" else None
+    if issue is not None and not (issue == "oscillation" and action is not None):
+        points = max(SEVERITY_POINTS[sev], HEALTH_POINTS[issue]) + CRITICALITY_POINTS * weight
+        if issue == "oscillation":
+            b = benefit(rec)
+            return Priority(sev, float(points + BENEFIT_POINTS * b), "retune", _health_first(rec, issue),
+                            _improvement(rec), b)
+        act = {"manual": ACTION_AUTOMATIC, "sticking": ACTION_VALVE, "saturation": ACTION_SIZING}[issue]
+        return Priority(sev, float(points), act, _health_first(rec, issue), "", 0.0)
     return Priority(sev, float(score), action, _reason(rec, sev) if action else "",
                     _improvement(rec) if action else "", b)
 
@@ -247,11 +326,19 @@ def work_list(results: pd.DataFrame, policy: Policy) -> pd.DataFrame:
     -------
     pandas.DataFrame
         Indexed like ``results``, columns :data:`PRIORITY_COLUMNS`; ``rank`` is 1 for the most
-        urgent row and missing for rows that need no action. Ties are broken by tag, then row.
+        urgent row and missing for rows that need no action. Loops of a group (``group_id``) that need
+        action share the group's highest score and stand together. Ties are broken by group, tag, then row.
     """
     pr = [priority_of(results.iloc[i], policy) for i in range(len(results))]
+    groups = [("" if pd.isna(g) else str(g)) for g in results["group_id"]] if "group_id" in results.columns \
+        else [""] * len(results)
+    top: dict[str, float] = {}
+    for g, p in zip(groups, pr):
+        if g and p.action:
+            top[g] = max(top.get(g, 0.0), p.score)
+    score = [top[g] if g and p.action else p.score for g, p in zip(groups, pr)]
     out = pd.DataFrame({
-        "priority_score": [p.score for p in pr],
+        "priority_score": score,
         "action": [p.action or "" for p in pr],
         "reason": [p.reason for p in pr],
         "expected_improvement": [p.expected_improvement for p in pr],
@@ -259,7 +346,7 @@ def work_list(results: pd.DataFrame, policy: Policy) -> pd.DataFrame:
     tags = results["tag"].astype(str).tolist() if "tag" in results.columns else [""] * len(results)
     rows = results["row"].tolist() if "row" in results.columns else list(range(len(results)))
     todo = [i for i, p in enumerate(pr) if p.action]
-    todo.sort(key=lambda i: (-round(pr[i].score, 9), tags[i], rows[i]))
+    todo.sort(key=lambda i: (-round(score[i], 9), groups[i], tags[i], rows[i]))
     rank = [pd.NA] * len(results)
     for r, i in enumerate(todo, start=1):
         rank[i] = r
@@ -274,8 +361,13 @@ def add_priority(audit) -> None:
     ----------
     audit : Audit
         The run, after the proposals stage; ``results`` is changed in place and the
-        inventory's policy gives the criticality weights.
+        inventory's policy gives the criticality weights. A loop whose valve is suspected
+        sticking has its ``retune`` verdict replaced by ``check the valve first``.
     """
-    wl = work_list(audit.results, audit.inventory.policy)
+    res = audit.results
+    if "valve_sticking" in res.columns and "verdict" in res.columns:
+        stick = res["valve_sticking"].fillna(False).astype(bool) & (res["verdict"] == "retune")
+        res.loc[stick, "verdict"] = "check the valve first"
+    wl = work_list(res, audit.inventory.policy)
     for c in PRIORITY_COLUMNS:
-        audit.results[c] = wl[c]
+        res[c] = wl[c]

@@ -152,6 +152,15 @@ POLICY_RANGES: dict[str, Range] = {
     "change_margin_db": Range("dB", 1e-6, 100.0),
     "change_pm_deg": Range("deg", 1e-6, 180.0),
     "change_band_db": Range("dB", 1e-6, 200.0),
+    "model_gain_ratio_max": Range("-", 1.0, 100.0, lo_open=True),
+    "model_dead_time_tol": Range("-", 1e-3, 100.0),
+    "model_tau_ratio_max": Range("-", 1.0, 100.0, lo_open=True),
+    "model_fit_gap_pct": Range("%", 0.0, 100.0, zero=True),
+    "auto_min_pct": Range("%", 0.0, 100.0, lo_open=True),
+    "op_limited_max_pct": Range("%", 0.0, 100.0, lo_open=True),
+    "op_limit_band_pct": Range("%", 0.0, 50.0, zero=True),
+    "oscillation_min_amplitude_pct": Range("%", 0.0, 100.0, lo_open=True),
+    "harris_min": Range("-", 0.0, 1.0, lo_open=True),
 }
 
 

@@ -21,7 +21,7 @@ import functools
 import gc
 import math
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from concurrent.futures import ProcessPoolExecutor
 from typing import Any, Callable, Iterator
@@ -171,6 +171,8 @@ class Rendered:
     loops: dict[str, tuple[tuple[str, Markup], ...]]
     status_mix: Markup | None
     trend: Markup | None
+    health: dict[str, tuple[tuple[str, Markup], ...]] = field(default_factory=dict)   # loop anchor -> charts
+    groups: dict[str, Markup] = field(default_factory=dict)   # group id -> generalised Nyquist chart
 
 
 def render_chart(chart) -> Markup:
@@ -213,7 +215,13 @@ def draw(report: Report, mapper: Callable = map) -> Rendered:
     h = report.history
     if h is not None and len(h.trend_dates) >= 1 and h.trend:
         trend = render_chart(plots.status_trend(h.trend_dates, h.trend))
-    return Rendered(loops, mix, trend)
+    from .health_charts import health_charts
+    health = {d.anchor: tuple((c.caption, render_chart(c)) for c in health_charts(d.health))
+              for d in report.details if d.health is not None}
+    from .multiloop.report import group_nyquist_chart
+    groups = {g.gid: render_chart(group_nyquist_chart(g, f"gnyq-{g.gid.lower()}"))
+              for g in getattr(report, "groups", ()) if g.evaluated and g.W.size}
+    return Rendered(loops, mix, trend, health, groups)
 
 
 def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False) -> str:

@@ -26,7 +26,9 @@ import numpy as np
 import pandas as pd
 
 from .columns import RESULT_COLUMNS
+from .health_report import health_summary, health_view
 from .loop import LoopModel
+from .plantdata.report_part import data_views
 from .policy import POLICY_HELP
 from .rows import LoopRow
 
@@ -223,6 +225,8 @@ class LoopDetail:
     proposal: "ProposalView | None"
     plots: LoopPlots | None
     notes: tuple[str, ...] = ()
+    health: Any = None                        # audit.health_report.HealthView when the row has an operating record
+    data: Any = None                  # audit.plantdata.report_part.DataCheckView: the model against plant data
 
 
 @dataclass(frozen=True)
@@ -316,6 +320,9 @@ class Report:
     glossary: tuple[GlossaryEntry, ...]
     detail_mode: str
     notes: tuple[str, ...] = field(default=())
+    health: Any = None                       # audit.health_report.HealthSummary when any row has an operating record
+    groups: tuple = field(default=())        # audit.multiloop.report.GroupSection, one per group
+    plant_data: Any = None                   # audit.plantdata.report_part.PlantDataSection, None without records
 
     @property
     def top_work(self) -> tuple[WorkItem, ...]:
@@ -827,13 +834,13 @@ def _plot_job(audit, i: int, row: LoopRow, model: LoopModel, res: _Results, prop
 # ----------------------------------------------------------------------------- details
 
 
-def _detail_order(rows, statuses, work: WorkList, mode: str) -> list[int]:
+def _detail_order(rows, statuses, work: WorkList, mode: str, also: frozenset = frozenset()) -> list[int]:
     by_tag_order = [it.index for it in work.items]
     if mode == "all":
         head = [i for i in by_tag_order if rows[i].valid]
         seen = set(head)
         return head + [i for i in range(len(rows)) if i not in seen and rows[i].valid]
-    return [i for i in by_tag_order if statuses[i] not in ("passes", "invalid") and rows[i].valid]
+    return [i for i in by_tag_order if (statuses[i] not in ("passes", "invalid") or i in also) and rows[i].valid]
 
 
 def _inner_row(rows, row: LoopRow) -> LoopRow | None:
@@ -869,6 +876,7 @@ def _detail(audit, i: int, res: _Results, status: str, with_plots: bool) -> tupl
         findings=_text(res.get(i, "findings")), identity=identity, model=_model_items(row),
         tuning=_tuning_items(row), entered=_entered(row), checks=_checks(i, res, audit.inventory.policy),
         cascade=cascade, proposal=_proposal_view(proposal, res, i), plots=None,
+        health=health_view(audit, i, loop_anchor(row)),
         notes=tuple(notes) + tuple(w.message if hasattr(w, "message") else str(w) for w in row.warnings),
     ), job
 
@@ -963,7 +971,7 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     statuses = [_status(res, i, r) for i, r in enumerate(rows)]
     work = _work_list(rows, res, statuses)
     mode = audit.options.detail if audit.options.detail in ("failing", "all") else "failing"
-    order = _detail_order(rows, statuses, work, mode)
+    order = _detail_order(rows, statuses, work, mode, frozenset(audit.extras.get("health") or ()))
     anchors = {loop_anchor(rows[i]) for i in order}
     pairs = [_detail(audit, i, res, statuses[i], plot_limit is None or k < plot_limit) for k, i in enumerate(order)]
     jobs = [job for _, job in pairs if job is not None]
@@ -972,6 +980,8 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     drawn = dict(zip([j.key for j in jobs], mapper(plot_data, jobs)))
     details = tuple(d if d.anchor not in drawn else
                     replace(d, plots=drawn[d.anchor][0], notes=drawn[d.anchor][1] + d.notes) for d, _ in pairs)
+    plant_data, data = data_views(audit)
+    details = tuple(replace(d, data=data[d.index]) if d.index in data else d for d in details)
     present = [s for s in STATUS_ORDER if s in statuses] + sorted({s for s in statuses if s not in STATUS_ORDER})
     crit_order = [c for c in ("high", "medium", "low")] + sorted(
         {r.criticality for r in rows} - {"high", "medium", "low"})
@@ -996,7 +1006,15 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
         glossary=tuple(GlossaryEntry(c.name, c.unit, c.meaning) for c in RESULT_COLUMNS),
         detail_mode=mode,
         notes=tuple(notes),
+        health=health_summary(audit, {d.index: d.anchor for d in details}),
+        groups=_group_sections(audit),
+        plant_data=plant_data,
     )
+
+
+def _group_sections(audit) -> tuple:
+    from .multiloop.report import group_sections
+    return group_sections(audit)
 
 
 def _loop_line(row: LoopRow, res: _Results, i: int, status: str, anchors: set[str]) -> LoopLine:

@@ -136,6 +136,7 @@ class LoopRow:
     allowed_amplitude: float | None = None  # [% of PV range]
     inner_loop: str | None = None         # tag of the inner loop of a cascade
     outer_model_input: str = "inner_pv"   # inner_pv | inner_sp
+    data_file: str | None = None          # plant record (op, pv) path, resolved inside the inventory folder
     conventions: dict[str, str] = field(default_factory=dict)
     raw: dict[str, Any] = field(default_factory=dict)
     extras: dict[str, Any] = field(default_factory=dict)
@@ -167,3 +168,4 @@ class Inventory:
     sheets: tuple[str, ...] = ()
     extra_columns: tuple[str, ...] = ()  # unknown headers, carried to the results
     column_letters: dict[str, str] = field(default_factory=dict)  # canonical column -> sheet column letter
+    couplings: "CouplingSheet | None" = None  # noqa: F821  (audit.multiloop.couplings; None without the sheet)

@@ -17,6 +17,7 @@ from openpyxl.utils import get_column_letter
 from openpyxl.worksheet.datavalidation import DataValidation
 
 from .inventory import TEMPLATE_COLUMNS, InventoryColumn, alternatives
+from .multiloop.couplings import TEMPLATE_HELP as COUPLINGS_HELP, write_template_sheet as write_couplings_sheet
 from .output import write_file_safely
 from .policy import POLICY_HELP, Policy
 
@@ -75,6 +76,7 @@ INSTRUCTIONS = [
     "12. Columns the tool does not know are kept and carried to the results (a warning names them).",
     "13. Numbers are plain numbers: no thousands separators, a point as the decimal mark.",
     "    Run 'check' on the workbook to see every problem with its cell before running the audit.",
+    "14. " + COUPLINGS_HELP[0], *("    " + line for line in COUPLINGS_HELP[1:]),
     "",
     "The audit is advisory. Any tuning change goes through the site's management-of-change procedure and a review",
     "by a qualified control engineer; never apply it to safety instrumented functions. Local codes and site",
@@ -174,5 +176,6 @@ def write_template(path: str | Path, force: bool = False) -> None:
     ins["A1"].font = Font(bold=True, size=13)
     ins.column_dimensions["A"].width = 120
 
+    write_couplings_sheet(wb)
     wb.move_sheet("lists", offset=len(wb.sheetnames))
     write_file_safely(path, wb.save, force=force, suffixes=(".xlsx",))

@@ -63,6 +63,10 @@ from .policy import Policy
 N_TARGET = 1000          # steps per horizon aimed at
 N_CAP = 16 * N_TARGET     # most steps of one simulation (a longer one is cut and reported)
 MEMORY_BUDGET = 128e6    # bytes of stored responses per simulated chunk
+#: Largest magnitude a simulated state or delayed signal keeps: an unstable loop's response grows
+#: without bound and would overflow to inf (then inf - inf); it is held at this level instead, far
+#: beyond any figure (such a loop is reported as growing). [-]
+STATE_LIMIT = 1e100
 FIGURE_CHUNK = 1024      # loops per block of figure computations (bounds temporaries)
 HORIZON_FACTOR = 4.0     # first horizon = HORIZON_FACTOR * Tc
 RERUNS = 2               # horizon x4 at most this many times
@@ -658,6 +662,9 @@ def expm_batch(M: np.ndarray) -> np.ndarray:
         E = eye + (X @ E) / k
     for j in range(int(s.max()) if L else 0):
         sq = E @ E
+        # an unstable loop on a long step: e^{lambda h} beyond any float; held at STATE_LIMIT (its
+        # simulated response is held there too) instead of overflowing to inf
+        np.clip(sq, -STATE_LIMIT, STATE_LIMIT, out=sq)
         E = np.where((j < s)[:, None, None], sq, E)
     return E
 
@@ -757,16 +764,19 @@ def simulate(batch: Batch, h: np.ndarray, n_steps: int, ext: Callable[[int], np.
             V[ns + 2 * r - 1] = ek
         V[ns + r:ns + r + m] = wm
         x = np.einsum("ijl,jl->il", G, V)
+        np.clip(x, -STATE_LIMIT, STATE_LIMIT, out=x)      # an unstable loop's growth stops short of overflow
         V[:ns] = x
         V[ns:ns + m] = wp
         if not step_input:
             V[ns + m] = ek
         Op = np.einsum("ijl,jl->il", Hx, V[:ns + r])
+        np.clip(Op, -STATE_LIMIT, STATE_LIMIT, out=Op)    # (a neutral loop grows through its delay line alone)
         s = ((k + 1) % R) * mL
         QP[s:s + mL] = Op[:m].ravel()
         YP[k + 1] = Op[m:]
         if jumps:
             Om = Op + np.einsum("ijl,jl->il", Hw, wm - wp)
+            np.clip(Om, -STATE_LIMIT, STATE_LIMIT, out=Om)
             QM[s:s + mL] = Om[:m].ravel()
             YM[k + 1] = Om[m:]
         else:

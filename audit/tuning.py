@@ -1728,7 +1728,7 @@ def add_proposals(audit) -> None:
         elif mode == "none":
             out[i] = Proposal("no change needed" if status == "passes" else "",
                               note="" if status == "passes" else "proposals not requested (--propose none)")
-        elif status == "passes" and mode != "all":
+        elif status == "passes" and mode != "all" and i not in audit.extras.get("retune_for_oscillation", ()):
             out[i] = Proposal("no change needed")
         else:
             todo.append(i)

@@ -67,14 +67,25 @@ def judge(fig: pd.Series, lim: dict[str, float], attenuation_db: float | None, m
     p = marginal_pct / 100.0
     if not bool(fig["stable"]):
         n = fig["rhp_closed"]
-        words = [f"closed loop unstable ({n} pole{'s' if n != 1 else ''} in the right half-plane)"]
+        if n is None or n is pd.NA or (isinstance(n, float) and math.isnan(n)):
+            # no finite count: |L(inf)| > 1 with dead time (a neutral loop), or its inner loop such
+            words = ["closed loop unstable (infinitely many closed-loop poles in the right half-plane)"]
+        elif n == 0:
+            # poles on the imaginary axis are not in the right half-plane, but the loop is not stable
+            words = ["closed loop not stable (no closed-loop pole in the right half-plane; see the engine note)"]
+        else:
+            words = [f"closed loop unstable ({n} closed-loop pole{'s' if n != 1 else ''} in the right half-plane)"]
         if fig.get("engine_note"):
             words.append(str(fig["engine_note"]))
         return "unstable", words
     broken: list[str] = []
     near: list[str] = []
     ms, msmax = fig["ms"], lim["ms_max"]
-    if ms > msmax:
+    bounds = str(fig.get("lower_bounds") or "").split()
+    if "ms" in bounds:
+        # the peak search was cut short: the value is a lower bound of Ms
+        (broken if ms > msmax else near).append(f"Ms at least {_f(ms)} (a lower bound: the peak search was cut short)")
+    elif ms > msmax:
         broken.append(f"Ms {_f(ms)} > {_f(msmax)}")
     elif ms > (1 - p) * msmax:
         near.append(f"Ms {_f(ms)} near limit {_f(msmax)}")

@@ -219,7 +219,7 @@ def main(argv: list[str] | None = None) -> int:
     t0 = time.perf_counter()
     figs_par = evaluate_parallel(models, band, args.jobs)
     t_par = time.perf_counter() - t0
-    num = [c for c in figs.columns if c not in ("stable", "engine_note", "rhp_closed", "rhp_open")]
+    num = [c for c in figs.columns if c not in ("stable", "engine_note", "lower_bounds", "rhp_closed", "rhp_open")]
     a_, b_ = figs[num].to_numpy(float), figs_par[num].to_numpy(float)
     ok = np.isfinite(a_) & np.isfinite(b_) & (a_ != 0)
     rel = float(np.max(np.abs(a_[ok] - b_[ok]) / np.abs(a_[ok]), initial=0.0))

@@ -45,7 +45,7 @@ HEADERS = [
     "action", "sample_s", "pv_filter_s",
     "band_rad_s", "attenuation_db", "ms_max",
     "disturbance_file", "allowed_amplitude", "allowed_amplitude_eu",
-    "inner_loop", "outer_model_input",
+    "inner_loop", "outer_model_input", "data_file",
     "dcs_node",   # not a known column: carried to the results as an extra
 ]
 
@@ -65,7 +65,7 @@ LOOPS: list[dict] = [
       sample_s=1, form="ideal", pb_pct=100, ti_min=14, action="direct", band_rad_s=0.0005, attenuation_db=6,
       dcs_node="PS1"),
     L("FIC-102", "Inlet pump 1 flow", IP, "medium", "fopdt", gain=1.2, tau1_s=3, dead_time_s=0.5, sample_s=0.25,
-      form="ideal", kc=0.4, ti_s=3, action="reverse", band_rad_s=0.05, attenuation_db=6, dcs_node="PS1"),
+      form="ideal", kc=0.4, ti_s=3, action="reverse", band_rad_s=0.05, attenuation_db=6, data_file="records/plant/fic102_bump.csv", dcs_node="PS1"),
     # fragile: gain well above the SIMC value and integral time halved
     L("FIC-103", "Inlet pump 2 flow", IP, "medium", "fopdt", gain=1.2, tau1_s=3, dead_time_s=0.5, sample_s=0.25,
       form="ideal", kc=2.2, ti_s=1.2, action="reverse", band_rad_s=0.05, attenuation_db=6, dcs_node="PS1"),
@@ -75,7 +75,7 @@ LOOPS: list[dict] = [
       kc=2, ti_min=30, action="reverse", disturbance_file="records/broadband.csv", allowed_amplitude=1,
       pv_lo=0, pv_hi=4, dcs_node="PS2"),
     L("FIC-106", "Storm return pump flow", IP, "low", "fopdt", gain=1.0, tau1_s=5, dead_time_s=1, sample_s=0.5,
-      form="ideal", kc=0.5, ti_s=5, action="reverse", dcs_node="PS2"),
+      form="ideal", kc=0.5, ti_s=5, action="reverse", data_file="operation/FIC-106_operation.csv", dcs_node="PS2"),
     # fragile: an integral time of seconds on an integrating level
     L("LIC-107", "Screen channel level", IP, "medium", "ipdt", gain=0.01, tau1_s=4, dead_time_s=2, sample_s=0.5,
       form="ideal", kc=3, ti_s=25, action="reverse", band_rad_s=0.003, attenuation_db=10, dcs_node="PS1"),
@@ -92,7 +92,8 @@ LOOPS: list[dict] = [
     L("PIC-201", "Air main header pressure", AE, "high", "fopdt", gain=0.6, tau1_s=8, dead_time_s=1, sample_s=0.5,
       form="ideal", kc=1.5, ti_s=10, action="reverse", dcs_node="BLW"),
     L("FIC-211", "Lane 1 air flow", AE, "medium", "fopdt", gain=1.5, tau1_s=4, dead_time_s=1, sample_s=0.5,
-      form="ideal", kc=0.6, ti_s=4, action="reverse", band_rad_s=0.05, attenuation_db=6, dcs_node="AE1"),
+      form="ideal", kc=0.6, ti_s=4, action="reverse", band_rad_s=0.05, attenuation_db=6,
+      data_file="operation/FIC-211_operation.csv", dcs_node="AE1"),
     L("FIC-212", "Lane 2 air flow", AE, "medium", "fopdt", gain=1.5, tau1_s=4, dead_time_s=1, sample_s=0.5,
       form="ideal", pb_pct=160, reset_rpm=15, action="reverse", band_rad_s=0.05, attenuation_db=6, dcs_node="AE1"),
     L("FIC-213", "Lane 3 air flow", AE, "medium", "fopdt", gain=1.5, tau1_s=4, dead_time_s=1, sample_s=0.5,
@@ -122,7 +123,7 @@ LOOPS: list[dict] = [
       attenuation_db=6, inner_loop="AIC-221", outer_model_input="inner_sp", dcs_node="AE1"),
     L("FIC-241", "Return activated sludge flow", AE, "medium", "fopdt", gain=1.1, tau1_s=6, dead_time_s=2,
       sample_s=0.5, form="ideal", pb_pct=250, reset_rpm=10, action="reverse", band_rad_s=0.02, attenuation_db=6,
-      dcs_node="AE3"),
+      data_file="operation/FIC-241_operation.csv", dcs_node="AE3"),
     # wrong action: direct on a process whose PV rises with output
     L("FIC-242", "Surplus activated sludge flow", AE, "low", "fopdt", gain=1.0, tau1_s=6, dead_time_s=2,
       sample_s=0.5, form="ideal", kc=0.4, ti_s=6, action="direct", dcs_node="AE3"),
@@ -152,7 +153,7 @@ LOOPS: list[dict] = [
       sample_s=0.5, form="series", kc=0.5, ti_s=5, action="reverse", dcs_node="DG2"),
     L("FIC-305", "Digester 1 sludge feed flow", DG, "medium", "fopdt", gain=1.0, tau1_s=8, dead_time_s=3,
       sample_s=1, form="ideal", kc=0.7, ti_s=8, action="reverse", band_rad_s=0.01, attenuation_db=10,
-      dcs_node="DG1"),
+      data_file="operation/FIC-305_operation.csv", dcs_node="DG1"),
     # misses its requirement: 10 dB of attenuation up to 0.05 rad/s with 3 s of dead time and a slow pump
     L("FIC-306", "Digester 2 sludge feed flow", DG, "medium", "fopdt", gain=1.0, tau1_s=8, dead_time_s=3,
       sample_s=1, form="ideal", kc=0.7, ti_s=8, action="reverse", band_rad_s=0.05, attenuation_db=10,
@@ -173,19 +174,19 @@ LOOPS: list[dict] = [
     # fragile: gain well above what 45 s of dead time allows
     L("TIC-312", "Sludge heat exchanger outlet temperature", DG, "medium", "fopdt", gain=0.9, tau1_s=240,
       dead_time_s=45, sample_s=2, form="ideal", kc=4.5, ti_s=240, action="reverse", band_rad_s=0.002,
-      attenuation_db=6, dcs_node="DG1"),
+      attenuation_db=6, data_file="records/plant/tic312_normal.csv", dcs_node="DG1"),
 
     # ---- Boiler and heat recovery
     L("TIC-401", "Engine jacket water temperature", BH, "high", "sopdt", gain=1.2, tau1_s=300, tau2_s=60,
       dead_time_s=20, sample_s=1, form="series", kc=6, ti_s=160, td_s=60, action="reverse",
-      band_rad_s=0.005, attenuation_db=10, dcs_node="CHP"),
+      band_rad_s=0.005, attenuation_db=10, data_file="records/plant/tic401_bump.csv", dcs_node="CHP"),
     # fragile: integral time far shorter than the process time constant
     L("TIC-402", "Heat recovery water temperature", BH, "medium", "fopdt", gain=1.0, tau1_min=10,
       dead_time_s=90, sample_s=2, form="ideal", kc=2.5, ti_min=2, action="reverse", band_rad_s=0.001,
-      attenuation_db=6, dcs_node="CHP"),
+      attenuation_db=6, data_file="operation/TIC-402_operation.csv", dcs_node="CHP"),
     L("PIC-403", "Boiler steam pressure", BH, "high", "fopdt", gain=0.5, tau1_s=120, dead_time_s=10, sample_s=1,
       form="ideal", kc=14, ti_s=80, td_s=4, action="reverse", band_rad_s=0.005, attenuation_db=10,
-      dcs_node="BLR"),
+      data_file="records/plant/pic403_sp_changes.csv", dcs_node="BLR"),
     # integrating drum level with a small lag
     L("LIC-404", "Boiler drum level", BH, "high", "ipdt", gain=0.002, tau1_s=5, dead_time_s=3, sample_s=0.5,
       form="ideal", kc=8, ti_min=4, action="reverse", band_rad_s=0.002, attenuation_db=10, dcs_node="BLR"),
@@ -197,7 +198,7 @@ LOOPS: list[dict] = [
     # wrong action: more air damper gives more O2, yet the controller is set direct
     L("AIC-407", "Boiler flue gas oxygen", BH, "medium", "fopdt", gain=0.8, tau1_s=20, dead_time_s=15,
       sample_s=5, form="ideal", kc=0.8, ti_s=25, action="direct", band_rad_s=0.005, attenuation_db=6,
-      dcs_node="BLR"),
+      data_file="records/plant/aic407_small_bump.csv", dcs_node="BLR"),
     # own transfer function: three lags of the heating header, gain 0.9
     L("TIC-408", "Hot-water header temperature", BH, "medium", "tf", num="0.9", den="360000 25200 380 1", dead_time_s=30, sample_s=2, form="ideal", kc=2, ti_s=300, td_s=40,
       action="reverse", band_rad_s=0.0005, attenuation_db=10, dcs_node="HWS"),
@@ -207,7 +208,7 @@ LOOPS: list[dict] = [
     L("TIC-410", "Dump radiator outlet temperature", BH, "medium", "fopdt", gain=1.4, tau1_s=90, dead_time_s=25,
       sample_s=1, form="ideal", kc=6, ti_s=40, action="reverse", dcs_node="CHP"),
     L("LIC-411", "Condensate tank level", BH, "low", "ipdt", gain=0.004, dead_time_s=4, sample_s=1,
-      form="parallel", kp=1.5, ki_per_s=0.0015, action="reverse", dcs_node="BLR"),
+      form="parallel", kp=1.5, ki_per_s=0.0015, action="reverse", data_file="records/plant/lic411_bump.parquet", dcs_node="BLR"),
     L("FIC-412", "Gas booster recycle flow", BH, "low", "fopdt", gain=1.2, tau1_s=2.5, dead_time_s=0.4,
       sample_s=0.2, form="parallel", kp=0.4, ki_per_s=0.16, action="reverse", dcs_node="GAS"),
 
@@ -245,7 +246,7 @@ LOOPS: list[dict] = [
     # ---- Sludge thickening: a level -> flow cascade
     L("FIC-601", "Thickener feed flow", SD, "medium", "fopdt", gain=1.0, tau1_s=5, dead_time_s=1.5,
       sample_s=0.5, form="ideal", kc=0.5, ti_s=5, action="reverse", band_rad_s=0.02, attenuation_db=6,
-      dcs_node="SLD"),
+      data_file="records/plant/fic601_bump_gaps.csv", dcs_node="SLD"),
     # cascade, model from the flow PV: buffer tank level -> thickened sludge pump flow (pumped out)
     L("LIC-602", "Thickened sludge buffer tank level (sets FIC-603)", SD, "medium", "ipdt", gain=-0.0008,
       dead_time_s=10, sample_s=2, form="ideal", kc=3, ti_min=20, action="direct", band_rad_s=0.0005,
@@ -267,9 +268,36 @@ LOOPS: list[dict] = [
     # fragile: too little integral time on a dead-time-heavy loop
     L("TIC-607", "Sludge pre-heater temperature", SD, "medium", "fopdt", gain=1.1, tau1_s=120, dead_time_s=40,
       sample_s=2, form="ideal", kc=1.4, ti_s=40, action="reverse", band_rad_s=0.001, attenuation_db=6,
-      dcs_node="SLD"),
+      data_file="records/plant/tic607_bump.csv", dcs_node="SLD"),
     L("LIC-608", "Centrate sump level", SD, "low", "ipdt", gain=-0.002, dead_time_s=3, sample_s=1, form="ideal",
       kc=2, ti_min=15, action="direct", dcs_node="SLD"),
+
+    # ---- Interacting loops (see COUPLINGS): each passes alone
+    # blend tank: pre-heated thickened sludge feed sets dry solids, hot dilution water sets temperature;
+    # each flow moves both (relative gain 0.75): the dry-solids loop fails with its partner closed
+    L("AIC-611", "Sludge blend tank dry solids", SD, "high", "fopdt", gain=0.9, tau1_s=400, dead_time_s=60,
+      sample_s=5, form="ideal", kc=4, ti_s=400, action="reverse", dcs_node="SLD"),
+    L("TIC-612", "Sludge blend tank temperature", SD, "medium", "fopdt", gain=1.0, tau1_s=300, dead_time_s=30,
+      sample_s=2, form="ideal", kc=4.5, ti_s=300, action="reverse", dcs_node="SLD"),
+    # gas compressor: suction pressure on the recycle valve, recycle flow on the speed -- the wrong
+    # pairing (negative relative gain): stable one by one, unstable together
+    L("PIC-331", "Gas compressor suction pressure", DG, "high", "fopdt", gain=0.5, tau1_s=60, dead_time_s=5,
+      sample_s=1, form="ideal", kc=2, ti_s=60, action="reverse", dcs_node="DIG"),
+    L("FIC-332", "Gas compressor recycle flow", DG, "medium", "fopdt", gain=0.7, tau1_s=30, dead_time_s=2,
+      sample_s=0.5, form="ideal", kc=1.5, ti_s=30, action="reverse", dcs_node="DIG"),
+]
+
+# The couplings sheet: how one loop's output moves another loop's PV (invented, like everything here).
+COUPLING_HEADERS = ["from_tag", "to_tag", "model", "gain", "tau1_s", "dead_time_s", "note"]
+COUPLINGS: list[dict] = [
+    {"from_tag": "TIC-612", "to_tag": "AIC-611", "model": "fopdt", "gain": -0.6, "tau1_s": 350, "dead_time_s": 50,
+     "note": "hot dilution water lowers dry solids"},
+    {"from_tag": "AIC-611", "to_tag": "TIC-612", "model": "fopdt", "gain": 0.5, "tau1_s": 280, "dead_time_s": 40,
+     "note": "pre-heated sludge feed raises the temperature"},
+    {"from_tag": "FIC-332", "to_tag": "PIC-331", "model": "fopdt", "gain": 0.8, "tau1_s": 50, "dead_time_s": 4,
+     "note": "speed raises suction draw"},
+    {"from_tag": "PIC-331", "to_tag": "FIC-332", "model": "fopdt", "gain": 1.0, "tau1_s": 40, "dead_time_s": 3,
+     "note": "recycle valve opening raises recycle flow"},
 ]
 
 POLICY = [
@@ -300,6 +328,12 @@ def build_workbook() -> Workbook:
     ws.freeze_panes = "B2"
     for j, h in enumerate(HEADERS, start=1):
         ws.column_dimensions[ws.cell(1, j).column_letter].width = 34 if h == "service" else max(9, len(h) + 2)
+    cpl = wb.create_sheet("couplings")
+    cpl.append(COUPLING_HEADERS)
+    for c in COUPLINGS:
+        cpl.append([c.get(h) for h in COUPLING_HEADERS])
+    for j in range(1, len(COUPLING_HEADERS) + 1):
+        cpl.cell(1, j).font, cpl.cell(1, j).fill = bold, fill
     pol = wb.create_sheet("policy")
     pol.append(["setting", "value", "meaning"])
     for row in POLICY:

@@ -123,3 +123,33 @@ def test_sample_pdf_names_every_loop_and_carries_the_caution(sample_runs):
     assert re.search(r"page 2 of \d+", text)
     # the detail pages carry their charts: axis titles with units are text in the PDF
     assert "frequency ω [rad/s]" in text and "time [s]" in text
+
+
+def test_sample_groups_of_interacting_loops(sample_runs):
+    """The sample's couplings sheet: two groups, each with its section, and the group verdicts in results.csv."""
+    html = (sample_runs[0] / "report.html").read_text(encoding="utf-8")
+    for gid in ("g1", "g2"):
+        assert f'id="group-{gid}"' in html
+    assert "Generalised Nyquist curve of group G1" in html
+    with open(sample_runs[0] / "results.csv", newline="", encoding="utf-8") as f:
+        rows = {r["tag"]: r for r in csv.DictReader(f)}
+    assert rows["AIC-611"]["status_alone"] == "passes" and rows["AIC-611"]["status"] == "fails"
+    assert "passes alone, fails with its group G1 closed" in rows["AIC-611"]["findings"]
+    assert rows["PIC-331"]["status"] == "unstable" and rows["PIC-331"]["group_stable"] == "false"
+    assert rows["FIC-102"]["group_id"] == ""
+
+
+def test_sample_models_against_plant_data(sample_runs):
+    """The sample site's records: the stale dead time is disputed, the small bump not identifiable,
+    the bump tests confirmed; the report carries the site summary and each loop's part."""
+    import csv
+    rows = {r["tag"]: r for r in csv.DictReader((sample_runs[0] / "results.csv").open(encoding="utf-8"))}
+    assert rows["TIC-607"]["model_check"] == "disputed" and float(rows["TIC-607"]["dead_time_diff_s"]) > 30
+    assert "re-identify the model" in rows["TIC-607"]["action"]
+    assert rows["AIC-407"]["model_check"] == "not identifiable" and "op moved only" in rows["AIC-407"]["data_note"]
+    assert rows["FIC-102"]["model_check"] == "confirmed" and rows["LIC-411"]["id_model"] == "ipdt"
+    html = (sample_runs[0] / "report.html").read_text(encoding="utf-8")
+    assert "Models against plant data" in html and "13 loops with a logged record" in html   # 8 plant records + 5 operating records
+    section = html[html.index('id="loop-tic-607'):]
+    section = section[:section.index("</section>")]
+    assert "Model against plant data" in section and "<polyline" in section and "disputed" in section

@@ -19,7 +19,8 @@ def template(tmp_path_factory):
 
 def test_template_layout(template):
     wb = load_workbook(template)
-    assert wb.sheetnames == ["loops", "policy", "instructions", "lists"]
+    assert wb.sheetnames == ["loops", "couplings", "policy", "instructions", "lists"]
+    assert [c.value for c in wb["couplings"][1]][:2] == ["from_tag", "to_tag"]
     assert wb["lists"].sheet_state == "hidden"
     ws = wb["loops"]
     headers = [c.value for c in ws[1]]

@@ -31,7 +31,27 @@ def test_passes_marginal_fails_unstable():
     st, words = judge(fig(band_s_db=-21.0), LIM, 20.0, 10.0)
     assert st == "marginal"
     st, words = judge(fig(stable=False, rhp_closed=2), LIM, 20.0, 10.0)
-    assert st == "unstable" and "2 poles" in words[0]
+    assert st == "unstable" and "2 closed-loop poles in the right half-plane" in words[0]
+
+
+def test_neutral_loop_and_imaginary_axis_wording():
+    """Closed form: |L(inf)| > 1 with dead time gives infinitely many closed-loop poles in the right
+    half-plane (Hale & Verduyn Lunel, Introduction to Functional Differential Equations, 1993, ch. 9): the
+    engine leaves rhp_closed blank and the finding says so. Poles exactly on the imaginary axis are not in
+    the right half-plane: a loop not stable with none counted says that, not '0 poles'."""
+    st, words = judge(fig(stable=False, rhp_closed=pd.NA, engine_note="neutral"), LIM, None, 10.0)
+    assert st == "unstable" and "infinitely many closed-loop poles in the right half-plane" in words[0]
+    st, words = judge(fig(stable=False, rhp_closed=0, engine_note="passes through -1"), LIM, None, 10.0)
+    assert st == "unstable" and "no closed-loop pole in the right half-plane" in words[0]
+    assert "0 poles" not in " ".join(words)
+
+
+def test_ms_lower_bound_is_said():
+    """A peak reported as a lower bound (lower_bounds holds 'ms') is worded as 'at least' (common practice)."""
+    st, words = judge(fig(ms=2.5, lower_bounds="ms"), LIM, None, 10.0)
+    assert st == "fails" and "Ms at least 2.5 (a lower bound" in words[0]
+    st, words = judge(fig(ms=1.2, lower_bounds="ms mt"), LIM, None, 10.0)
+    assert st == "marginal" and "a lower bound" in words[0]
 
 
 def test_downward_gain_margin_counts():

@@ -1,0 +1,339 @@
+"""The model check of ``run``: every row's model against its logged record (``data_file``).
+
+For a row with a record holding ``op`` and ``pv``:
+
+1. ``model_fit_pct``: the inventory's model driven by the logged op (exact dead time, op
+   held between samples, the record taken to start at rest) against the logged pv; the
+   operating point (bias, and for ipdt the balancing op) is fitted, since the inventory
+   does not hold it.
+2. A model re-identified from the same data (:mod:`.identify`).
+3. How they differ: ``gain_ratio`` = identified / inventory gain, ``dead_time_diff_s`` =
+   identified - inventory dead time, ``tau_ratio`` = identified / inventory tau1
+   (largest time constant; blank for ipdt).
+4. The verdict ``model_check``:
+
+   * ``disputed`` when the identified model is returned and any of: the gain ratio lies
+     outside [1/``model_gain_ratio_max``, ``model_gain_ratio_max``] (default 1.5); the
+     dead times differ by more than ``model_dead_time_tol`` (default 50 %) of the
+     inventory's dead time and by more than one sample; the tau ratio lies outside
+     [1/``model_tau_ratio_max``, ``model_tau_ratio_max``] (default 2); or the model's fit
+     trails the identified one by more than ``model_fit_gap_pct`` (default 20 points).
+     A parameter difference counts only when the inventory's value also lies outside the
+     identified 95 % interval (the data must be sure);
+   * ``confirmed`` otherwise; ``not identifiable`` when the data support no model (the
+     note says why); ``record unusable`` when the record cannot be read; ``not checked``
+     for a model type the check does not simulate (``tf``) or a row not evaluated.
+
+   The defaults follow common practice: a gain margin of 2 (6 dB) absorbs a gain error of
+   a factor 2, so a factor 1.5 already spends most of it; a dead-time error of 50 % costs
+   about 30 degrees of phase margin at a SIMC crossover; time constants matter less.
+
+A disputed model adds the finding "the data dispute the model ...: re-identify; model-based
+figures rest on a disputed model", the action "re-identify the model" before any other,
+and the loop's Ms, gain and phase margins with the identified model beside the inventory's
+(``id_ms``, ``id_gm_db``, ``id_pm_deg``). A disputed loop with no place on the work list
+is added at its end. A bad record degrades only the row's data columns to a note.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .identify import Identification, IdentifyPolicy, _run, identify_record, nrmse_fit
+from .records import PathError, confine, read_record
+
+MODELCHECK_COLUMNS = ("model_check", "model_fit_pct", "id_model", "id_gain", "id_gain_ci95", "id_tau1_s",
+                      "id_tau1_ci95_s", "id_tau2_s", "id_lead_s", "id_dead_time_s", "id_dead_time_ci95_s",
+                      "id_fit_pct", "id_fit_holdout_pct", "gain_ratio", "dead_time_diff_s", "tau_ratio",
+                      "id_stable", "id_ms", "id_gm_db", "id_pm_deg", "data_note")
+TEXT_COLUMNS = ("model_check", "id_model", "data_note", "id_stable")
+SIMULATED = ("fopdt", "sopdt", "ipdt")
+
+
+@dataclass(frozen=True)
+class ModelCheck:
+    """One row's model against its data.
+
+    Attributes
+    ----------
+    verdict : str
+        confirmed, disputed, not identifiable, record unusable or not checked.
+    model_fit_pct : float
+        Fit % of the inventory's model on the data. [%]
+    model_yhat : ndarray or None
+        The inventory model's simulated pv. [%]
+    identification : Identification or None
+        The re-identification.
+    gain_ratio : float
+        Identified / inventory gain. [-]
+    dead_time_diff_s : float
+        Identified - inventory dead time. [s]
+    tau_ratio : float
+        Identified / inventory tau1. [-]
+    reasons : tuple of str
+        Why disputed, in words with values.
+    note : str
+        What was done or why not.
+    """
+
+    verdict: str
+    model_fit_pct: float = float("nan")
+    model_yhat: np.ndarray | None = None
+    identification: Identification | None = None
+    gain_ratio: float = float("nan")
+    dead_time_diff_s: float = float("nan")
+    tau_ratio: float = float("nan")
+    reasons: tuple[str, ...] = ()
+    note: str = ""
+
+
+def row_modes(row) -> list[tuple[float, float]]:
+    """The inventory model of a row as first-order modes (time constant [s], weight [-]) at unit gain.
+
+    Parameters
+    ----------
+    row : LoopRow
+        A row whose ``model`` is fopdt, sopdt or ipdt (ipdt may carry tau1).
+
+    Returns
+    -------
+    list of tuple
+        ``(tau, w)`` pairs with tau = inf for an integrator: the sum of w/(tau s + 1) (w/s).
+    """
+    t1, t2, ld = float(row.tau1 or 0.0), float(row.tau2 or 0.0), float(row.lead or 0.0)
+    if row.model == "fopdt":
+        return [(t1, 1.0)] if t1 > 0 else [(0.0, 1.0)]
+    if row.model == "ipdt":
+        return [(math.inf, 1.0)] + ([(t1, -t1)] if t1 > 0 else [])
+    if t1 <= 0 and t2 <= 0:
+        return [(0.0, 1.0)]
+    if t2 <= 0 or t1 <= 0:
+        t = max(t1, t2)
+        return [(t, (t - ld) / t), (0.0, ld / t)]
+    if abs(t1 - t2) < 1e-4 * max(t1, t2):
+        t2 = t1 * (1 - 1e-4)
+    return [(t1, (t1 - ld) / (t1 - t2)), (t2, (ld - t2) / (t1 - t2))]
+
+
+def simulate_row(row, op: np.ndarray, dt: float) -> np.ndarray:
+    """The row's model (gain included) driven by ``op - op[0]`` from rest. [%]
+
+    Parameters
+    ----------
+    row : LoopRow
+        fopdt, sopdt or ipdt row.
+    op : ndarray
+        Logged op. [%]
+    dt : float
+        Sample interval. [s]
+    """
+    u = op - op[0]
+    y = np.zeros(len(u))
+    for tau, w in row_modes(row):
+        if tau == 0.0:                     # a static share (no lag): the held input, delayed
+            q = float(row.dead_time or 0.0) / dt
+            d = int(math.floor(q + 1e-12)) + (1 if q - math.floor(q + 1e-12) > 1e-12 else 0)
+            y += w * np.concatenate([np.zeros(min(d, len(u))), u[:max(len(u) - d, 0)]])
+            continue
+        if math.isinf(tau):
+            y += w * _run("ipdt", (), float(row.dead_time or 0.0), dt, u)
+        else:
+            y += w * _run("fopdt", (tau,), float(row.dead_time or 0.0), dt, u)
+    return float(row.gain) * y
+
+
+def _fit_offsets(row, y: np.ndarray, s: np.ndarray, dt: float) -> np.ndarray:
+    cols = [np.ones_like(s)]
+    if row.model == "ipdt":
+        cols.append(np.arange(len(s)) * dt)
+    X = np.column_stack(cols)
+    coef = np.linalg.lstsq(X, y - s, rcond=None)[0]
+    return s + X @ coef
+
+
+def check_row(row, folder: Path, policy, id_policy: IdentifyPolicy = IdentifyPolicy()) -> ModelCheck:
+    """Check one row's model against its record.
+
+    Parameters
+    ----------
+    row : LoopRow
+        With ``data_file`` set.
+    folder : Path
+        The inventory's folder (the record must lie inside it).
+    policy : Policy
+        ``model_*`` thresholds.
+    id_policy : IdentifyPolicy
+        Identification settings.
+
+    Returns
+    -------
+    ModelCheck
+    """
+    try:
+        full, shown = confine(folder, row.data_file)
+    except PathError as exc:
+        return ModelCheck("record unusable", note=f"data record: {exc}")
+    rec = read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, name=shown)
+    if not rec.usable or "pv" not in rec.signals or "op" not in rec.signals:
+        why = [str(n) for n in rec.notes_of("file", "header", "short")] or \
+            [f"{shown}: needs op and pv columns"]
+        return ModelCheck("record unusable", note="data record: " + "; ".join(why[:5]))
+    ident = identify_record(rec, id_policy)
+    seg = rec.longest()
+    op, pv, dt = seg.values["op"], seg.values["pv"], seg.dt
+    if row.model not in SIMULATED or row.gain is None:
+        return ModelCheck("not checked", identification=ident,
+                          note=f"model type {row.model!r} is not simulated against data; identified model shown")
+    yhat = _fit_offsets(row, ident.pv if len(ident.pv) == len(pv) else pv, simulate_row(row, op, dt), dt)
+    y = ident.pv if len(ident.pv) == len(pv) else pv
+    mfit = nrmse_fit(y, yhat)
+    notes = "; ".join(ident.notes[-3:]) if ident.notes else ""
+    if ident.best is None:
+        return ModelCheck("not identifiable", mfit, yhat, ident, note=notes)
+    b = ident.best
+    inv_k, inv_th = float(row.gain), float(row.dead_time or 0.0)
+    inv_tau = float(row.tau1 or 0.0)
+    kid = b.params["gain"]
+    same_kind = (b.model == "ipdt") == (row.model == "ipdt")
+    ratio = kid / inv_k if same_kind and inv_k != 0 else float("nan")
+    dtd = b.params["dead_time"] - inv_th
+    tr = (b.params["tau1"] / inv_tau) if ("tau1" in b.params and inv_tau > 0 and row.model != "ipdt") else float("nan")
+    reasons = []
+    if not same_kind:
+        reasons.append(f"the data show {'an integrating' if b.model == 'ipdt' else 'a self-regulating'} process, "
+                       f"the model is {row.model}")
+    if np.isfinite(ratio) and not (1 / policy.model_gain_ratio_max <= ratio <= policy.model_gain_ratio_max) \
+            and abs(kid - inv_k) > b.ci95["gain"]:
+        reasons.append(f"gain {kid:.3g} from the data vs {inv_k:.3g} (ratio {ratio:.2f})")
+    if abs(dtd) > max(policy.model_dead_time_tol * inv_th, dt) and abs(dtd) > b.ci95["dead_time"]:
+        reasons.append(f"dead time {b.params['dead_time']:.3g} s from the data vs {inv_th:.3g} s")
+    if np.isfinite(tr) and not (1 / policy.model_tau_ratio_max <= tr <= policy.model_tau_ratio_max) \
+            and abs(b.params["tau1"] - inv_tau) > b.ci95["tau1"]:
+        reasons.append(f"tau1 {b.params['tau1']:.3g} s from the data vs {inv_tau:.3g} s (ratio {tr:.2f})")
+    if mfit < b.fit_pct - policy.model_fit_gap_pct:
+        reasons.append(f"the model fits the data {mfit:.0f} %, the identified one {b.fit_pct:.0f} %")
+    verdict = "disputed" if reasons else "confirmed"
+    return ModelCheck(verdict, mfit, yhat, ident, ratio, dtd, tr, tuple(reasons), notes)
+
+
+def _append(res: pd.DataFrame, label, col: str, text: str, first: bool = False) -> None:
+    old = res.at[label, col] if col in res.columns else ""
+    old = "" if old is None or (isinstance(old, float) and math.isnan(old)) else str(old)
+    res.at[label, col] = (f"{text}; {old}" if first else f"{old}; {text}") if old else text
+
+
+def _identified_row(row, b):
+    p = b.params
+    return replace(row, model=b.model, gain=p["gain"], tau1=p.get("tau1"), tau2=p.get("tau2"),
+                   lead=p.get("tau_lead"), dead_time=p["dead_time"], num=None, den=None)
+
+
+def check_models(audit) -> None:
+    """Pipeline stage: the model check of every row with a ``data_file`` (see the module notes).
+
+    Adds :data:`MODELCHECK_COLUMNS`; stores each :class:`ModelCheck` in
+    ``audit.extras['model_checks'][row.index]``; for disputed models adds the finding and the
+    action "re-identify the model" (not when the loop-health stage suspects the valve: then the
+    data cannot judge the model, and the finding says so). Run after the priority stage.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run; ``results`` and ``extras`` are changed in place.
+    """
+    from ..frequency import evaluate
+    from ..loop import model_from_row
+
+    res = audit.results
+    inv = audit.inventory
+    rows = [r for r in inv.rows if getattr(r, "data_file", None)]
+    if not rows:
+        return
+    folder = Path(inv.path).resolve().parent
+    for c in MODELCHECK_COLUMNS:
+        if c not in res.columns:
+            res[c] = pd.Series([None if c == "id_stable" else ""] * len(res) if c in TEXT_COLUMNS else np.nan,
+                               index=res.index,
+                               dtype=object if c in TEXT_COLUMNS else float)
+    store = audit.extras.setdefault("model_checks", {})
+    id_rows, id_models = [], []
+    for row in rows:
+        label = res.index[row.index]
+        if audit.models[row.index] is None:
+            res.at[label, "model_check"] = "not checked"
+            res.at[label, "data_note"] = "row not evaluated: see message"
+            continue
+        try:
+            mc = check_row(row, folder, inv.policy)
+        except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:   # a bad record, never the run
+            mc = ModelCheck("record unusable", note=f"data record could not be analysed: {exc}")
+        store[row.index] = mc
+        res.at[label, "model_check"] = mc.verdict
+        res.at[label, "model_fit_pct"] = mc.model_fit_pct
+        res.at[label, "gain_ratio"] = mc.gain_ratio
+        res.at[label, "dead_time_diff_s"] = mc.dead_time_diff_s
+        res.at[label, "tau_ratio"] = mc.tau_ratio
+        note = mc.note
+        b = mc.identification.best if mc.identification is not None else None
+        if b is not None:
+            res.at[label, "id_model"] = b.model
+            res.at[label, "id_gain"] = b.params["gain"]
+            res.at[label, "id_gain_ci95"] = b.ci95["gain"]
+            res.at[label, "id_tau1_s"] = b.params.get("tau1", np.nan)
+            res.at[label, "id_tau1_ci95_s"] = b.ci95.get("tau1", np.nan)
+            res.at[label, "id_tau2_s"] = b.params.get("tau2", np.nan)
+            res.at[label, "id_lead_s"] = b.params.get("tau_lead", np.nan)
+            res.at[label, "id_dead_time_s"] = b.params["dead_time"]
+            res.at[label, "id_dead_time_ci95_s"] = b.ci95["dead_time"]
+            res.at[label, "id_fit_pct"] = b.fit_pct
+            res.at[label, "id_fit_holdout_pct"] = b.fit_holdout_pct
+            if row.inner_loop:
+                note = "; ".join(x for x in (note, "cascade outer loop: figures with the identified model not "
+                                                   "computed") if x)
+            else:
+                id_rows.append(row)
+                id_models.append(model_from_row(_identified_row(row, b)))
+        res.at[label, "data_note"] = note
+    figs = evaluate(id_models) if id_models else None
+    for j, row in enumerate(id_rows):
+        label = res.index[row.index]
+        res.at[label, "id_stable"] = bool(figs["stable"].iloc[j])
+        res.at[label, "id_ms"] = figs["ms"].iloc[j]
+        res.at[label, "id_gm_db"] = figs["gm_db"].iloc[j]
+        res.at[label, "id_pm_deg"] = figs["pm_deg"].iloc[j]
+    for row in rows:
+        mc = store.get(row.index)
+        if mc is None or mc.verdict != "disputed":
+            continue
+        label = res.index[row.index]
+        stuck = res.at[label, "valve_sticking"] if "valve_sticking" in res.columns else None
+        if stuck is not None and stuck is not pd.NA and bool(stuck):
+            # loop health (audit.plantdata.health) suspects the valve: the logged op is not where the valve is
+            _append(res, label, "findings", "the data disagree with the model (" + "; ".join(mc.reasons) + "), "
+                    "but the valve is suspected sticking: the logged op is not the valve's position, so the data "
+                    "cannot judge the model; check the valve first")
+            continue
+        words = "the data dispute the model (" + "; ".join(mc.reasons) + "): re-identify"
+        st = res.at[label, "id_stable"]
+        if st is True:
+            words += (f"; with the identified model and the current tuning Ms {res.at[label, 'id_ms']:.3g}, "
+                      f"GM {res.at[label, 'id_gm_db']:.3g} dB, PM {res.at[label, 'id_pm_deg']:.3g} deg")
+        elif st is False:
+            words += "; with the identified model the current tuning is unstable"
+        words += "; model-based figures rest on a disputed model"
+        _append(res, label, "findings", words, first=True)
+        if "action" in res.columns:
+            _append(res, label, "action", "re-identify the model", first=True)
+        if "reason" in res.columns:
+            _append(res, label, "reason", "model disputed by plant data", first=True)
+    if "rank" in res.columns:
+        disputed = res.index[(res["model_check"] == "disputed") & res["rank"].isna()]
+        top = float(np.nanmax(res["rank"].to_numpy(float))) if res["rank"].notna().any() else 0.0
+        order = sorted(disputed, key=lambda i: (str(res.at[i, "tag"]), res.at[i, "row"]))
+        for k, label in enumerate(order):
+            res.at[label, "rank"] = top + 1 + k
