@@ -45,7 +45,8 @@ STAGE_NEEDS: dict[str, tuple[str, ...]] = {
 """Stages whose outputs each stage needs; a stage not listed needs every stage before it."""
 
 JUDGING_STAGES = frozenset({"records", "evaluate", "cascade", "residuals", "residual_check"})
-"""Stages that decide a row's status: a row they did not finish cannot pass."""
+"""Stages that decide a row's status: a row they did not finish cannot pass (so may a stage not in
+:data:`STAGE_NEEDS`: it is treated as judging until its owner lists it)."""
 
 _UNJUDGED_STATUS = "not evaluated"
 _KEEP = ("passes", "marginal")
@@ -178,7 +179,7 @@ def _unjudge(audit) -> None:
     n = len(res)
     touched: set[int] = set()
     for f in faults_of(audit):
-        if f.stage in JUDGING_STAGES:
+        if f.stage in JUDGING_STAGES or f.stage not in STAGE_NEEDS:   # a stage not listed may judge
             touched.update(range(n) if f.rows is None else f.rows)
     for i in sorted(touched):
         if str(res.iat[i, res.columns.get_loc("status")]) in _KEEP:
@@ -201,9 +202,10 @@ def finish(audit) -> None:
     from .columns import RESULT_COLUMNS
     res = audit.results
     n = len(res)
-    for c in RESULT_COLUMNS:
-        if c.name not in res.columns:
-            res[c.name] = pd.Series([None] * n, index=res.index, dtype=object)
+    missing = [c.name for c in RESULT_COLUMNS if c.name not in res.columns]
+    if missing:   # added at once (column by column fragments the table)
+        blank = pd.DataFrame({c: pd.Series([None] * n, index=res.index, dtype=object) for c in missing})
+        audit.results = res = pd.concat([res, blank], axis=1)
     status = res["status"].astype(object).tolist()
     res["status"] = [s if isinstance(s, str) and s else
                      ("invalid" if not audit.inventory.rows[i].valid else _UNJUDGED_STATUS)
