@@ -85,7 +85,7 @@ import numpy as np
 import pandas as pd
 
 from .loop import LoopModel, model_from_row
-from .rows import LoopRow, Problem
+from .rows import LoopRow, Problem, tag_key
 
 #: Results columns added by :func:`add_cascade_checks` (documented in :mod:`audit.columns`).
 CASCADE_COLUMNS = ("inner_loop", "cascade_basis", "cascade_ratio", "cascade_ok")
@@ -94,7 +94,7 @@ MAX_LEVELS = 8
 
 
 def _key(tag: str | None) -> str:
-    return (tag or "").strip().casefold()
+    return tag_key(tag)
 
 
 @dataclass(frozen=True)

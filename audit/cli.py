@@ -2,12 +2,17 @@
 
 ``main(argv)`` takes a list and returns the exit code, so tests call it directly.
 Exit codes of ``run``: 0 every loop passes (marginal included), 1 any loop is
-unstable, fails or is invalid, 2 the inventory itself cannot be read (one line,
-no traceback).
+unstable, fails or is invalid, 2 a mistake the user can fix: the inventory, an
+option, the output folder or the history cannot be used (one line, no traceback;
+nothing is changed), 3 an internal fault of the tool (a bug: one line, details with
+``PLANT_AUDIT_DEBUG=1``).
 """
 
 from __future__ import annotations
 
+import datetime as _dt
+import errno
+import math
 import sys
 import time
 from pathlib import Path
@@ -15,6 +20,7 @@ from pathlib import Path
 import click
 
 from . import __version__
+from .limits import MAX_ROWS
 
 
 class UserError(Exception):
@@ -49,6 +55,31 @@ class Progress:
             sys.stderr.write(f"\r[{'#' * 30}] done in {time.perf_counter() - self.t0:.1f} s{' ' * 10}\n")
 
 
+class PositiveFinite(click.ParamType):
+    """A number > 0 and finite (``inf``, ``nan``, 0 and negatives are refused)."""
+
+    name = "positive number"
+
+    def convert(self, value, param, ctx):  # noqa: ANN001, D102 - click's interface
+        try:
+            x = float(value)
+        except (TypeError, ValueError):
+            self.fail(f"{value!r} is not a number", param, ctx)
+        if not (math.isfinite(x) and x > 0):
+            self.fail(f"{value!r} must be a finite number above 0", param, ctx)
+        return x
+
+
+def _iso_date(ctx, param, value):  # noqa: ANN001 - click callback
+    """``--date``: a real calendar date YYYY-MM-DD, or None."""
+    if value is None or value == "":
+        return None
+    try:
+        return _dt.date.fromisoformat(value).isoformat()
+    except ValueError as exc:
+        raise click.BadParameter(f"{value!r} is not a date YYYY-MM-DD ({exc})") from None
+
+
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="plant-audit")
 def cli() -> None:
@@ -60,7 +91,8 @@ def cli() -> None:
 @click.option("--out", "out_dir", default="audit-out", show_default=True, help="Folder for the results.")
 @click.option("--site", default="", help="Site name shown in the report and used in the history.")
 @click.option("--title", default="Control loop audit", show_default=True, help="Report title.")
-@click.option("--date", "date", default=None, help="Audit date YYYY-MM-DD (default today; fixes output for reproducible runs).")
+@click.option("--date", "date", default=None, callback=_iso_date,
+              help="Audit date YYYY-MM-DD (default today; fixes output for reproducible runs).")
 @click.option("--paper", type=click.Choice(["a4", "letter"]), default="a4", show_default=True)
 @click.option("--detail", type=click.Choice(["failing", "all"]), default="failing", show_default=True,
               help="Which loops get a detail section in the report.")
@@ -72,7 +104,10 @@ def cli() -> None:
 @click.option("--history", "history", default=None, help="History database: a path (SQLite) or a URL.")
 @click.option("--no-history", is_flag=True, help="Do not record this audit in the history.")
 @click.option("--quiet", is_flag=True, help="No progress output.")
-def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, jobs, history, no_history, quiet):
+@click.option("--force", is_flag=True, help="Write into a folder that holds the inventory, or replace files "
+                                            "of the output names that plant-audit did not write.")
+def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, jobs, history, no_history, quiet,
+        force):
     """Evaluate every loop of INVENTORY and write results and report into --out."""
     from .pipeline import AuditOptions
     from .runner import run_audit
@@ -80,7 +115,7 @@ def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, j
     opts = AuditOptions(out_dir=out_dir, site=site, title=title, date=date, paper=paper, detail=detail,
                         propose=propose, pdf=not no_pdf, jobs=jobs, quiet=quiet, history=history,
                         record_history=not no_history)
-    audit, written = run_audit(inventory, opts)
+    audit, written = run_audit(inventory, opts, force=force)
     if not quiet:
         counts = audit.results["status"].value_counts()
         summary = ", ".join(f"{counts.get(s, 0)} {s}" for s in ("passes", "marginal", "fails", "unstable", "invalid"))
@@ -110,17 +145,19 @@ def check(inventory, as_json):
 
 @cli.command()
 @click.argument("path", type=click.Path(dir_okay=False))
-def template(path):
+@click.option("--force", is_flag=True, help="Replace PATH if it exists.")
+def template(path, force):
     """Write a ready-to-fill inventory workbook to PATH (.xlsx)."""
     from .template import write_template
 
-    write_template(path)
+    write_template(path, force=force)
     click.echo(f"template written: {path}")
 
 
 @cli.command()
 @click.argument("record", type=click.Path(dir_okay=False))
-@click.option("--allowed", type=float, required=True, help="Largest acceptable deviation [% of PV range].")
+@click.option("--allowed", type=PositiveFinite(), required=True,
+              help="Largest acceptable deviation [% of PV range], a number above 0.")
 @click.option("--plot", "plot", default=None, help="Where to write the spectrum plot (SVG).")
 def disturbance(record, allowed, plot):
     """Derive the rejection requirement from a disturbance RECORD (CSV)."""
@@ -130,14 +167,15 @@ def disturbance(record, allowed, plot):
 
 
 @cli.command()
-@click.option("--loops", type=click.IntRange(1, 1_000_000), required=True, help="Number of loops.")
-@click.option("--seed", type=int, default=1, show_default=True)
+@click.option("--loops", type=click.IntRange(1, MAX_ROWS), required=True, help="Number of loops.")
+@click.option("--seed", type=click.IntRange(min=0), default=1, show_default=True)
+@click.option("--force", is_flag=True, help="Replace PATH if it exists.")
 @click.argument("path", type=click.Path(dir_okay=False))
-def generate(loops, seed, path):
+def generate(loops, seed, force, path):
     """Write a seeded synthetic inventory of --loops loops to PATH (.xlsx or .csv)."""
     from .generate import write_synthetic_inventory
 
-    write_synthetic_inventory(path, loops, seed)
+    write_synthetic_inventory(path, loops, seed, force=force)
     click.echo(f"{loops} synthetic loops written: {path}")
 
 
@@ -153,6 +191,12 @@ def history(db, tag, site, as_csv):
     raise SystemExit(history_command(db, tag, as_csv, site=site))
 
 
+_ENVIRONMENT_ERRNOS = frozenset({errno.ENOENT, errno.EACCES, errno.EPERM, errno.ENOSPC, errno.EDQUOT, errno.EROFS,
+                                 errno.EISDIR, errno.ENOTDIR, errno.EEXIST, errno.ENAMETOOLONG, errno.EFBIG,
+                                 errno.EXDEV, errno.EBUSY, errno.ENOTEMPTY, errno.ELOOP, errno.EIO})
+"""What the file system answers about the user's paths and disks (exit 2), as opposed to a fault of ours."""
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line and return the exit code.
 
@@ -163,6 +207,7 @@ def main(argv: list[str] | None = None) -> int:
     """
     from .history import HistoryError
     from .inventory import InventoryError
+    from .output import FileRefused
 
     try:
         cli.main(args=list(sys.argv[1:] if argv is None else argv), prog_name="plant-audit", standalone_mode=False)
@@ -175,16 +220,27 @@ def main(argv: list[str] | None = None) -> int:
     except click.ClickException as exc:
         exc.show()
         return 2
-    except (InventoryError, HistoryError, UserError, FileNotFoundError, PermissionError, IsADirectoryError) as exc:
-        click.echo(f"plant-audit: {exc}", err=True)
+    except (InventoryError, HistoryError, UserError, FileRefused) as exc:
+        click.echo(f"plant-audit: {' '.join(str(exc).split())}", err=True)  # one line, whatever a driver said
+        return 2
+    except OSError as exc:
+        if exc.errno not in _ENVIRONMENT_ERRNOS:
+            return _internal(exc)
+        where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
+        click.echo(f"plant-audit: {where}{exc.strerror or exc}", err=True)
         return 2
     except Exception as exc:  # noqa: BLE001 - the user gets one line; details with PLANT_AUDIT_DEBUG=1
-        import os
-        if os.environ.get("PLANT_AUDIT_DEBUG"):
-            raise
-        click.echo(f"plant-audit: internal error: {type(exc).__name__}: {exc} "
-                   "(set PLANT_AUDIT_DEBUG=1 for details)", err=True)
-        return 3
+        return _internal(exc)
+
+
+def _internal(exc: BaseException) -> int:
+    """Report an internal fault in one line (re-raised with ``PLANT_AUDIT_DEBUG=1``); exit code 3."""
+    import os
+    if os.environ.get("PLANT_AUDIT_DEBUG"):
+        raise exc
+    click.echo(f"plant-audit: internal error: {type(exc).__name__}: {exc} "
+               "(set PLANT_AUDIT_DEBUG=1 for details)", err=True)
+    return 3
 
 
 if __name__ == "__main__":

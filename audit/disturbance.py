@@ -37,18 +37,23 @@ from __future__ import annotations
 
 import csv
 import datetime as _dt
+import io
+from array import array
 import math
 import sys
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Sequence
+from typing import Iterable, Sequence
 
 import numpy as np
 import pandas as pd
 from scipy.signal import fftconvolve, welch
 
+from .limits import MAX_RECORD_BYTES, MAX_RECORD_LINES, NotARegularFile, open_regular
 from .loop import LoopModel
 from .policy import Policy
+from .ranges import RECORD_INTERVAL, RECORD_VALUE
+from .rows import printable
 from . import timedomain as td
 
 TIME_COLUMNS = ("time_s", "time_min", "timestamp")
@@ -63,7 +68,13 @@ RESIDUAL_COLUMNS = ("residual_amplitude", "residual_std", "residual_std_freq", "
 
 
 class RecordError(ValueError):
-    """A disturbance record that cannot be used; the message lists every problem found."""
+    """A disturbance record that cannot be used; the message lists every problem found.
+
+    Control characters in the message (from the record's headers or cells) are escaped: it is printed.
+    """
+
+    def __init__(self, message: str = "") -> None:
+        super().__init__(printable(message))
 
 
 @dataclass(frozen=True)
@@ -127,6 +138,10 @@ class RecordAnalysis:
     dt : float
         Sample interval of the record. [s]
     notes : tuple of str
+    unusable : str
+        Why the record cannot set or judge a requirement (empty when it can): an interval or
+        values outside their ranges (:mod:`audit.ranges`), a band edge the record cannot resolve,
+        statistics that are not finite.
     """
 
     band_rad_s: float
@@ -143,6 +158,7 @@ class RecordAnalysis:
     detrended: np.ndarray
     dt: float
     notes: tuple[str, ...] = ()
+    unusable: str = ""
 
 
 @dataclass(frozen=True)
@@ -233,18 +249,76 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
         Naming the file, the line and the column of every problem (at most 20 shown).
     """
     shown = name or str(path)
-    try:
-        with open(path, newline="", encoding="utf-8-sig") as fh:
-            rows = list(csv.reader(fh))
-    except FileNotFoundError:
-        raise RecordError(f"{shown}: file not found") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise RecordError(f"{shown}: cannot be read as UTF-8 text ({type(exc).__name__})") from None
-    lines = [(i + 1, r) for i, r in enumerate(rows)
-             if any(c.strip() for c in r) and not r[0].lstrip().startswith("#")]
-    if not lines:
+    with _record_lines(path, shown) as lines:
+        return _read_lines(lines, shown, pv_lo, pv_hi, policy)
+
+
+class _record_lines:
+    """Context manager: the record's non-blank, non-comment lines as (line number, cells), streamed.
+
+    Only a regular file within ``MAX_RECORD_BYTES`` is opened (a FIFO or device is refused, not
+    read); more than ``MAX_RECORD_LINES`` lines, undecodable text or a malformed CSV line raise
+    RecordError naming the file and line.
+    """
+
+    def __init__(self, path: str | Path, shown: str) -> None:
+        self.path, self.shown = path, shown
+
+    def __enter__(self) -> Iterable[tuple[int, list[str]]]:
+        shown = self.shown
+        try:
+            raw = open_regular(self.path, MAX_RECORD_BYTES, "record", name=shown)
+        except FileNotFoundError:
+            raise RecordError(f"{shown}: file not found") from None
+        except NotARegularFile as exc:
+            raise RecordError(str(exc)) from None
+        except OSError as exc:
+            raise RecordError(f"{shown}: cannot be read ({exc.strerror or type(exc).__name__})") from None
+        self.fh = io.TextIOWrapper(raw, encoding="utf-8-sig", newline="")
+        return self._lines()
+
+    def _lines(self) -> Iterable[tuple[int, list[str]]]:
+        shown = self.shown
+        reader = csv.reader(self.fh)
+        n = 0
+        try:
+            for r in reader:
+                n = reader.line_num
+                if n > MAX_RECORD_LINES:
+                    raise RecordError(f"{shown}: more than {MAX_RECORD_LINES:,} lines; at most {MAX_RECORD_LINES:,} "
+                                      "are read (decimate the record or split it)")
+                if any(c.strip() for c in r) and not r[0].lstrip().startswith("#"):
+                    yield n, r
+        except UnicodeDecodeError as exc:
+            raise RecordError(f"{shown}: cannot be read as UTF-8 text ({type(exc).__name__})") from None
+        except csv.Error as exc:
+            raise RecordError(f"{shown} line {reader.line_num}: not a readable CSV line ({exc})") from None
+
+    def __exit__(self, *exc: object) -> None:
+        self.fh.close()
+
+
+class _Problems(list):
+    """A list of messages that keeps the first ``MAX_SHOWN + 1`` and counts all (``total``)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.total = 0
+
+    def append(self, message: str) -> None:
+        self.total += 1
+        if len(self) <= MAX_SHOWN:
+            super().append(message)
+
+
+def _read_lines(lines: Iterable[tuple[int, list[str]]], shown: str, pv_lo: float | None, pv_hi: float | None,
+                policy: Policy) -> Record:
+    """:func:`read_record` on the streamed lines of the record."""
+    lines = iter(lines)
+    first = next(lines, None)
+    if first is None:
         raise RecordError(f"{shown}: empty file; expected a header line such as 'time_s,value'")
-    hline, header = lines[0]
+    hline, header = first
     keys = [h.strip().lower() for h in header]
     tcols = [k for k in keys if k in TIME_COLUMNS]
     vcols = [k for k in keys if k in VALUE_COLUMNS]
@@ -260,14 +334,14 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
             raise RecordError(f"{shown}: column value_eu needs the row's pv_lo and pv_hi (pv_hi > pv_lo) "
                               f"to convert to % of range")
         notes.append(f"converted from engineering units with range {pv_lo:g} to {pv_hi:g}")
-    problems: list[str] = []
-    ts: list[float] = []
-    vs: list[float] = []
-    lnums: list[int] = []
+    problems = _Problems()
+    ts = array("d")   # compact while streaming: 8 bytes a sample
+    vs = array("d")
+    lnums = array("q")
     tz_seen: set[bool] = set()
     t0: _dt.datetime | None = None
     start = ""
-    for ln, row in lines[1:]:
+    for ln, row in lines:
         where = f"{shown} line {ln}"
         if len(row) <= max(ti, vi):
             problems.append(f"{where}: {len(row)} cells, expected {len(keys)}")
@@ -308,7 +382,7 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
         for k in np.flatnonzero(dts <= 0)[:MAX_SHOWN + 1]:
             problems.append(f"{shown} line {lnums[k + 1]} ({tname}): time not increasing "
                             f"({t[k + 1]:g} s after {t[k]:g} s, relative to the first sample)")
-    n_total = len(problems)
+    n_total = problems.total
     if not problems:
         if len(t) < policy.min_samples:
             problems.append(f"{shown}: {len(t)} sample{'s' if len(t) != 1 else ''}; "
@@ -321,7 +395,7 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
                 problems.append(f"{shown} lines {lnums[k]}-{lnums[k + 1]} ({tname}): gap of {dts[k]:g} s, "
                                 f"more than {policy.max_gap_s:g} x the median interval {med:g} s")
     if problems:
-        n_total = len(problems)
+        n_total = problems.total
         shown_p = problems[:MAX_SHOWN]
         more = f"; ... and {n_total - MAX_SHOWN} more" if n_total > MAX_SHOWN else ""
         raise RecordError("; ".join(shown_p) + more)
@@ -332,7 +406,11 @@ def read_record(path: str | Path, pv_lo: float | None = None, pv_hi: float | Non
     med = float(np.median(dts))
     jitter = float(np.max(np.abs(dts - med)) / med)
     if jitter > policy.uniform_tolerance:
-        n = int(math.floor(t[-1] / med + 1e-9)) + 1
+        span = t[-1] / med  # samples after resampling, less one [-]
+        if not span < MAX_RECORD_LINES:
+            raise RecordError(f"{shown}: resampling every {med:g} s over {t[-1]:g} s would give {span:.3g} "
+                              f"samples; at most {MAX_RECORD_LINES:,} are used (decimate the record)")
+        n = int(math.floor(span + 1e-9)) + 1
         tu = np.arange(n) * med
         v = np.interp(tu, t, v)
         notes.append(f"sampling not uniform (intervals {dts.min():g} to {dts.max():g} s); "
@@ -411,6 +489,11 @@ def analyse_record(record: Record, allowed_amplitude: float | None, policy: Poli
     policy : Policy
         ``band_energy_fraction`` applies. [-]
     """
+    bad = _out_of_range(record)
+    if bad:
+        nan = float("nan")
+        return RecordAnalysis(nan, nan, nan, nan, nan, nan, np.zeros(0), np.zeros(0), nan, False,
+                              allowed_amplitude, np.zeros(0), record.dt, tuple(record.notes) + (bad,), bad)
     d, slope = detrend(record.t, record.values)
     n = len(d)
     seg = welch_segment(n)
@@ -422,16 +505,32 @@ def analyse_record(record: Record, allowed_amplitude: float | None, policy: Poli
     energy = psd * dw
     total = float(energy.sum())
     notes = list(record.notes)
-    if total > 0:
+    unusable = ""
+    if total > 0 and math.isfinite(total):
         cum = np.cumsum(energy) / total
         k = int(np.argmax(cum >= policy.band_energy_fraction - 1e-12))
         band = float(w[k])
+        if not band > 0:
+            # the variance lies below the lowest frequency the record resolves: no band edge can be read
+            band = float("nan")
+            unusable = (f"{100 * float(cum[0]):.3g} % of the variance lies below the lowest frequency the record "
+                        f"resolves ({float(w[1]) if len(w) > 1 else float('nan'):.3g} rad/s), more than "
+                        f"band_energy_fraction {policy.band_energy_fraction:g}: the record is too short for this "
+                        f"disturbance (log a longer one); no band edge derived")
+    elif total > 0:
+        band = float("nan")
     else:
         band = float("nan")
         notes.append("record is constant after trend removal: no band")
     amp = amplitude_of(d)
     std = float(np.std(d))
     peak = float(np.max(np.abs(d)))
+    if not all(math.isfinite(x) for x in (amp, std, peak, slope, total)):
+        unusable = "the record's statistics are not finite (values too large or too uneven to analyse)"
+    if unusable:
+        notes.append(unusable)
+        return RecordAnalysis(band, float("nan"), amp, std, peak, slope, w, psd, dw, False,
+                              allowed_amplitude, d, record.dt, tuple(notes), unusable)
     if allowed_amplitude is None or not (allowed_amplitude > 0):
         att = float("nan")
         need = False
@@ -443,6 +542,19 @@ def analyse_record(record: Record, allowed_amplitude: float | None, policy: Poli
             notes.append(f"no attenuation needed: amplitude {amp:.3g} % <= allowed {allowed_amplitude:.3g} %")
     return RecordAnalysis(band, att, amp, std, peak, slope, w, psd, dw, need,
                           allowed_amplitude, d, record.dt, tuple(notes))
+
+
+def _out_of_range(record: Record) -> str:
+    """Why a record's interval or values lie outside their ranges (:mod:`audit.ranges`); empty when they do not."""
+    if not RECORD_INTERVAL.accepts(float(record.dt)):
+        return (f"sample interval {record.dt:g} s outside the range accepted ({RECORD_INTERVAL.describe()}): "
+                f"check the time column and its unit")
+    v = np.asarray(record.values, float)
+    big = float(np.max(np.abs(v))) if v.size else 0.0
+    if not RECORD_VALUE.accepts(big):
+        return (f"values up to {big:.3g} % of range, outside the range accepted ({RECORD_VALUE.describe()}): "
+                f"check the value column and its unit")
+    return ""
 
 
 # --------------------------------------------------------------------------- residual
@@ -460,6 +572,23 @@ def _kernels(models: Sequence[LoopModel], dts: np.ndarray, lengths: np.ndarray
     if batch is None:
         return out, s0, notes
     ok = [i for i in range(n) if i not in errors]
+    # a delay line of more than N_CAP record intervals (a record sampled far faster than the loop's
+    # dead time) cannot be simulated on the record's own step: leave that loop out, say so
+    with np.errstate(invalid="ignore"):
+        dmax = np.nan_to_num(np.nanmax(np.where(np.isnan(batch.delays), 0.0, batch.delays), axis=1), nan=0.0) \
+            if batch.delays.size else np.zeros(len(ok))
+    too_fine = [i for j, i in enumerate(ok) if dmax[j] / dts[i] > td.N_CAP]
+    if too_fine:
+        for i in too_fine:
+            notes[i] = (f"residual not simulated: the record's interval {dts[i]:.3g} s is more than "
+                        f"{td.N_CAP:,} times shorter than the loop's dead time")
+        keep = [i for i in ok if i not in set(too_fine)]
+        if not keep:
+            return out, s0, notes
+        sub_out, sub_s0, sub_notes = _kernels([models[i] for i in keep], dts[keep], lengths[keep])
+        for j, i in enumerate(keep):
+            out[i], s0[i], notes[i] = sub_out[j], sub_s0[j], sub_notes[j]
+        return out, s0, notes
     s0[ok] = td.final_values(batch)[0]
     tc = np.array([td.characteristic_time(models[i]) for i in ok])
     dt = dts[ok]
@@ -592,6 +721,7 @@ def analyse_records(audit) -> None:
         if c not in res.columns:
             res[c] = "" if c == "dist_note" else np.nan
     res["dist_note"] = res["dist_note"].astype(object)
+    unjudged = audit.extras.setdefault("records_unjudged", {})
     for row in inv.rows:
         if not row.disturbance_file:
             continue
@@ -603,8 +733,15 @@ def analyse_records(audit) -> None:
             msg = f"disturbance record: {exc}"
             res.at[label, "dist_note"] = msg
             _append(res, label, "message", msg)
+            unjudged[row.index] = msg
             continue
         an = analyse_record(rec, row.allowed_amplitude, policy)
+        if an.unusable:
+            msg = f"disturbance record {rec.name}: {an.unusable}"
+            res.at[label, "dist_note"] = "; ".join(list(an.notes[:-1]) + [msg])
+            _append(res, label, "message", msg)
+            unjudged[row.index] = msg
+            continue
         store[row.index] = an
         notes = list(an.notes)
         if row.band_rad_s is not None or row.attenuation_db is not None:
@@ -621,6 +758,38 @@ def analyse_records(audit) -> None:
         res.at[label, "dist_peak"] = an.peak
         res.at[label, "dist_trend_per_s"] = an.trend
         res.at[label, "dist_note"] = "; ".join(notes)
+
+
+def judge_unusable_records(audit) -> None:
+    """A row whose disturbance record could not be used has a requirement that was not judged: not met.
+
+    Such a row (a record named with an allowed amplitude, but unreadable or unusable: see
+    ``dist_note``) is reported ``fails`` with a finding saying why, unless it is already invalid,
+    unstable or failing; the status it had before is kept in
+    ``audit.extras['records_unjudged_status']`` for the proposals (the tuning may be fine: the fix
+    is the record).
+
+    Parameters
+    ----------
+    audit : Audit
+        The run, after the frequency stage; ``status`` and ``findings`` of its ``results`` change in place.
+    """
+    res = audit.results
+    unjudged = audit.extras.get("records_unjudged", {})
+    before = audit.extras.setdefault("records_unjudged_status", {})
+    rows = audit.inventory.rows
+    for i, msg in unjudged.items():
+        row = rows[i]
+        if row.allowed_amplitude is None or "status" not in res.columns:
+            continue
+        st = str(res.at[i, "status"])
+        if st in ("invalid", "unstable"):
+            continue
+        words = "disturbance requirement not judged: the record could not be used (see dist_note); fix the record"
+        old = str(res.at[i, "findings"] or "")
+        res.at[i, "findings"] = f"{words}; {old}" if old else words
+        before[i] = st
+        res.at[i, "status"] = "fails"
 
 
 def add_residuals(audit) -> None:
@@ -711,7 +880,8 @@ def disturbance_command(path: str, allowed: float, out: str | None = None) -> in
 
     Prints the derived requirement and writes the spectrum plot (default
     ``<stem>-spectrum.svg`` beside the record). Returns 0, or 2 with a one-line
-    message on stderr for a bad record.
+    message on stderr for a bad or unusable record or an ``allowed`` that is not a
+    positive finite number (0 included: it is not "not given").
 
     Parameters
     ----------
@@ -727,12 +897,19 @@ def disturbance_command(path: str, allowed: float, out: str | None = None) -> in
     int
         Exit code: 0 on success, 2 for a bad record or an unwritable plot.
     """
+    if not (isinstance(allowed, (int, float)) and math.isfinite(allowed) and allowed > 0):
+        print(f"plant-audit disturbance: --allowed must be a positive number of % of PV range, got {allowed!r}",
+              file=sys.stderr)
+        return 2
     try:
         rec = read_record(path)
     except RecordError as exc:
         print(f"plant-audit disturbance: {exc}", file=sys.stderr)
         return 2
     an = analyse_record(rec, allowed)
+    if an.unusable:
+        print(f"plant-audit disturbance: {rec.name}: {an.unusable}", file=sys.stderr)
+        return 2
     target = Path(out) if out else Path(path).with_name(Path(path).stem + "-spectrum.svg")
     print(f"record          {rec.name}  ({len(rec.t)} samples every {rec.dt:g} s)")
     print(f"band wd         {an.band_rad_s:.4g} rad/s  (resolution {an.resolution_rad_s:.3g} rad/s)")
@@ -743,8 +920,15 @@ def disturbance_command(path: str, allowed: float, out: str | None = None) -> in
     print(f"trend           {an.trend:.4g} % of range per s (removed)")
     for note in an.notes:
         print(f"note            {note}")
+    from .output import FileRefused, write_file_safely
     try:
-        plot_spectrum(an, target, title=Path(path).name)
+        if target.exists() and target.resolve() == Path(path).resolve():
+            raise FileRefused(f"{target} is the record itself; give another --plot path")
+        write_file_safely(target, lambda tmp: plot_spectrum(an, tmp, title=Path(path).name), force=True,
+                          suffixes=(".svg",))
+    except FileRefused as exc:
+        print(f"plant-audit disturbance: {exc}", file=sys.stderr)
+        return 2
     except OSError as exc:
         print(f"plant-audit disturbance: cannot write {target}: {exc.strerror}", file=sys.stderr)
         return 2

@@ -25,13 +25,13 @@ from __future__ import annotations
 
 import gc
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Sequence
 
 import numpy as np
 import pandas as pd
 
-from .loop import LoopModel
+from .loop import LoopModel, Rational
 from .timedomain import controller_poly
 
 #: |L| below which the tail of the frequency axis is not sampled densely. [-]
@@ -676,8 +676,8 @@ def _interior(same: np.ndarray) -> np.ndarray:
 # The grid
 
 
-def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
-    """Per-entry frequency ranges and point counts."""
+def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray, cap: bool = True):
+    """Per-entry frequency ranges and point counts (``cap=False``: counts before the cap MAX_POINTS)."""
     c_min, c_max = st.c_min[ents], st.c_max[ents]
     w_lo = 1e-3 * c_min
     # coarse magnitude scan to find where |L| has fallen to the tail level for good; it starts at
@@ -720,9 +720,12 @@ def _grids(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray):
     w_a = np.minimum(0.1 * c_min, w_mid)
     n_low = np.where(w_a > w_lo, np.ceil(np.log(w_a / w_lo) / LOW_STEP), 0).astype(int)
     n_log = n_low + np.ceil(np.log(w_mid / np.maximum(w_a, w_lo)) / h_log).astype(int) + 1
-    n_lin = np.where(w_hi > w_b, np.ceil((w_hi - w_mid) * tdelay[ents] / DELAY_STEP), 0).astype(int)
+    with np.errstate(invalid="ignore", over="ignore"):
+        # clipped before the cast: an extreme delay times bandwidth must not wrap around to a negative count
+        n_lin_f = np.where(w_hi > w_b, np.ceil((w_hi - w_mid) * tdelay[ents] / DELAY_STEP), 0)
+    n_lin = np.nan_to_num(np.minimum(n_lin_f, 1e15), nan=1e15).astype(np.int64)
     over = (n_log + n_lin) > MAX_POINTS
-    if over.any():
+    if over.any() and cap:
         n_lin = np.where(over, np.maximum(MAX_POINTS - n_log, 0), n_lin)
     return w_lo, w_hi, w_mid, h_log, n_log, n_lin, over, np.maximum(w_a, w_lo), n_low
 
@@ -826,7 +829,7 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     out["_z_raw"] = z
     notes = np.full(n, "", object)
     notes[neutral] = "high-frequency loop gain |L(inf)| >= 1 with dead time: not stable"
-    notes[st.axis_poles[ents] > 0] = "open-loop poles on the imaginary axis (other than integrators): treated as not stable"
+    notes[st.axis_poles[ents] > 0] = AXIS_NOTE
     notes[min_dist < 1e-9] = "L(jw) passes through -1: marginally stable, treated as not stable"
     notes[capped] = "frequency grid capped; figures at very high frequency may be incomplete"
     notes[z < 0] = "Nyquist count inconsistent (numerical); treated as not stable"
@@ -1266,6 +1269,42 @@ def _no_gc_pauses():
             gc.enable()
 
 
+def grid_points(models: Sequence[LoopModel | None]) -> np.ndarray:
+    """Points each loop's frequency grid would need before the cap :data:`MAX_POINTS`.
+
+    The same sizing as :func:`evaluate` (``_grids``), so that the inventory's validation can refuse
+    the loops the engine cannot evaluate (dead time times the highest frequency where abs(L) still
+    matters far too large); loops above the cap but below the refusal are evaluated on a capped grid
+    with an ``engine_note``.
+
+    Parameters
+    ----------
+    models : sequence of LoopModel or None
+        The loops; None gives False.
+
+    Returns
+    -------
+    ndarray of float
+        One count per model (0 for None). [-]
+    """
+    models = list(models)
+    out = np.zeros(len(models))
+    if not any(m is not None for m in models):
+        return out
+    batch, top = build_batch(models)
+    st = _static(batch)
+    tdel = _total_delay(batch)
+    ne = batch.num.shape[0]
+    count = np.zeros(ne)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        for chunk in np.array_split(np.arange(ne), int(np.ceil(ne / CHUNK_LOOPS))):
+            g = _grids(batch, chunk, st, tdel, cap=False)
+            count[chunk] = g[4] + g[5]
+    ok = top >= 0
+    out[ok] = count[top[ok]]
+    return out
+
+
 def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFrame:
     """Exact frequency-domain figures of many loops.
 
@@ -1286,7 +1325,76 @@ def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFram
         ``band_l_db`` [dB], ``engine_note`` (text).
     """
     with _no_gc_pauses():
-        return _evaluate(models, band_rad_s)
+        df = _evaluate(models, band_rad_s)
+        return _decide_axis_poles(list(models), df, band_rad_s)
+
+
+# ----------------------------------------------------------------------------------------------
+# Open-loop poles on the imaginary axis (other than integrators)
+
+#: Engine note of a loop with open-loop poles on the imaginary axis other than integrators.
+AXIS_NOTE = "open-loop poles on the imaginary axis (other than integrators): treated as not stable"
+#: Relative shift of such poles, off the axis to either side, for the two-sided stability check. [-]
+AXIS_SHIFT = 1e-4
+
+
+def _shift_axis_poles(m: LoopModel, rel: float) -> LoopModel | None:
+    """The loop with its process's imaginary-axis poles (other than 0) moved by ``rel`` x their magnitude
+    along the real axis (rel < 0: into the left half-plane); None when it has none or is a cascade."""
+    if m is None or m.inner is not None:
+        return None
+    den = np.asarray(m.process.rational.den, float)
+    if den.size < 3:
+        return None
+    r = np.roots(den)
+    mag = np.abs(r)
+    tol = 1e-9 * max(1.0, float(mag.max()))
+    axis = (np.abs(r.real) <= tol) & (mag > tol)
+    if not axis.any():
+        return None
+    r = np.where(axis, 1j * r.imag + rel * mag, r)
+    new = np.real(np.poly(r)) * den[0]
+    proc = replace(m.process, rational=Rational.of(m.process.rational.num, new))
+    return replace(m, process=proc)
+
+
+def _decide_axis_poles(models: list, df: pd.DataFrame, band_rad_s) -> pd.DataFrame:
+    """Stability of loops with open-loop poles on the imaginary axis, decided instead of assumed.
+
+    Closed-loop poles depend continuously on the open-loop ones, so when the closed loop has no pole
+    on the imaginary axis, moving the axis poles a little off it, to either side, changes nothing:
+    the loop is evaluated twice, with them moved left and moved right by :data:`AXIS_SHIFT` of their
+    magnitude (the right-hand ones then count in P of the Nyquist argument). When both agree, that is
+    the verdict (figures of the left-shifted loop, with a note); when they differ a closed-loop pole
+    lies on or near the axis, and the loop stays not stable. Cascades keep the engine's rule.
+    """
+    idx = [i for i, note in enumerate(df["engine_note"]) if note == AXIS_NOTE]
+    pairs = [(i, _shift_axis_poles(models[i], -AXIS_SHIFT), _shift_axis_poles(models[i], AXIS_SHIFT)) for i in idx]
+    pairs = [(i, a, b) for i, a, b in pairs if a is not None and b is not None]
+    if not pairs:
+        return df
+    band = np.full(len(models), np.nan) if band_rad_s is None else \
+        np.array([np.nan if b is None else float(b) for b in band_rad_s], float)
+    sub_band = np.concatenate([band[[i for i, _, _ in pairs]]] * 2)
+    both = _evaluate([a for _, a, _ in pairs] + [b for _, _, b in pairs], sub_band)
+    n = len(pairs)
+    df = df.copy()
+    for j, (i, _, _) in enumerate(pairs):
+        left, right = both.iloc[j], both.iloc[n + j]
+        clean = not left["engine_note"] and not right["engine_note"]
+        if clean and bool(left["stable"]) == bool(right["stable"]):
+            keep_open = df.at[i, "rhp_open"]
+            for c in FIGURE_COLUMNS:
+                df.at[i, c] = left[c]
+            df.at[i, "rhp_open"] = keep_open
+            df.at[i, "engine_note"] = (
+                f"open-loop poles on the imaginary axis: stability decided with them moved off the axis by "
+                f"{AXIS_SHIFT:g} of their magnitude to either side (both give {'stable' if left['stable'] else 'unstable'}); "
+                f"figures of the loop with them moved left")
+        else:
+            df.at[i, "engine_note"] = ("open-loop poles on the imaginary axis with a closed-loop pole on or near the "
+                                       "axis (moved to either side they disagree): treated as not stable")
+    return df
 
 
 def _evaluate(models, band_rad_s) -> pd.DataFrame:

@@ -29,6 +29,7 @@ from typing import Any
 import numpy as np
 
 from .loop import ideal_to_parallel, series_to_ideal
+from .output import write_file_safely
 
 #: Headers written, in order; every one is a canonical inventory column. [-]
 GENERATED_COLUMNS: tuple[str, ...] = (
@@ -300,39 +301,50 @@ def _cell(v: Any) -> Any:
     return None if v is None or v == "" else v
 
 
-def write_synthetic_inventory(path: str | Path, loops: int, seed: int = 1) -> Path:
+def write_synthetic_inventory(path: str | Path, loops: int, seed: int = 1, force: bool = False) -> Path:
     """Write a seeded synthetic inventory (.xlsx sheet ``loops``, or .csv).
 
     Parameters
     ----------
     path : str or Path
-        Output file; ``.csv`` writes CSV, anything else an .xlsx workbook.
+        Output file, ending in ``.csv`` (CSV) or ``.xlsx`` (a workbook).
     loops : int
         Number of rows. [-]
     seed : int
-        Random seed. [-]
+        Random seed (>= 0). [-]
+    force : bool
+        Replace an existing file (a filled inventory, perhaps); refused without it.
 
     Returns
     -------
     Path
         The file written.
+
+    Raises
+    ------
+    audit.output.FileRefused
+        ``path`` exists (without ``force``), is not a regular file, or has another ending.
     """
     p = Path(path)
-    rows = synthetic_rows(loops, seed)
-    table = ([_cell(r.get(c)) for c in GENERATED_COLUMNS] for r in rows)
-    if p.suffix.lower() == ".csv":
-        with p.open("w", newline="", encoding="utf-8") as fh:
-            w = csv.writer(fh)
-            w.writerow(GENERATED_COLUMNS)
-            for values in table:
-                w.writerow(["" if v is None else v for v in values])
-        return p
-    from openpyxl import Workbook
+    is_csv = p.suffix.lower() == ".csv"
 
-    wb = Workbook(write_only=True)
-    ws = wb.create_sheet("loops")
-    ws.append(list(GENERATED_COLUMNS))
-    for values in table:
-        ws.append(values)
-    wb.save(p)
-    return p
+    def write(tmp: Path) -> None:
+        rows = synthetic_rows(loops, seed)
+        table = ([_cell(r.get(c)) for c in GENERATED_COLUMNS] for r in rows)
+        if is_csv:
+            with tmp.open("w", newline="", encoding="utf-8") as fh:
+                w = csv.writer(fh)
+                w.writerow(GENERATED_COLUMNS)
+                for values in table:
+                    w.writerow(["" if v is None else v for v in values])
+            return
+        from openpyxl import Workbook
+
+        wb = Workbook(write_only=True)
+        ws = wb.create_sheet("loops")
+        ws.append(list(GENERATED_COLUMNS))
+        for values in table:
+            ws.append(values)
+        wb.save(tmp)
+
+    return write_file_safely(p, write, force=force, suffixes=(".xlsx", ".csv"))

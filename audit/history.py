@@ -32,7 +32,7 @@ import hashlib
 import json
 import math
 import sys
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable, Iterable, Iterator, Mapping
 
@@ -69,6 +69,10 @@ _BUSY_TIMEOUT_MS = 60_000
 
 class HistoryError(Exception):
     """The history database cannot be opened, read or written; the message says why and where."""
+
+
+class HistoryEmpty(HistoryError):
+    """The database exists but holds no plant-audit history (opened with ``create=False``)."""
 
 
 # ---------------------------------------------------------------------------------------------
@@ -406,14 +410,15 @@ class StatusMix:
 
     Attributes
     ----------
-    audit_id : int
+    audit_id : int or None
+        None for an audit not yet recorded.
     date : str
         Audit date (ISO).
     counts : dict[str, int]
         Rows per status word. [-]
     """
 
-    audit_id: int
+    audit_id: int | None
     date: str
     counts: dict[str, int]
 
@@ -427,7 +432,8 @@ class LoopSeries:
     Attributes
     ----------
     tag : str
-    audit_ids : list[int]
+    audit_ids : list[int or None]
+        None for an audit not yet recorded.
     dates : list[str]
         Audit dates (ISO).
     ms : list[float or None]
@@ -437,7 +443,7 @@ class LoopSeries:
     """
 
     tag: str
-    audit_ids: list[int]
+    audit_ids: list[int | None]
     dates: list[str]
     ms: list[float | None]
     band_margin_db: list[float | None]
@@ -451,8 +457,8 @@ class HistorySection:
     ----------
     target : str
         Where the history is kept (path, or URL with the password hidden).
-    audit_id : int
-        Identifier of the audit just recorded.
+    audit_id : int or None
+        Identifier of the audit just recorded; None while it is only prepared.
     changes : Changes
         Since the previous audit of the same site (``first_audit`` when there was none).
     status_mix : list[StatusMix]
@@ -462,7 +468,7 @@ class HistorySection:
     """
 
     target: str
-    audit_id: int
+    audit_id: int | None
     changes: Changes
     status_mix: list[StatusMix]
     series: dict[str, LoopSeries]
@@ -474,6 +480,20 @@ class HistorySection:
 
 def _dumps(value: Any) -> str:
     return json.dumps(strict_json_value(value), allow_nan=False, sort_keys=True, separators=(",", ":"))
+
+
+def _loads(text: Any, where: str, kind: type = dict) -> Any:
+    """A stored JSON value of type ``kind``; HistoryError naming ``where`` when it is damaged."""
+    try:
+        value = json.loads(text)
+    except (TypeError, ValueError) as exc:
+        raise HistoryError(f"history: the stored {where} is damaged (not JSON: {exc}); restore the history from "
+                           "a backup, or record into another one with --history") from None
+    if not isinstance(value, kind):
+        raise HistoryError(f"history: the stored {where} is damaged (a JSON {type(value).__name__} where a "
+                           f"{'mapping' if kind is dict else kind.__name__} belongs); restore the history from a "
+                           "backup, or record into another one with --history")
+    return value
 
 
 def _restore_inf(results: dict[str, Any]) -> dict[str, Any]:
@@ -710,15 +730,20 @@ def _row_payload(position: int, row: Any, record: Mapping[str, Any], columns: li
 
 
 def _snapshot_of_row(audit_id: int | None, date: str, site: str, r: Mapping[str, Any]) -> LoopSnapshot:
-    results = _restore_inf(json.loads(r["results_json"]))
+    where = f"row {r.get('position')} of audit {audit_id}" if audit_id is not None else "row"
+    results = _restore_inf(_loads(r["results_json"], f"results of {where}"))
+    try:
+        row_number = int(r["row_number"])
+    except (TypeError, ValueError):
+        raise HistoryError(f"history: the stored sheet row of {where} is damaged ({r['row_number']!r})") from None
     return LoopSnapshot(
-        audit_id=audit_id, date=date, site=site, tag=r["tag"], row=int(r["row_number"]),
+        audit_id=audit_id, date=date, site=site, tag=r["tag"], row=row_number,
         status=r["status"], on_work_list=None if r["on_work_list"] is None else bool(r["on_work_list"]),
         ms=_figure(results, "ms"), gm_db=_figure(results, "gm_db"), pm_deg=_figure(results, "pm_deg"),
         band_s_db=_figure(results, "band_s_db"), band_required_db=_figure(results, "band_required_db"),
-        model=json.loads(r["model_json"]), tuning=json.loads(r["tuning_json"]),
+        model=_loads(r["model_json"], f"model of {where}"), tuning=_loads(r["tuning_json"], f"tuning of {where}"),
         model_fingerprint=r["model_fingerprint"], tuning_fingerprint=r["tuning_fingerprint"],
-        inputs=json.loads(r["inputs_json"]), results=results,
+        inputs=_loads(r["inputs_json"], f"inputs of {where}"), results=results,
     )
 
 
@@ -774,11 +799,16 @@ def _database_url(target: str) -> sa.URL:
     if "://" in target:
         try:
             url = make_url(target)
-        except sa.exc.ArgumentError as exc:
+        except (sa.exc.ArgumentError, ValueError) as exc:
             raise HistoryError(f"history: not a database URL: {target!r} ({exc})") from None
         if url.drivername in ("postgresql", "postgres"):
             url = url.set(drivername="postgresql+psycopg")
+        if url.get_backend_name() == "sqlite" and url.database in (None, "", ":memory:"):
+            raise HistoryError(f"history: {target!r} is an in-memory database, which keeps nothing; "
+                               "give a file path or a server URL")
         return url
+    if not target.strip():
+        raise HistoryError("history: no database given (an empty path)")
     return sa.URL.create("sqlite", database=str(Path(target).expanduser().resolve()))
 
 
@@ -877,7 +907,7 @@ class HistoryStore:
         if current == SCHEMA_VERSION:
             return
         if not create:
-            raise HistoryError(f"history: {self.target} holds no plant-audit history")
+            raise HistoryEmpty(f"history: {self.target} holds no plant-audit history")
         with self._write() as conn, conn.begin():
             self._lock_for_migration(conn)
             current = self._current_version(conn)
@@ -991,7 +1021,7 @@ class HistoryStore:
                 raise HistoryError(f"history: no audit {audit_id} in {self.target}")
             rows = conn.execute(sa.select(rows_table).where(rows_table.c.audit_id == audit_id)
                                 .order_by(rows_table.c.position)).mappings().all()
-        return _assemble(head["id"], head["audit_date"], head["site"], json.loads(head["policy_json"]), rows,
+        return _assemble(head["id"], head["audit_date"], head["site"], _loads(head["policy_json"], f"policy of audit {audit_id}"), rows,
                          head["work_list_size"])
 
     def previous(self, site: str, before_audit_id: int | None = None) -> AuditSnapshot | None:
@@ -1084,8 +1114,10 @@ def open_history(target: str, create: bool = True) -> HistoryStore:
     shown = _shown(url)
     if url.get_backend_name() == "sqlite":
         path = Path(url.database or "")
-        if not create and not path.is_file():
+        if not create and not path.exists():
             raise HistoryError(f"history: no history database at {shown}")
+        if path.exists() and not path.is_file():
+            raise HistoryError(f"history: {shown} is not a regular file (a folder, pipe or device)")
         if not path.parent.is_dir():
             raise HistoryError(f"history: folder {path.parent} does not exist")
         engine = _sqlite_engine(url)
@@ -1219,7 +1251,7 @@ def loop_series(store: HistoryStore, site: str, tags: Iterable[str] | None = Non
             s = out.setdefault(tag, LoopSeries(tag, [], [], [], []))
             if s.audit_ids and s.audit_ids[-1] == m["audit_id"]:
                 continue  # a repeated tag: first row only
-            res = _restore_inf(json.loads(m["results_json"]))
+            res = _restore_inf(_loads(m["results_json"], f"results of a row of audit {m['audit_id']}"))
             ms, bs, br = _figure(res, "ms"), _figure(res, "band_s_db"), _figure(res, "band_required_db")
             s.audit_ids.append(m["audit_id"])
             s.dates.append(m["audit_date"])
@@ -1232,8 +1264,152 @@ def loop_series(store: HistoryStore, site: str, tags: Iterable[str] | None = Non
 # Pipeline stage and command
 
 
+@dataclass
+class PendingHistory:
+    """An audit compared with its site's history but not yet recorded (see :func:`prepare_history`).
+
+    Attributes
+    ----------
+    target : str
+        The history as given (path or URL).
+    payloads : list of dict
+        The stored form of every row, in inventory order.
+    section : HistorySection
+        What the report shows; its ``audit_id`` (and the current audit's entries in
+        ``status_mix`` and ``series``) are None until :meth:`commit`.
+    """
+
+    target: str
+    payloads: list[dict[str, Any]]
+    section: HistorySection
+
+    def commit(self, audit: Any) -> int:
+        """Record the audit in one transaction; fill in its id; return it.
+
+        Parameters
+        ----------
+        audit : audit.pipeline.Audit
+            The audit this was prepared from.
+
+        Returns
+        -------
+        int
+            The new audit's id.
+
+        Raises
+        ------
+        HistoryError
+            When the history cannot be written (nothing of the audit is then stored).
+        """
+        with open_history(self.target) as store:
+            audit_id = store._record(audit, self.payloads)
+        sec = self.section
+        mix = [m if m.audit_id is not None else replace(m, audit_id=audit_id) for m in sec.status_mix]
+        for s in sec.series.values():
+            s.audit_ids[:] = [audit_id if a is None else a for a in s.audit_ids]
+        self.section = replace(sec, audit_id=audit_id, status_mix=mix)
+        audit.extras["history"] = self.section
+        return audit_id
+
+
+def check_target(target: str) -> None:
+    """Refuse at once a history that can never be used: a malformed URL, an in-memory database, a
+    SQLite file in a missing folder or a path that is not a regular file (nothing is opened).
+
+    Parameters
+    ----------
+    target : str
+        A path or a database URL, as given with ``--history``.
+
+    Raises
+    ------
+    HistoryError
+    """
+    url = _database_url(target)
+    if url.get_backend_name() == "sqlite":
+        path = Path(url.database or "")
+        if not path.parent.is_dir():
+            raise HistoryError(f"history: folder {path.parent} does not exist")
+        if path.exists() and not path.is_file():
+            raise HistoryError(f"history: {path} is not a regular file (a folder, pipe or device)")
+
+
+def _open_existing(target: str) -> HistoryStore | None:
+    """The history at ``target`` opened for reading, or None when there is none yet (nothing is written)."""
+    check_target(target)
+    url = _database_url(target)
+    if url.get_backend_name() == "sqlite" and not Path(url.database or "").exists():
+        return None
+    try:
+        return open_history(target, create=False)
+    except HistoryEmpty:
+        return None
+
+
+def prepare_history(audit: Any) -> PendingHistory | None:
+    """Compare the audit with its site's history without recording it; the report can show the changes.
+
+    The history is read only: a run that fails afterwards (an output that cannot be written, a
+    kill) leaves it as it was. :meth:`PendingHistory.commit` records the audit once the outputs
+    are in place. Leaves the :class:`HistorySection` in ``audit.extras['history']``.
+
+    Parameters
+    ----------
+    audit : audit.pipeline.Audit
+        A run whose stages are done. ``audit.options.history`` (path or URL) names the history;
+        None means ``audit-history.sqlite`` beside the inventory.
+
+    Returns
+    -------
+    PendingHistory or None
+        None when ``audit.options.record_history`` is False.
+
+    Raises
+    ------
+    HistoryError
+        When the history cannot be opened or read.
+    """
+    options = audit.options
+    if not getattr(options, "record_history", True):
+        return None
+    target = options.history or default_history_path(audit.inventory.path)
+    site = options.site or ""
+    payloads = list(_row_payloads(audit))
+    current = _snapshot_from_payloads(audit, payloads)
+    store = _open_existing(target)
+    shown = _shown(_database_url(target))
+    previous, mix, series = None, [], {}
+    if store is not None:
+        with store:
+            try:
+                previous = store.previous(site)
+                mix = status_mix_over_time(store, site)
+                series = loop_series(store, site, tags=current.loops.keys())
+            except sa.exc.SQLAlchemyError as exc:
+                raise HistoryError(f"history: cannot read {store.target}: "
+                                   f"{getattr(exc, 'orig', None) or exc}") from None
+            shown = store.target
+    changes = compare(previous, current, audit.inventory.policy)
+    counts: dict[str, int] = {}
+    for pl in payloads:
+        counts[pl["status"] or "unknown"] = counts.get(pl["status"] or "unknown", 0) + 1
+    mix.append(StatusMix(None, current.date, _ordered_counts(counts)))
+    for tag, snap in current.loops.items():
+        s = series.setdefault(tag, LoopSeries(tag, [], [], [], []))
+        s.audit_ids.append(None)
+        s.dates.append(current.date)
+        s.ms.append(snap.ms)
+        s.band_margin_db.append(snap.band_margin_db)
+    section = HistorySection(shown, None, changes, mix, series)
+    audit.extras["history"] = section
+    return PendingHistory(target, payloads, section)
+
+
 def add_history(audit: Any) -> None:
-    """Pipeline stage: compare with the site's previous audit, record this one, keep trends.
+    """Compare with the site's previous audit, record this one at once, keep trends.
+
+    :func:`prepare_history` then :meth:`PendingHistory.commit`; ``plant-audit run`` calls the
+    two apart, with the outputs written in between.
 
     Does nothing when ``audit.options.record_history`` is False. The history is
     ``audit.options.history`` (path or URL) or, when None, ``audit-history.sqlite`` beside the
@@ -1251,16 +1427,9 @@ def add_history(audit: Any) -> None:
     options = audit.options
     if not getattr(options, "record_history", True):
         return
-    target = options.history or default_history_path(audit.inventory.path)
-    site = options.site or ""
-    with open_history(target) as store:
-        payloads = list(_row_payloads(audit))
-        current = _snapshot_from_payloads(audit, payloads)
-        changes = compare(store.previous(site), current, audit.inventory.policy)
-        audit_id = store._record(audit, payloads)
-        mix = status_mix_over_time(store, site)
-        series = loop_series(store, site, tags=current.loops.keys())
-        audit.extras["history"] = HistorySection(store.target, audit_id, changes, mix, series)
+    pending = prepare_history(audit)
+    if pending is not None:
+        pending.commit(audit)
 
 
 def _fmt(x: Any) -> str:
@@ -1323,9 +1492,13 @@ def history_command(db: str | None, tag: str | None, as_csv: bool, site: str | N
     """
     try:
         with open_history(db or DEFAULT_FILE_NAME, create=False) as store:
-            header, body = _history_table(store, tag, site)
+            try:
+                header, body = _history_table(store, tag, site)
+            except sa.exc.SQLAlchemyError as exc:
+                raise HistoryError(f"history: cannot read {store.target}: "
+                                   f"{getattr(exc, 'orig', None) or exc}") from None
     except HistoryError as exc:
-        print(f"plant-audit history: {exc}", file=sys.stderr)
+        print(f"plant-audit history: {' '.join(str(exc).split())}", file=sys.stderr)
         return 2
     if as_csv:
         w = csv.writer(sys.stdout, lineterminator="\n")

@@ -36,6 +36,7 @@ import io
 import math
 import re
 import zipfile
+import zlib
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Callable, Iterable
@@ -43,8 +44,11 @@ from typing import Any, Callable, Iterable
 import numpy as np
 
 from . import units
+from .limits import MAX_CELL_CHARS, MAX_COLUMNS, MAX_INFLATED_BYTES, MAX_INVENTORY_BYTES, MAX_ROWS, NotARegularFile, \
+    read_regular
 from .policy import Policy
-from .rows import Inventory, LoopRow, Problem
+from .ranges import POLICY_RANGES, ROW_RANGES, tf_problems
+from .rows import Inventory, LoopRow, Problem, printable, tag_key
 
 # --------------------------------------------------------------------------------------
 # The table of known columns
@@ -220,7 +224,13 @@ def inventory_columns_markdown() -> str:
 
 
 class InventoryError(Exception):
-    """The file itself cannot be read as an inventory (one line, for the engineer)."""
+    """The file itself cannot be read as an inventory (one line, for the engineer).
+
+    Control characters in the message (from sheet names, headers) are escaped: it is printed.
+    """
+
+    def __init__(self, message: str = "") -> None:
+        super().__init__(printable(message))
 
 
 # --------------------------------------------------------------------------------------
@@ -312,7 +322,12 @@ def _is_blank(v: Any) -> bool:
 
 def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | None]]], key: str,
                  what: str) -> _Table:
-    """Find the header row (first of the first 20 rows with a ``key`` header) and collect the data."""
+    """Find the header row (first of the first 20 rows with a ``key`` header) and collect the data.
+
+    The limits of :mod:`audit.limits` apply while streaming: more than ``MAX_ROWS`` data rows, or a
+    non-blank cell right of column ``MAX_COLUMNS``, refuses the sheet at once; a cell longer than
+    ``MAX_CELL_CHARS`` is replaced by a marker that makes its row invalid.
+    """
     it = iter(rows)
     header_row, headers = 0, {}
     for rownum, values, _ in it:
@@ -320,7 +335,10 @@ def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | Non
             break
         if any(canonical_header(v) == key or (isinstance(v, str) and _norm(v) == key) for v in values):
             header_row = rownum
-            headers = {i + 1: v for i, v in enumerate(values) if not _is_blank(v)}
+            headers = _capped(sheet, rownum, values)
+            for col, h in headers.items():
+                if isinstance(h, Unreadable):
+                    raise InventoryError(f"sheet '{sheet}' header {_col_letter(col)}{rownum}: {h.message}")
             break
     if not header_row:
         raise InventoryError(f"sheet '{sheet}' has no '{key}' header in its first 20 rows; {what}")
@@ -328,14 +346,33 @@ def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | Non
     blank = 0
     prev = header_row
     for rownum, values, formats in it:
-        vals = {i + 1: v for i, v in enumerate(values) if not _is_blank(v)}
+        vals = _capped(sheet, rownum, values)
         if not vals:
             continue
+        if len(data) >= MAX_ROWS:
+            raise InventoryError(f"sheet '{sheet}' has more than {MAX_ROWS:,} loops (row {rownum} holds loop "
+                                 f"{MAX_ROWS + 1:,}); at most {MAX_ROWS:,} are read: split the inventory, "
+                                 "e.g. by area")
         blank += rownum - prev - 1
         prev = rownum
         fmts = {c: formats[c - 1] for c in vals if c - 1 < len(formats) and formats[c - 1]}
         data.append((rownum, vals, fmts))
     return _Table(sheet, header_row, headers, data, blank)
+
+
+def _capped(sheet: str, rownum: int, values: list[Any]) -> dict[int, Any]:
+    """The non-blank cells of one row by column (1-based), within the column and cell-length limits."""
+    vals: dict[int, Any] = {}
+    for i, v in enumerate(values):
+        if _is_blank(v):
+            continue
+        if i >= MAX_COLUMNS:
+            raise InventoryError(f"sheet '{sheet}' cell {_col_letter(i + 1)}{rownum} is right of column "
+                                 f"{_col_letter(MAX_COLUMNS)}; at most {MAX_COLUMNS} columns are read")
+        if isinstance(v, str) and len(v) > MAX_CELL_CHARS:
+            v = Unreadable(f"cell of {len(v):,} characters; at most {MAX_CELL_CHARS:,} are read")
+        vals[i + 1] = v
+    return vals
 
 
 def _xlsx_rows(ws) -> Iterable[tuple[int, list[Any], list[str | None]]]:
@@ -361,9 +398,13 @@ def _xlsx_rows(ws) -> Iterable[tuple[int, list[Any], list[str | None]]]:
         parser = WorkSheetParser(src, ws._shared_strings, data_only=True, epoch=wb.epoch,
                                  date_formats=wb._date_formats, timedelta_formats=wb._timedelta_formats)
         for rownum, cells in parser.parse():
+            cells = [c for c in cells if not _is_blank(c["value"])]  # styled empty cells carry nothing
             if not cells:
                 continue
             width = max(c["column"] for c in cells)
+            if width > MAX_COLUMNS:
+                raise InventoryError(f"sheet '{ws.title}' cell {_col_letter(width)}{rownum} is right of column "
+                                     f"{_col_letter(MAX_COLUMNS)}; at most {MAX_COLUMNS} columns are read")
             values: list[Any] = [None] * width
             formats: list[str | None] = [None] * width
             for c in cells:
@@ -421,8 +462,8 @@ def _uncomputed_formulas(xml: bytes) -> set[tuple[int, int]]:
 
 def _read_xlsx_table(wb_values, sheet_name: str, key: str, what: str) -> _Table:
     ws = wb_values[sheet_name]
+    table = _build_table(sheet_name, _xlsx_rows(ws), key, what)  # streamed first: the row limit refuses early
     xml = _sheet_xml(wb_values, ws)
-    table = _build_table(sheet_name, _xlsx_rows(ws), key, what)
     for m in _MERGE.finditer(xml):
         c0, r0 = _col_index(m.group(1)), int(m.group(2))
         c1, r1 = (_col_index(m.group(3)), int(m.group(4))) if m.group(3) else (c0, r0)
@@ -457,21 +498,28 @@ def _sniff_csv(text: str) -> str:
 
 
 def _read_csv_table(path: Path, data: bytes) -> _Table:
+    text = None
     for enc in ("utf-8-sig", "cp1252"):
         try:
             text = data.decode(enc)
             break
         except UnicodeDecodeError:
             continue
+    if text is None:
+        raise InventoryError(f"{path.name}: not readable as text (neither UTF-8 nor Windows-1252); "
+                             "save it as 'CSV UTF-8' and read that")
     if "\x00" in text:
         raise InventoryError(f"{path.name}: not a text CSV file (it contains binary data)")
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=_sniff_csv(text))
 
     def rows():
         start = 1
-        for values in reader:
-            yield start, values, [None] * len(values)
-            start = reader.line_num + 1
+        try:
+            for values in reader:
+                yield start, values, [None] * len(values)
+                start = reader.line_num + 1
+        except csv.Error as exc:
+            raise InventoryError(f"{path.name} line {reader.line_num}: not a readable CSV line ({exc})") from None
 
     return _build_table(path.stem, rows(), "tag", "the first line must name the columns, one of them 'tag'")
 
@@ -502,11 +550,38 @@ def _open_workbook(path: Path, data: bytes):
         raise InventoryError(f"{path.name} is an OpenDocument spreadsheet; save it as .xlsx and read that")
     if "xl/workbook.xml" not in names:
         raise InventoryError(f"{path.name} is a zip file but not an .xlsx workbook")
+    # Python's zipfile never inflates a part past the size its directory entry states (a part
+    # whose data inflates further fails its check as damaged), so the stated sizes bound the total.
+    inflated = sum(i.file_size for i in zf.infolist())
+    if inflated > MAX_INFLATED_BYTES:
+        raise InventoryError(f"{path.name} would inflate to {inflated / 1024 ** 2:,.0f} MiB once decompressed; "
+                             f"a workbook may hold at most {MAX_INFLATED_BYTES // 1024 ** 2:,} MiB: refused")
     from openpyxl import load_workbook
     try:
         return load_workbook(io.BytesIO(data), read_only=True, data_only=True)
     except Exception as exc:  # openpyxl raises many types on damaged files
         raise InventoryError(f"{path.name} cannot be opened as a workbook ({type(exc).__name__}: {exc})") from None
+
+
+_DAMAGE = (SyntaxError, ValueError, KeyError, IndexError, TypeError, OverflowError, EOFError, zipfile.BadZipFile,
+           zlib.error)
+"""What openpyxl's sheet parser raises on a damaged sheet (its XML parse errors are SyntaxErrors)."""
+
+
+class DamagedSheet(InventoryError):
+    """A sheet whose XML cannot be parsed: the whole file is refused (a policy sheet too)."""
+
+
+def _damaged_guard(path: Path, sheet: str, read: Callable[[], "_Table"]) -> "_Table":
+    """Run ``read``; a damaged sheet becomes a one-line InventoryError naming file and sheet."""
+    try:
+        return read()
+    except InventoryError:
+        raise
+    except _DAMAGE as exc:
+        detail = " ".join(str(exc).split())[:160]
+        raise DamagedSheet(f"{path.name}: sheet '{sheet}' is damaged and cannot be read ({type(exc).__name__}: "
+                           f"{detail}); open and save it in a spreadsheet program, or restore a copy") from None
 
 
 def _find_sheet(names: list[str], wanted: str) -> str | None:
@@ -525,16 +600,25 @@ _XL_ERRORS = ("#DIV/0!", "#N/A", "#NAME?", "#NULL!", "#NUM!", "#REF!", "#VALUE!"
               "#CALC!")
 
 
-class _Uncomputed:
-    """Marks a formula cell whose value was never computed."""
+class Unreadable:
+    """Marks a cell the reader cannot take at face value; ``message`` says why (an error on its row).
+
+    Parameters
+    ----------
+    message : str
+        The problem, as shown against the cell.
+    """
+
+    def __init__(self, message: str) -> None:
+        self.message = message
 
     def __repr__(self) -> str:
-        return "<formula without a value>"
+        return f"<{self.message}>"
 
 
-UNCOMPUTED = _Uncomputed()
 _UNCOMPUTED_MSG = ("formula without a computed value (the workbook was written by a program and never "
                    "recalculated); open it in a spreadsheet program, save it once, and read it again")
+UNCOMPUTED = Unreadable(_UNCOMPUTED_MSG)
 
 
 class _Bad(Exception):
@@ -557,7 +641,10 @@ def _to_number(v: Any, fmt: str | None, column: str, need: str) -> float:
     if isinstance(v, bool) or isinstance(v, (_dt.datetime, _dt.date, _dt.time, _dt.timedelta)):
         raise _Bad(f"must be {need}, got {_shown(v)}")
     if isinstance(v, (int, float)):
-        x = float(v)
+        try:
+            x = float(v)
+        except OverflowError:
+            raise _Bad(f"must be {need}, got a number of {len(str(abs(int(v))))} digits, too large to hold") from None
         if fmt and "%" in fmt.replace('"%"', "").replace("\\%", ""):
             if pct_col:
                 x *= 100.0  # the cell shows 100 x its value followed by %: read what is shown
@@ -581,8 +668,16 @@ def _to_number(v: Any, fmt: str | None, column: str, need: str) -> float:
                        f"write it with no separators and a point as the decimal mark")
         raise _Bad(f"must be {need}, got {text!r}")
     if not _NUM_RE.match(t):
-        raise _Bad(f"must be {need}, got {text!r}")
-    return float(t)
+        raise _Bad(f"must be {need}, got {_clip(text)!r}")
+    x = float(t)
+    if not math.isfinite(x):
+        raise _Bad(f"must be {need}; {_clip(text)!r} is too large to hold as a number")
+    return x
+
+
+def _clip(text: str, n: int = 40) -> str:
+    """Long text shortened for a message (its length said)."""
+    return text if len(text) <= n else f"{text[:n]}... ({len(text)} characters)"
 
 
 def _json_value(v: Any) -> Any:
@@ -596,7 +691,7 @@ def _json_value(v: Any) -> Any:
 
 
 def _plain(v: Any) -> Any:
-    return None if v is UNCOMPUTED else v
+    return None if isinstance(v, Unreadable) else v
 
 
 def _text(v: Any) -> str:
@@ -662,8 +757,8 @@ class _RowCheck:
     def raw(self, name: str) -> tuple[int, Any] | tuple[None, None]:
         g = self.given(name)
         for c, v in g:
-            if v is UNCOMPUTED:
-                self.err(name, _UNCOMPUTED_MSG, c)
+            if isinstance(v, Unreadable):
+                self.err(name, v.message, c)
                 return None, None
         if len(g) > 1 and len({_json_value(v) for _, v in g}) > 1:
             self.err(name, f"column {name} appears twice with different values "
@@ -692,7 +787,8 @@ class _RowCheck:
         self.err(name, f"unknown {name} {_text(v)!r}{hint}; accepted: {', '.join(words)}", c)
         return None
 
-    def number(self, name: str, need: str = _ANY, check: Callable[[float], bool] | None = None) -> float | None:
+    def number(self, name: str, need: str = _ANY, check: Callable[[float], bool] | None = None,
+               ranged: bool = True) -> float | None:
         c, v = self.raw(name)
         if c is None:
             return None
@@ -705,6 +801,10 @@ class _RowCheck:
         if not ok:
             self.err(name, f"must be {need}, got {x:g}", c)
             return None
+        rng = ROW_RANGES.get(name) if ranged else None
+        if rng is not None and not rng.accepts(x):
+            self.err(name, f"must be {rng.describe()} (the range accepted), got {x:g}", c)
+            return None
         return x
 
     def group(self, quantity: str, members: list[tuple[str, Callable[[float], float], str]],
@@ -714,10 +814,15 @@ class _RowCheck:
         for name, conv, need in members:
             if not self.present(name):
                 continue
-            x = self.number(name, need)
+            x = self.number(name, need, ranged=False)
             if x is None:
                 return None, name
-            found.append((name, x, conv(x)))
+            try:
+                v = conv(x)
+            except (ValueError, OverflowError, ZeroDivisionError) as exc:
+                self.err(name, f"{name} = {x:g} cannot be converted to {quantity}: {exc}")
+                return None, name
+            found.append((name, x, v))
         if not found:
             return None, None
         name0, x0, v0 = found[0]
@@ -727,6 +832,12 @@ class _RowCheck:
                 self.err(name, f"{name} = {x:g} gives {quantity} = {v:g} {unit} but {name0} ({cell0}) = {x0:g} "
                                f"gives {v0:g} {unit}; give one of them, or the same value")
                 return None, name
+        rng = ROW_RANGES.get(quantity)
+        # exactly 0 is left to the caller's own message (a zero gain); every other group refuses 0 by ``need``
+        if rng is not None and v0 != 0 and not rng.accepts(v0):
+            shown = f"{x0:g}" if v0 == x0 else f"{x0:g}, that is {quantity} = {v0:g} {rng.unit},"
+            self.err(name0, f"{name0} = {shown} outside the range accepted: {rng.describe()}")
+            return None, name0
         return v0, name0
 
 
@@ -755,16 +866,27 @@ def _parse_coeffs(chk: _RowCheck, name: str) -> tuple[float, ...] | None:
     if c is None:
         return None
     if isinstance(v, (int, float)) and not isinstance(v, bool):
-        return (float(v),)
+        try:
+            x = float(v)
+        except OverflowError:
+            x = math.inf
+        if not math.isfinite(x):
+            chk.err(name, "the coefficient is too large to hold as a number", c)
+            return None
+        return (x,)
     text = str(v).strip()
     if "," in text:
         chk.err(name, f"separate coefficients with spaces or semicolons (a comma is ambiguous), got {text!r}", c)
         return None
     parts = [p for p in re.split(r"[\s;]+", text.replace("\u2212", "-")) if p]
     if not parts or not all(_NUM_RE.match(p) for p in parts):
-        chk.err(name, f"must be numbers separated by spaces or semicolons, got {text!r}", c)
+        chk.err(name, f"must be numbers separated by spaces or semicolons, got {_clip(text)!r}", c)
         return None
-    return tuple(float(p) for p in parts)
+    vals = tuple(float(p) for p in parts)
+    if not all(math.isfinite(x) for x in vals):
+        chk.err(name, f"a coefficient is too large to hold as a number, got {_clip(text)!r}", c)
+        return None
+    return vals
 
 
 def _confine(chk: _RowCheck, base_dir: Path) -> str | None:
@@ -811,8 +933,8 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
                     c0)
     only_formulas = bool(vals) and all(v is UNCOMPUTED for v in vals.values())
     for c, v in vals.items():
-        if v is UNCOMPUTED and c not in name_of:
-            chk.err("", _UNCOMPUTED_MSG, c)
+        if isinstance(v, Unreadable) and c not in name_of:
+            chk.err("", v.message, c)
     for c, base in unitless.items():
         if c in vals:
             chk.err("", f"column '{base}' needs its unit in the header: use one of "
@@ -910,7 +1032,7 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
 
     inner_loop = chk.text("inner_loop") or None
     outer_input = chk.choice("outer_model_input", OUTER_INPUTS)
-    if inner_loop and tag and inner_loop.casefold() == tag.casefold():
+    if inner_loop and tag and tag_key(inner_loop) == tag_key(tag):
         chk.err("inner_loop", "a loop cannot be its own inner loop")
     if outer_input and not inner_loop:
         chk.warn("outer_model_input", "used only with inner_loop; ignored")
@@ -943,6 +1065,9 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
                 elif n_trim.size > len(d_):
                     chk.err("num", f"improper transfer function: numerator degree {n_trim.size - 1} exceeds "
                                    f"denominator degree {len(d_) - 1}")
+                else:
+                    for col_, msg_ in tf_problems(n_, d_):
+                        chk.err(col_, msg_)
         if model != "tf" and got["gain"] is not None and abs(got["gain"]) > 100:
             chk.warn(conventions.get("gain", "gain"), f"|gain| = {abs(got['gain']):g} is above 100; check the units")
     gain, tau1, tau2, lead, num, den = (got[k] for k in ("gain", "tau1", "tau2", "lead", "num", "den"))
@@ -1051,13 +1176,18 @@ def _map_headers(table: _Table) -> tuple[dict[str, list[int]], dict[int, str], d
                                     "error"))
             continue
         header = _text(h)
-        if header in extras.values():
-            header = f"{header} ({_col_letter(col)})"
-        extras[col] = header
         near = difflib.get_close_matches(_norm(header), known, n=1, cutoff=0.75)
         hint = f"; did you mean {near[0]}?" if near else ""
-        problems.append(Problem(table.sheet, cell, "", f"unknown column '{header}' kept as an extra column{hint}",
-                                "warning"))
+        name, why = _extra_name(header, extras.values())
+        if name in extras.values():
+            name = f"{name} ({_col_letter(col)})"
+        extras[col] = name
+        if why:
+            problems.append(Problem(table.sheet, cell, "", f"unknown column {header!r} {why}: kept as the extra "
+                                                           f"column '{name}', apart from the results{hint}", "warning"))
+        else:
+            problems.append(Problem(table.sheet, cell, "", f"unknown column '{header}' kept as an extra column{hint}",
+                                    "warning"))
     for name, cols in colmap.items():
         if len(cols) > 1:
             problems.append(Problem(table.sheet, f"{_col_letter(cols[1])}{table.header_row}", name,
@@ -1070,6 +1200,40 @@ def _map_headers(table: _Table) -> tuple[dict[str, list[int]], dict[int, str], d
     return colmap, extras, unitless, problems
 
 
+#: Prefix of an extra column whose header could be mistaken for a results column or a formula.
+EXTRA_PREFIX = "extra:"
+
+
+def _extra_name(header: str, taken) -> tuple[str, str]:
+    """The results name of an unknown inventory column, and why it was changed ('' when it was not).
+
+    An extra column is carried to the results after every results column. A header that reads like a
+    results column (``status``, ``Row``, ``ms``; compared NFKC-normalised and case-folded), like another
+    extra column, or like a formula (``=...``), or that holds control characters, is kept under
+    ``extra:<header>`` (control characters escaped) so it can neither replace nor shift a results column
+    and a spreadsheet never runs it.
+    """
+    from .columns import RESULT_COLUMNS
+    from .safety import is_formula_like
+
+    key = tag_key(header)
+    results = {c.name.casefold() for c in RESULT_COLUMNS}
+    why = ""
+    if key in results:
+        why = "has the name of a results column"
+    elif key.startswith(EXTRA_PREFIX):
+        why = f"begins with {EXTRA_PREFIX!r}, the mark of a renamed extra column"
+    elif key in {tag_key(t) for t in taken}:
+        why = "repeats another extra column's name"
+    elif is_formula_like(header.lstrip(" ")) or not header.strip():
+        why = "could be read as a formula" if header.strip() else "is blank"
+    elif not header.isprintable():
+        why = "holds control or invisible characters"
+    if not why:
+        return header, ""
+    return EXTRA_PREFIX + printable(header), why
+
+
 def _rows_from_table(table: _Table, base_dir: Path) -> tuple[list[LoopRow], list[Problem], tuple[str, ...]]:
     colmap, extras, unitless, problems = _map_headers(table)
     tag_col = _col_letter(colmap["tag"][0]) if "tag" in colmap else ""
@@ -1077,14 +1241,53 @@ def _rows_from_table(table: _Table, base_dir: Path) -> tuple[list[LoopRow], list
         _validate_row(i, table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless, table.merged)
         for i, (r, vals, fmts) in enumerate(table.rows)
     ]
+    rows = _mark_unevaluable(rows, colmap)
     return _mark_duplicates(rows, tag_col), problems, tuple(extras.values())
+
+
+def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> list[LoopRow]:
+    """Refuse valid rows whose loop the engine cannot evaluate in full (the engine's own grid sizing).
+
+    Each value lies in its range, but together they can still span more than the engine resolves:
+    a long dead time with a fast loop turns the delay spiral more times than the grid holds.
+    """
+    from .frequency import grid_points
+    from .ranges import MAX_GRID_POINTS
+    from .loop import model_from_row
+
+    idx = [i for i, r in enumerate(rows) if r.valid]
+    if not idx:
+        return rows
+    models = []
+    for i in idx:
+        try:
+            models.append(model_from_row(rows[i]))
+        except (ValueError, ZeroDivisionError, OverflowError, FloatingPointError) as exc:
+            models.append(None)
+            rows[i] = replace(rows[i], errors=rows[i].errors + (Problem(
+                rows[i].sheet, str(rows[i].excel_row), "model", f"the loop cannot be built from this row: {exc}"),))
+    flags = grid_points(models) > MAX_GRID_POINTS
+    out = list(rows)
+    for i, bad in zip(idx, flags):
+        if not bad:
+            continue
+        row = rows[i]
+        name = row.conventions.get("dead_time") or next(
+            (c for c in ("dead_time_s", "dead_time_min", "dead_time_h") if c in colmap), "model")
+        col = colmap.get(name, [None])[0]
+        cell = f"{_col_letter(col)}{row.excel_row}" if col is not None else str(row.excel_row)
+        msg = (f"with this model and tuning the loop's response matters over too wide a range of frequencies "
+               f"for the exact evaluation (the delay spiral would need more than {MAX_GRID_POINTS:,.0f} grid "
+               f"points); check the units of the times and gains")
+        out[i] = replace(row, errors=row.errors + (Problem(row.sheet, cell, name, msg),))
+    return out
 
 
 def _mark_duplicates(rows: list[LoopRow], tag_col: str) -> list[LoopRow]:
     by_tag: dict[str, list[int]] = {}
     for i, row in enumerate(rows):
         if row.tag:
-            by_tag.setdefault(row.tag.casefold(), []).append(i)
+            by_tag.setdefault(tag_key(row.tag), []).append(i)
     out = list(rows)
     for idxs in by_tag.values():
         if len(idxs) < 2:
@@ -1093,7 +1296,10 @@ def _mark_duplicates(rows: list[LoopRow], tag_col: str) -> list[LoopRow]:
             row = rows[i]
             others = ", ".join(str(rows[j].excel_row) for j in idxs if j != i)
             cell = f"{tag_col}{row.excel_row}"
-            p = Problem(row.sheet, cell, "tag", f"duplicate tag {row.tag!r}: also in row(s) {others}")
+            alike = {rows[j].tag for j in idxs} - {row.tag}
+            how = (f" as {', '.join(repr(t) for t in sorted(alike))} (the same once look-alike and invisible "
+                   f"characters are normalised)") if alike else ""
+            p = Problem(row.sheet, cell, "tag", f"duplicate tag {row.tag!r}: also in row(s) {others}{how}")
             out[i] = replace(row, errors=(p,) + row.errors)
     return out
 
@@ -1101,17 +1307,6 @@ def _mark_duplicates(rows: list[LoopRow], tag_col: str) -> list[LoopRow]:
 # --------------------------------------------------------------------------------------
 # Policy sheet
 # --------------------------------------------------------------------------------------
-
-_POLICY_CHECKS: dict[str, tuple[str, Callable[[float], bool]]] = {
-    "ms_max": ("a number > 1", lambda x: x > 1),
-    "pm_min_deg": ("a number in (0, 180)", lambda x: 0 < x < 180),
-    "band_energy_fraction": ("a number in (0, 1)", lambda x: 0 < x < 1),
-    "min_samples": ("a whole number >= 8", lambda x: x >= 8 and float(x).is_integer()),
-    "weight_high": (_NONNEG, lambda x: x >= 0),
-    "weight_medium": (_NONNEG, lambda x: x >= 0),
-    "weight_low": (_NONNEG, lambda x: x >= 0),
-}
-
 
 def _read_policy(table: _Table) -> tuple[Policy, list[Problem]]:
     problems: list[Problem] = []
@@ -1151,7 +1346,8 @@ def _read_policy(table: _Table) -> tuple[Policy, list[Problem]]:
             problems.append(Problem(table.sheet, cell_v, key, "blank value; the default "
                                                               f"{defaults[key]:g} applies", "warning"))
             continue
-        need, ok = _POLICY_CHECKS.get(key, (_POS, lambda x: x > 0))
+        rng = POLICY_RANGES[key]
+        need, ok = f"{rng.describe()} (the range accepted)", rng.accepts
         try:
             x = _to_number(v, fmts.get(c_val), key, need)
         except _Bad as exc:
@@ -1194,7 +1390,14 @@ def read_inventory(path: str | Path) -> Inventory:
         raise InventoryError(f"{p}: file not found")
     if p.is_dir():
         raise InventoryError(f"{p} is a folder; give the inventory workbook (.xlsx) or CSV file")
-    data = p.read_bytes()
+    try:
+        data = read_regular(p, MAX_INVENTORY_BYTES, "inventory")
+    except NotARegularFile as exc:
+        raise InventoryError(str(exc)) from None
+    except FileNotFoundError:
+        raise InventoryError(f"{p}: file not found") from None
+    except OSError as exc:
+        raise InventoryError(f"{p}: cannot be read ({exc.strerror or exc})") from None
     if not data:
         raise InventoryError(f"{p.name} is empty")
     sha = hashlib.sha256(data).hexdigest()
@@ -1212,22 +1415,24 @@ def read_inventory(path: str | Path) -> Inventory:
             loops = _find_sheet(list(sheets), "loops")
             if loops is None:
                 raise InventoryError(f"{p.name} has no 'loops' sheet; sheets found: {', '.join(sheets) or 'none'}")
-            table = _read_xlsx_table(wb, loops, "tag",
-                                     "the header row must name the columns, one of them 'tag'")
+            table = _damaged_guard(p, loops, lambda: _read_xlsx_table(
+                wb, loops, "tag", "the header row must name the columns, one of them 'tag'"))
             pol = _find_sheet(list(sheets), "policy")
             if pol is not None:
                 try:
-                    ptable = _read_xlsx_table(wb, pol, "setting", "")
+                    ptable = _damaged_guard(p, pol, lambda: _read_xlsx_table(wb, pol, "setting", ""))
                     policy, policy_problems = _read_policy(ptable)
+                except DamagedSheet:
+                    raise
                 except InventoryError:
                     policy_problems = [Problem(pol, "A1", "", "no 'setting' header in the first 20 rows; "
                                                               "policy sheet ignored, defaults apply")]
         finally:
             wb.close()
     rows, header_problems, extra_columns = _rows_from_table(table, base_dir)
-    if not rows and not header_problems:
-        header_problems.append(Problem(table.sheet, str(table.header_row + 1), "", "no loops below the header row",
-                                       "warning"))
+    if not rows:
+        where = f"sheet '{table.sheet}' of {p.name}" if sheets else p.name
+        raise InventoryError(f"{where}: no loops below the header row (row {table.header_row}); nothing to audit")
     letters: dict[str, str] = {}
     for col, h in sorted(table.headers.items()):
         name = canonical_header(h)

@@ -5,6 +5,10 @@ a missing one is empty; free text that could be read as a formula is prefixed
 with an apostrophe. JSON: strict (no NaN/Infinity tokens): infinite values are the
 string ``"inf"`` (``"-inf"``), missing values ``null``; it also records the tool
 version, the inventory's file name and SHA-256, and the policy in force.
+
+:func:`write_file_safely` writes one file the user named (the template, a generated
+inventory, a plot) through a temporary file beside it and never over an existing file
+without ``force``.
 """
 
 from __future__ import annotations
@@ -13,8 +17,9 @@ import csv
 import datetime as _dt
 import json
 import math
+import os
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Callable, Mapping
 
 import numpy as np
 import pandas as pd
@@ -161,3 +166,53 @@ def write_json(path: Path, results: pd.DataFrame, columns: list[str], meta: dict
     with open(path, "w", encoding="utf-8") as fh:
         json.dump(doc, fh, indent=1, allow_nan=False, ensure_ascii=False)
         fh.write("\n")
+
+
+class FileRefused(Exception):
+    """A file the user named will not be written (it exists, or is not a regular file); exit code 2."""
+
+
+def write_file_safely(path: str | Path, write: Callable[[Path], Any], force: bool = False,
+                      suffixes: tuple[str, ...] = ()) -> Path:
+    """Write one file through a temporary file beside it, moved into place only once complete.
+
+    Parameters
+    ----------
+    path : str or Path
+        The file to write.
+    write : callable
+        Called with the temporary path; writes the whole file there.
+    force : bool
+        Replace an existing file; without it an existing file is refused.
+    suffixes : tuple of str
+        Accepted file name endings (lower case, with the dot); any when empty.
+
+    Returns
+    -------
+    Path
+        ``path``.
+
+    Raises
+    ------
+    FileRefused
+        ``path`` exists (without ``force``), is not a regular file, or has another ending.
+    OSError
+        The folder cannot be written (the temporary file is removed; ``path`` is unchanged).
+    """
+    p = Path(path)
+    if suffixes and p.suffix.lower() not in suffixes:
+        raise FileRefused(f"{p}: the file name must end in {' or '.join(suffixes)}")
+    if p.exists() or p.is_symlink():
+        if not p.is_file():
+            raise FileRefused(f"{p} exists and is not a regular file; give another path")
+        if not force:
+            raise FileRefused(f"{p} exists; give another path, or --force to replace it")
+    tmp = p.with_name(f".{p.name}.partial-{os.getpid()}")
+    try:
+        write(tmp)
+        with open(tmp, "rb") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, p)
+    finally:
+        tmp.unlink(missing_ok=True)
+    return p

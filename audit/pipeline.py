@@ -197,6 +197,8 @@ def judge_residuals(audit: "Audit") -> None:
         The run, after :func:`audit.disturbance.add_residuals`; ``status`` and ``findings`` of its ``results``
         are updated in place. Nothing happens without a ``residual_ok`` column.
     """
+    from .disturbance import judge_unusable_records
+    judge_unusable_records(audit)   # a record that could not be used: its requirement is not met
     res = audit.results
     if "residual_ok" not in res.columns:
         return

@@ -7,8 +7,49 @@ Conversion happens once, in :mod:`audit.inventory`; nothing downstream converts.
 
 from __future__ import annotations
 
+import unicodedata
 from dataclasses import dataclass, field
 from typing import Any
+
+
+def printable(text: Any) -> str:
+    """``text`` with control and format characters escaped (``\\x1b``, ``\\u200b``), safe to print.
+
+    Spreadsheet text is untrusted: a terminal escape sequence in a header or a cell must never reach
+    a terminal or a report as such. Ordinary spaces are kept; tabs and line breaks are escaped too.
+
+    Parameters
+    ----------
+    text : Any
+        Any text (converted with ``str``).
+    """
+    s = str(text)
+    if s.isprintable():
+        return s
+    out = []
+    for ch in s:
+        if ch.isprintable() or ch == " ":
+            out.append(ch)
+        else:
+            o = ord(ch)
+            out.append(f"\\x{o:02x}" if o < 0x100 else f"\\u{o:04x}" if o < 0x10000 else f"\\U{o:08x}")
+    return "".join(out)
+
+
+def tag_key(tag: Any) -> str:
+    """The comparison key of a tag: NFKC-normalised, format characters removed, spaces trimmed, case folded.
+
+    Look-alike tags (a zero-width space inside, full-width letters) have the same key, so they count as
+    duplicates and match as inner loops.
+
+    Parameters
+    ----------
+    tag : Any
+        A tag as entered (None or blank gives '').
+    """
+    s = unicodedata.normalize("NFKC", str(tag or ""))
+    s = "".join(ch for ch in s if unicodedata.category(ch) != "Cf")
+    return s.strip().casefold()
 
 
 @dataclass(frozen=True)
@@ -34,6 +75,11 @@ class Problem:
     column: str
     message: str
     severity: str = "error"
+
+    def __post_init__(self) -> None:
+        # spreadsheet text quoted in a location or a message is never printed raw
+        for name in ("sheet", "cell", "column", "message"):
+            object.__setattr__(self, name, printable(getattr(self, name)))
 
     def __str__(self) -> str:
         where = f"{self.sheet}!{self.cell}"

@@ -17,6 +17,7 @@ from openpyxl.utils import get_column_letter
 from openpyxl.worksheet.datavalidation import DataValidation
 
 from .inventory import TEMPLATE_COLUMNS, InventoryColumn, alternatives
+from .output import write_file_safely
 from .policy import POLICY_HELP, Policy
 
 TEMPLATE_ROWS = 2000
@@ -97,13 +98,20 @@ def _comment_text(col: InventoryColumn) -> str:
     return "\n".join(lines)
 
 
-def write_template(path: str | Path) -> None:
+def write_template(path: str | Path, force: bool = False) -> None:
     """Write a ready-to-fill inventory workbook.
 
     Parameters
     ----------
     path : str or Path
-        Where to write the .xlsx file (overwritten if it exists).
+        Where to write the .xlsx file.
+    force : bool
+        Replace an existing file (a filled inventory, perhaps); refused without it.
+
+    Raises
+    ------
+    audit.output.FileRefused
+        ``path`` exists (without ``force``), is not a regular file, or does not end in .xlsx.
     """
     wb = Workbook()
     ws = wb.active
@@ -167,4 +175,4 @@ def write_template(path: str | Path) -> None:
     ins.column_dimensions["A"].width = 120
 
     wb.move_sheet("lists", offset=len(wb.sheetnames))
-    wb.save(Path(path))
+    write_file_safely(path, wb.save, force=force, suffixes=(".xlsx",))

@@ -1118,6 +1118,10 @@ def _dc_sign(proc: Process) -> float:
 def action_is_wrong(model: LoopModel) -> bool:
     """True when the controller action and gain sign give positive feedback at low frequency.
 
+    A sign test only: it proves nothing about a process with open-loop poles in the right
+    half-plane (there the stabilising action may well give positive feedback at w = 0).
+    Action advice is decided by :func:`check_actions`, from the closed loop itself.
+
     Parameters
     ----------
     model : LoopModel
@@ -1134,6 +1138,120 @@ def action_is_wrong(model: LoopModel) -> bool:
     if not g:
         g = c.integral_gain
     return model.sign * _dc_sign(model.process) * float(np.sign(g or 0.0)) < 0
+
+
+@dataclass(frozen=True)
+class ActionCheck:
+    """Whether a loop's controller action should be reversed, decided from its closed loop.
+
+    Attributes
+    ----------
+    stable : bool
+        Closed loop stable with the present action and tuning (exact engine).
+    other_stable : bool
+        Closed loop stable with the other action and the present tuning (exact engine).
+    rhp_open : int
+        Open-loop poles in the right half-plane (integrators excluded). [-]
+    positive_feedback : bool
+        The low-frequency sign test (:func:`action_is_wrong`) finds positive feedback.
+    wrong : bool or None
+        True: reverse the action; False: keep it; None: the present tuning cannot tell (an
+        open-loop unstable process, unstable with either action): proposals are tried with both.
+    reason : str
+        Why, in words (empty when the action is kept).
+    """
+
+    stable: bool
+    other_stable: bool
+    rhp_open: int
+    positive_feedback: bool
+    wrong: bool | None
+    reason: str = ""
+
+
+def decide_action(stable: bool, other_stable: bool, rhp_open: int, positive_feedback: bool
+                  ) -> tuple[bool | None, str]:
+    """The action advice of one loop from its closed loop with either action.
+
+    Rules: a stable loop keeps its action unless its process is open-loop stable, the sign
+    test finds positive feedback and the other action is stable too (then reversing is safe and
+    removes the positive feedback); an unstable loop that the other action makes stable is
+    reversed; an unstable loop with an open-loop stable process and positive feedback is reversed
+    (with integral action no tuning can stabilise it: 1 + L(s) changes sign on the positive real
+    axis); otherwise an open-loop unstable process is undecided (None) and a stable one keeps
+    its action. Advice never moves a stable loop to an unstable one.
+
+    Parameters
+    ----------
+    stable : bool
+        Closed loop stable with the present action (exact engine).
+    other_stable : bool
+        Closed loop stable with the other action, same tuning (exact engine).
+    rhp_open : int
+        Open-loop right-half-plane poles, integrators excluded. [-]
+    positive_feedback : bool
+        The low-frequency sign test finds positive feedback.
+
+    Returns
+    -------
+    tuple of (bool or None, str)
+        Reverse (True), keep (False) or undecided (None), and the reason in words.
+
+    References
+    ----------
+    K. J. Astrom and R. M. Murray, Feedback Systems, 2nd ed., 2021, sec. 10.2 (the Nyquist
+    criterion: with P open-loop poles in the right half-plane the curve must encircle -1 P times
+    counter-clockwise, so the sign of L(0) says nothing about stability).
+    """
+    if stable:
+        if positive_feedback and rhp_open == 0 and other_stable:
+            return True, ("positive feedback at low frequency with an open-loop stable process; the loop is "
+                          "stable with the other action too (exact evaluation)")
+        return False, ""
+    if other_stable:
+        return True, ("the closed loop is unstable with the present action and stable with the other one at the "
+                      "present tuning (exact evaluation)")
+    if rhp_open == 0:
+        if positive_feedback:
+            return True, ("positive feedback at low frequency with an open-loop stable process: no tuning with "
+                          "integral action can stabilise it")
+        return False, ""
+    return None, ""
+
+
+def check_actions(models: Sequence[LoopModel]) -> list[ActionCheck]:
+    """Decide for many loops whether the controller action should be reversed.
+
+    Each loop is evaluated with the exact engine twice, with its present action and with the
+    other one (same tuning), all in one call; :func:`decide_action` turns the two closed loops
+    into advice.
+
+    Parameters
+    ----------
+    models : sequence of LoopModel
+        The loops with their present controllers.
+
+    Returns
+    -------
+    list of ActionCheck
+        One per model, in order.
+    """
+    from .frequency import evaluate
+
+    if not models:
+        return []
+    both = list(models) + [replace(m, sign=-m.sign) for m in models]
+    df = evaluate(both)
+    n = len(models)
+    out = []
+    for i, m in enumerate(models):
+        st, ot = bool(df["stable"].iloc[i]), bool(df["stable"].iloc[n + i])
+        rhp = df["rhp_open"].iloc[i]
+        rhp = int(rhp) if _finite(rhp) else 0
+        pos = action_is_wrong(m)
+        wrong, reason = decide_action(st, ot, rhp, pos)
+        out.append(ActionCheck(st, ot, rhp, pos, wrong, reason))
+    return out
 
 
 def limiting_factor(model: LoopModel, req: Requirement) -> str:
@@ -1302,17 +1420,18 @@ def _in_row_form(s: Settings, form: str, conventions: Mapping[str, str]) -> tupl
     return rounded(t, conventions), note
 
 
-def _prepare(model: LoopModel, row: LoopRow, figures_row: Mapping[str, Any] | None, policy: Policy) -> _Job:
+def _prepare(model: LoopModel, row: LoopRow, figures_row: Mapping[str, Any] | None, policy: Policy,
+             reverse: bool = False, reason: str = "") -> _Job:
     status = str(_get(figures_row, "status") or "")
     job = _Job(model, row, limits_for(row, figures_row, policy), requirement_for(row, figures_row),
                Figures.of(figures_row) if figures_row is not None else Figures(False, *([math.nan] * 6)),
                status, current_settings(row, model), row.form)
-    if action_is_wrong(model):
+    if reverse:
         job.model = replace(model, sign=-model.sign)
         job.corrected_action = "direct" if model.sign > 0 else "reverse"
-        job.notes.append(f"the controller action appears wrong (positive feedback at low frequency): set the "
-                         f"action to {job.corrected_action}; that, not the tuning, is the fix. The settings "
-                         "below assume the corrected action")
+        job.notes.append(f"the controller action appears wrong ({reason}): set the action to "
+                         f"{job.corrected_action}; that, not the tuning, is the fix. The settings below assume "
+                         "the corrected action")
     cands, notes = candidate_settings(job.model, job.limits, job.req, row.d_filter)
     job.notes += notes
     seen = set()
@@ -1449,13 +1568,37 @@ def propose_many(items: Sequence[tuple[LoopModel, LoopRow, Mapping[str, Any] | N
     with_iae : bool
         Add the load-step IAE of the recommended settings (time-domain simulation).
     """
-    jobs = [_prepare(m, r, f, policy) for m, r, f in items]
-    _evaluate_jobs(jobs)
-    first = [_finish(j) for j in jobs]
+    checks = check_actions([m for m, _, _ in items])
+    tried: list[list[_Job]] = []
+    for (m, r, f), c in zip(items, checks):
+        if c.wrong is None:
+            # open-loop unstable and unstable either way at the present tuning: tune for both actions
+            tried.append([_prepare(m, r, f, policy),
+                          _prepare(m, r, f, policy, True, "with the present tuning neither action gives a stable "
+                                                          "loop; only with this action do settings that meet the "
+                                                          "limits exist (exact evaluation)")])
+        else:
+            tried.append([_prepare(m, r, f, policy, bool(c.wrong), c.reason)])
+    _evaluate_jobs([j for group in tried for j in group])
+    jobs, first = [], []
+    for group in tried:
+        done = [(j, _finish(j)) for j in group]
+        job, prop = done[0]
+        if len(done) == 2 and not _meets_any(done[0][1]) and _meets_any(done[1][1]):
+            job, prop = done[1]
+        if len(done) == 2 and prop is done[0][1]:
+            prop = replace(prop, note="; ".join(n for n in (prop.note, (
+                "with the present tuning neither action gives a stable loop (open-loop unstable process)")) if n))
+        jobs.append(job)
+        first.append(prop)
     if not with_iae:
         return first
     iae = _step_iae(jobs, [p.settings for p in first], policy)
     return [replace(p, after=replace(p.after, iae=v)) if p.after is not None else p for p, v in zip(first, iae)]
+
+
+def _meets_any(p: Proposal) -> bool:
+    return any(c.meets_limits for c in p.candidates)
 
 
 def propose(model: LoopModel, row: LoopRow, figures_row: Mapping[str, Any] | None, policy: Policy) -> Proposal:
@@ -1558,9 +1701,12 @@ def add_proposals(audit) -> None:
     mode = getattr(audit.options, "propose", "failing")
     out: dict[int, Proposal] = {}
     todo: list[int] = []
+    unjudged = audit.extras.get("records_unjudged_status", {})
     for i, row in enumerate(rows):
         model = audit.models[i]
         status = str(res.at[i, "status"]) if "status" in res.columns else ""
+        if i in unjudged and unjudged[i] in ("passes", "marginal"):
+            status = unjudged[i]   # fails only because its record could not be used: the fix is the record
         if model is None or status == "invalid":
             out[i] = Proposal("not evaluated", note="the row could not be evaluated: fix the inventory row first")
         elif mode == "none":

@@ -8,6 +8,7 @@ from pathlib import Path
 
 from audit.columns import RESULT_COLUMNS, markdown_table
 from audit.inventory import inventory_columns_markdown
+from audit.ranges import ranges_markdown
 
 ROOT = Path(__file__).resolve().parents[2]
 README = (ROOT / "README.md").read_text(encoding="utf-8")
@@ -21,6 +22,10 @@ def _block(name: str) -> str:
 
 def test_inventory_columns_table_is_current():
     assert _block("inventory-columns") == inventory_columns_markdown().strip()
+
+
+def test_ranges_table_is_current():
+    assert _block("ranges") == ranges_markdown().strip()
 
 
 def test_results_columns_table_is_current():

@@ -5,7 +5,7 @@ from __future__ import annotations
 import pytest
 from openpyxl import load_workbook
 
-from audit.inventory import TEMPLATE_COLUMNS, check_report, read_inventory
+from audit.inventory import TEMPLATE_COLUMNS, InventoryError, check_report, read_inventory
 from audit.policy import Policy
 from audit.template import write_template
 
@@ -45,9 +45,11 @@ def test_template_layout(template):
 
 
 def test_empty_template_reads_clean(template):
-    inv = read_inventory(template)
-    assert inv.rows == () and inv.policy == Policy()
-    assert check_report(inv).errors == 0
+    """The template's only fault is that it holds no loops yet: one plain line, nothing else
+    (README: an inventory without loops is exit 2 for run and check)."""
+    with pytest.raises(InventoryError) as exc:
+        read_inventory(template)
+    assert str(exc.value) == f"sheet 'loops' of {template.name}: no loops below the header row (row 1); nothing to audit"
 
 
 def test_filled_template_round_trip(template, tmp_path):
