@@ -194,13 +194,17 @@ def _fmt(x: float) -> str:
 def _improvement(rec: Mapping[str, Any]) -> str:
     if not math.isfinite(_num(rec, "proposal_ms")):
         return ""
-    parts = []
-    if _txt(rec, "status") == "unstable":
-        parts.append("stabilises the loop")
     b0, b1 = _num(rec, "band_s_db"), _num(rec, "proposal_band_s_db")
+    m0, m1 = _num(rec, "ms"), _num(rec, "proposal_ms")
+    if _txt(rec, "status") == "unstable":
+        # the figures of an unstable closed loop describe no response: quote the proposal's alone
+        parts = [f"unstable -> Ms {_fmt(m1)}"]
+        if math.isfinite(b1):
+            parts.append(f"band |S| {_fmt(b1)} dB")
+        return "; ".join(parts)
+    parts = []
     if math.isfinite(b1):
         parts.append(f"band |S| {_fmt(b0)} -> {_fmt(b1)} dB")
-    m0, m1 = _num(rec, "ms"), _num(rec, "proposal_ms")
     parts.append(f"Ms {_fmt(m0)} -> {_fmt(m1)}")
     i0, i1 = _num(rec, "load_iae_s"), _num(rec, "proposal_iae_s")
     if math.isfinite(i0) and math.isfinite(i1) and i0 > 0:

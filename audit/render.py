@@ -99,15 +99,27 @@ def fmt_num(value: Any, digits: int = 3) -> str:
 
 
 def fmt_status(status: str) -> str:
-    """Symbol and word of a status, e.g. ``'\u25b2 fails'``."""
+    """Symbol and word of a status, e.g. ``'\u25b2\u00a0fails'`` (a no-break space keeps them on one line)."""
     sym = STATUS_SYMBOLS.get(status, "")
-    return f"{sym} {status}" if sym else status
+    return f"{sym}\u00a0{status}" if sym else status
 
 
 def fmt_verdict(verdict: str) -> str:
-    """Symbol and word of a check's verdict."""
+    """Symbol and word of a check's verdict (joined by a no-break space)."""
     sym = VERDICT_SYMBOLS.get(verdict, "")
-    return f"{sym} {verdict}" if sym else verdict
+    return f"{sym}\u00a0{verdict}" if sym else verdict
+
+
+def fmt_change(text: Any) -> str:
+    """A 'before -> after' text for the page: the arrow drawn as one sign that never starts a line.
+
+    Parameters
+    ----------
+    text : Any
+        E.g. ``'Ms 2.29 -> 1.44'`` (results files keep the two ASCII characters); other values as
+        :func:`fmt_num` gives them.
+    """
+    return fmt_num(text).replace(" -> ", "\u00a0\u2192 ") if isinstance(text, str) else fmt_num(text)
 
 
 def fmt_px(value: Any) -> str:
@@ -157,7 +169,7 @@ def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
         keep_trailing_newline=True,
     )
     env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class, px=fmt_px,
-                       pts=fmt_points)
+                       pts=fmt_points, change=fmt_change)
     return env
 
 

@@ -33,7 +33,17 @@ def test_unstable_high_criticality_above_every_passing_loop():
     assert wl.loc[2, "rank"] == 1
     assert pd.isna(wl.loc[0, "rank"]) and pd.isna(wl.loc[1, "rank"])
     assert wl.loc[2, "priority_score"] > wl.loc[0, "priority_score"]
-    assert wl.loc[2, "action"] == "retune" and "stabilises" in wl.loc[2, "expected_improvement"]
+    assert wl.loc[2, "action"] == "retune" and wl.loc[2, "expected_improvement"] == "unstable -> Ms 1.6"
+
+
+def test_unstable_loop_improvement_quotes_the_proposal_alone():
+    """An unstable closed loop has no meaningful Ms or |S| (common practice: the peaks of the frequency
+    response describe a steady state that does not exist), so only the proposal's figures are quoted."""
+    recs = [_rec("U-1", "unstable", "high", 2, ms=1.04, band_s_db=-48.1, verdict="retune", proposal_ms=1.46,
+                 proposal_band_s_db=-16.4, load_iae_s=3.0, proposal_iae_s=2.0)]
+    text = work_list(_table(recs), POLICY).loc[0, "expected_improvement"]
+    assert text == "unstable -> Ms 1.46; band |S| -16.4 dB"
+    assert "1.04" not in text and "-48.1" not in text and "IAE" not in text
 
 
 def test_classes_order_with_default_weights():
