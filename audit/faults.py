@@ -41,10 +41,14 @@ STAGE_NEEDS: dict[str, tuple[str, ...]] = {
     "residual_check": ("evaluate",),
     "proposals": ("evaluate",),
     "priority": ("evaluate",),
+    "groups": ("evaluate",),
+    "health": ("models",),
+    "group_proposals": ("groups", "proposals"),
+    "modelcheck": ("models",),
 }
 """Stages whose outputs each stage needs; a stage not listed needs every stage before it."""
 
-JUDGING_STAGES = frozenset({"records", "evaluate", "cascade", "residuals", "residual_check"})
+JUDGING_STAGES = frozenset({"records", "evaluate", "cascade", "groups", "residuals", "residual_check"})
 """Stages that decide a row's status: a row they did not finish cannot pass (so may a stage not in
 :data:`STAGE_NEEDS`: it is treated as judging until its owner lists it)."""
 
