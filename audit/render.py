@@ -20,6 +20,7 @@ import contextlib
 import functools
 import gc
 import math
+import re
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -30,7 +31,7 @@ from urllib.request import url2pathname
 
 import jinja2
 import numpy as np
-from markupsafe import Markup
+from markupsafe import Markup, escape
 
 from .report import STATUS_ORDER, Report, build_report
 
@@ -140,6 +141,43 @@ def fmt_points(points: Any) -> str:
     return " ".join(f"{x:.1f},{y:.1f}" for x, y in arr.tolist())
 
 
+#: A run of more than this many non-space characters gets break opportunities (see :func:`fmt_breakable`).
+LONG_RUN = 30
+#: Characters between two zero-width spaces inside such a run.
+BREAK_EVERY = 20
+_LONG_RUN_RE = re.compile(r"\S{%d,}" % (LONG_RUN + 1))
+
+
+def fmt_breakable(text: Any) -> Any:
+    """Inventory or record text as escaped markup in which a long unbroken run may break.
+
+    A run of more than :data:`LONG_RUN` non-space characters gets a zero-width space (U+200B) after every
+    :data:`BREAK_EVERY` characters, so a page lays it out by cheap break opportunities instead of letting
+    the renderer search every letter (WeasyPrint's cost of breaking inside one word grows with the square
+    of its length). Normal words are unchanged. The text is cut first and each piece escaped after, so an
+    entity is never split and markup stays inert. Markup (already safe) and non-text values pass through.
+
+    Parameters
+    ----------
+    text : Any
+        Text from the spreadsheet or a record (tag, area, findings, notes, file names...).
+    """
+    if isinstance(text, Markup) or not isinstance(text, str):
+        return text
+
+    def cut(m: re.Match) -> str:
+        run = m.group(0)
+        return "\u200b".join(run[i:i + BREAK_EVERY] for i in range(0, len(run), BREAK_EVERY))
+
+    out, last = [], 0
+    for m in _LONG_RUN_RE.finditer(text):
+        out.append(str(escape(text[last:m.start()])))
+        out.append(str(escape(cut(m))))
+        last = m.end()
+    out.append(str(escape(text[last:])))
+    return Markup("".join(out))
+
+
 def css_class(text: str) -> str:
     """A status or verdict word as a CSS class name.
 
@@ -169,7 +207,7 @@ def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
         keep_trailing_newline=True,
     )
     env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class, px=fmt_px,
-                       pts=fmt_points, change=fmt_change)
+                       pts=fmt_points, change=fmt_change, brk=fmt_breakable)
     return env
 
 

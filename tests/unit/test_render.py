@@ -11,10 +11,11 @@ import re
 
 import numpy as np
 import pytest
+from markupsafe import escape
 
 from audit import plots
-from audit.render import (OutputFolderFetcher, draw, environment, fmt_num, fmt_status, render_chart,
-                          render_html)
+from audit.render import (BREAK_EVERY, LONG_RUN, OutputFolderFetcher, draw, environment, fmt_num, fmt_status,
+                          render_chart, render_html)
 from audit.report import Tally, build_report
 
 from .test_report_support import HOSTILE_AREA, HOSTILE_SERVICE, HOSTILE_TAG, make_audit
@@ -40,6 +41,26 @@ def test_environment_escapes_whatever_the_template_name():
     assert env.autoescape is True
     assert env.from_string("{{ x }}").render(x="<script>") == "&lt;script&gt;"
     assert {"num", "status", "verdict", "css"} <= set(env.filters)
+
+
+
+def test_long_runs_get_break_opportunities_and_stay_escaped():
+    """Common practice: a zero-width space (U+200B) is a break opportunity that shows nothing; markup inside a
+    long word is cut before escaping, so no entity is split and no tag survives."""
+    brk = environment().from_string("{{ x|brk }}").render
+    assert brk(x="FIC-332 thickening tank 2 outlet") == "FIC-332 thickening tank 2 outlet"   # normal words
+    assert brk(x="a" * LONG_RUN) == "a" * LONG_RUN
+    word = "b" * 95
+    out = brk(x="area " + word + " end")
+    pieces = out.split(" ")[1].split("\u200b")
+    assert out.replace("\u200b", "") == "area " + word + " end"
+    assert [len(p) for p in pieces] == [BREAK_EVERY] * 4 + [95 - 4 * BREAK_EVERY]
+    hostile = "<script>alert(1)</script>" * 4 + "&amp;" * 10
+    out = brk(x=hostile)
+    assert "<" not in out and ">" not in out and "\u200b" in out
+    assert out.replace("\u200b", "") == str(escape(hostile))
+    assert re.search(r"&(?!(amp|lt|gt|#34|#39);)", out) is None      # every '&' starts a whole entity
+    assert brk(x=None) == "None" and brk(x=2.5) == "2.5"
 
 
 def test_fetcher_reads_data_uris_and_the_output_folder_only(tmp_path):
