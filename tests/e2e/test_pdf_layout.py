@@ -155,6 +155,25 @@ def test_sample_pdf_all_loops_header_reads_cell_by_cell(sample_pages):
     assert overlaps(Page(page.number, page.width, page.height, tuple(head))) == []
 
 
+
+def test_sample_pdf_group_tables_read_cell_by_cell(sample_pages):
+    """The 'Interacting loops' tables: the per-loop header's words all present and clear of each other, every
+    column of each relative gain array headed by its tag (none pushed off the page)."""
+    pages = [p for p in sample_pages if any(w.text == "Niederlinski" for w in p.words)]
+    assert pages
+    for page in pages:
+        if not ({"alone", "[deg]", "Couplings"} <= {w.text for w in page.words}):
+            continue
+        head = [w for w in page.words if w.text in ("Ms", "GM", "PM", "alone", "group", "[dB]", "[deg]")]
+        assert sum(w.text == "alone" for w in head) >= 3 and sum(w.text == "[deg]" for w in head) >= 2
+        assert overlaps(Page(page.number, page.width, page.height, tuple(head))) == []
+    rga = [p for p in sample_pages if any(w.text == "steady" for w in p.words)]
+    assert rga
+    for page in rga:
+        assert in_margins(page) == []
+        assert any(w.text.startswith("AIC-611") or w.text.startswith("PIC-331") for w in page.words)
+
+
 def test_sample_pdf_words_stay_inside_the_text_block(sample_pages):
     assert [m for p in sample_pages for m in in_margins(p)] == []
 
