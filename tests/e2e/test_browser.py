@@ -146,7 +146,8 @@ class Chromium:
 
 
 # Tables wider than the page, cells whose text runs past their edge (beyond 1 px of rounding), and in the
-# tables of narrow columns, words of up to 24 characters that a line break cuts in two ('medi' / 'um').
+# tables of narrow columns, words of up to 24 characters that a line break cuts in two ('medi' / 'um'); a break
+# after a hyphen ('half-' / 'plane') is ordinary typesetting, so the parts of a hyphenated word count as words.
 MEASURE = r"""(() => {
   const vw = document.documentElement.clientWidth;
   const wide = [], spill = [], cut = [];
@@ -164,7 +165,7 @@ MEASURE = r"""(() => {
     n.parentElement.closest('table.loops, table.work, table.tally-table') ? NodeFilter.FILTER_ACCEPT : NodeFilter.FILTER_REJECT});
   let words = 0;
   for (let n = walker.nextNode(); n; n = walker.nextNode()) {
-    for (const m of n.data.matchAll(/(?<!\S)\S{2,24}(?!\S)/g)) {
+    for (const m of n.data.matchAll(/(?<![^\s-])[^\s-]{2,24}(?![^\s-])/g)) {
       words++;
       range.setStart(n, m.index);
       range.setEnd(n, m.index + m[0].length);
