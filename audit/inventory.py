@@ -1058,21 +1058,7 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
                 chk.err(cols[0], f"required for model {model}" +
                         (f" (or {', '.join(cols[1:])})" if len(cols) > 1 else ""))
         if model == "tf" and got["num"] is not None and got["den"] is not None:
-            n_, d_ = got["num"], got["den"]
-            if d_[0] == 0:
-                chk.err("den", f"leading coefficient must not be 0, got {' '.join(f'{x:g}' for x in d_)}")
-            elif all(x == 0 for x in d_):
-                chk.err("den", "all coefficients are zero")
-            else:
-                n_trim = np.trim_zeros(np.asarray(n_, float), "f")
-                if n_trim.size == 0:
-                    chk.err("num", "all coefficients are zero: the process gain is zero")
-                elif n_trim.size > len(d_):
-                    chk.err("num", f"improper transfer function: numerator degree {n_trim.size - 1} exceeds "
-                                   f"denominator degree {len(d_) - 1}")
-                else:
-                    for col_, msg_ in tf_problems(n_, d_):
-                        chk.err(col_, msg_)
+            check_tf_cells(chk, got["num"], got["den"], "process")
         if model != "tf" and got["gain"] is not None and abs(got["gain"]) > 100:
             chk.warn(conventions.get("gain", "gain"), f"|gain| = {abs(got['gain']):g} is above 100; check the units")
     gain, tau1, tau2, lead, num, den = (got[k] for k in ("gain", "tau1", "tau2", "lead", "num", "den"))
@@ -1584,3 +1570,31 @@ def check_json(report: CheckReport) -> dict[str, Any]:
         "problems": [{"sheet": p.sheet, "cell": p.cell, "column": p.column, "severity": p.severity,
                       "message": p.message, "text": str(p)} for p in report.problems],
     }
+
+
+def check_tf_cells(chk: Any, num: list[float], den: list[float], what: str) -> None:
+    """Problems of a tf model's ``num``/``den`` cells, reported on ``chk`` (loops and couplings sheets alike).
+
+    Parameters
+    ----------
+    chk : row checker
+        Has ``err(column, message)``.
+    num, den : list of float
+        Coefficients, highest power first. [-]
+    what : str
+        Whose gain the numerator sets, for the message ('process', 'coupling').
+    """
+    if den[0] == 0:
+        chk.err("den", f"leading coefficient must not be 0, got {' '.join(f'{x:g}' for x in den)}")
+    elif all(x == 0 for x in den):
+        chk.err("den", "all coefficients are zero")
+    else:
+        n_trim = np.trim_zeros(np.asarray(num, float), "f")
+        if n_trim.size == 0:
+            chk.err("num", f"all coefficients are zero: the {what} gain is zero")
+        elif n_trim.size > len(den):
+            chk.err("num", f"improper transfer function: numerator degree {n_trim.size - 1} exceeds "
+                           f"denominator degree {len(den) - 1}")
+        else:
+            for col_, msg_ in tf_problems(num, den):
+                chk.err(col_, msg_)

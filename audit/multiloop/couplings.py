@@ -37,8 +37,6 @@ import difflib
 from dataclasses import dataclass
 from typing import Any, Sequence
 
-import numpy as np
-
 from ..loop import Process, make_process
 from ..rows import LoopRow, Problem
 from .figures import MAX_GROUP
@@ -168,20 +166,7 @@ def _validate_model(chk, sheet: str) -> Process | None:
         if got[q] is None and not any(chk.present(c) for c in cols):
             chk.err(cols[0], f"required for model {model}" + (f" (or {', '.join(cols[1:])})" if len(cols) > 1 else ""))
     if model == "tf" and got["num"] is not None and got["den"] is not None:
-        n_, d_ = got["num"], got["den"]
-        if d_[0] == 0 or all(x == 0 for x in d_):
-            chk.err("den", "leading coefficient must not be 0")
-        else:
-            n_trim = np.trim_zeros(np.asarray(n_, float), "f")
-            if n_trim.size == 0:
-                chk.err("num", "all coefficients are zero: the coupling gain is zero")
-            elif n_trim.size > len(d_):
-                chk.err("num", f"improper transfer function: numerator degree {n_trim.size - 1} exceeds "
-                               f"denominator degree {len(d_) - 1}")
-            else:
-                from ..ranges import tf_problems
-                for col_, msg_ in tf_problems(n_, d_):
-                    chk.err(col_, msg_)
+        inv.check_tf_cells(chk, got["num"], got["den"], "coupling")
     if chk.has_errors:
         return None
     return make_process(model, got["gain"], got["tau1"], got["tau2"], got["lead"], dead, got["num"], got["den"])
