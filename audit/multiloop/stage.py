@@ -295,33 +295,27 @@ def check_group_proposals(audit) -> None:
                                                      f"within the Ms limits when closed together"
             continue
         why = "unstable" if not fig1.stability.stable else "outside the Ms limits"
-        if np.isfinite(fig1.niederlinski) and fig1.niederlinski < 0:
+
+        def unrepairable(note: str, reason: str) -> None:
+            """No detuning restores the group: notes on the proposed loops, verdict 'not achievable by tuning'."""
             out[gr.group.gid] = GroupProposal(gr.group.gid, fig1.stability.stable, ms1, math.nan, fig1.lcm_db, ms1,
                                               False)
             for k, i in enumerate(members):
                 if settings[k] is not None:
                     cols["group_proposal_ms"][i] = ms1[k]
-                    cols["group_proposal_note"][i] = (
-                        f"the single-loop proposals leave group {gr.group.gid} {why} when closed together; its "
-                        f"Niederlinski index {fig1.niederlinski:.3g} < 0, so no detuning with integral action can "
-                        f"help: change the pairing or decouple")
-            _not_by_tuning(res, members, f"group {gr.group.gid}: pairing with a negative Niederlinski index "
-                                         f"(change the pairing or decouple)")
+                    cols["group_proposal_note"][i] = (f"the single-loop proposals leave group {gr.group.gid} {why} "
+                                                      f"when closed together{note}: change the pairing or decouple")
+            _not_by_tuning(res, members, f"group {gr.group.gid}: {reason} (change the pairing or decouple)")
+
+        if np.isfinite(fig1.niederlinski) and fig1.niederlinski < 0:
+            unrepairable(f"; its Niederlinski index {fig1.niederlinski:.3g} < 0, so no detuning with integral "
+                         f"action can help", "pairing with a negative Niederlinski index")
             continue
         # Luyben's common factor, on the proposed loops only (the others keep their settings)
         proposed = [s is not None for s in settings]
         sub = blt_detune(g1, only=proposed)
         if not sub.reached:
-            out[gr.group.gid] = GroupProposal(gr.group.gid, fig1.stability.stable, ms1, math.nan, fig1.lcm_db, ms1,
-                                              False)
-            for k, i in enumerate(members):
-                if settings[k] is not None:
-                    cols["group_proposal_ms"][i] = ms1[k]
-                    cols["group_proposal_note"][i] = (
-                        f"the single-loop proposals leave group {gr.group.gid} {why} when closed together, and no "
-                        f"common detuning factor up to 50 restores it: change the pairing or decouple")
-            _not_by_tuning(res, members, f"group {gr.group.gid}: no common detuning restores the group "
-                                         f"(change the pairing or decouple)")
+            unrepairable(", and no common detuning factor up to 50 restores it", "no common detuning restores the group")
             continue
         g2 = g1.with_controllers([detuned(c, sub.factor) if p else c for c, p in zip(ctrls, proposed)])
         fig2 = analyse_group(g2)
