@@ -41,7 +41,7 @@ Fitting
    op averaged over each block), then refined on all samples from that optimum (at most 8
    iterations). Further starts guard against a local minimum in the dead time: tried only
    while the first fits below 90 %; for sopdt three starts (no lead, a lead, an inverse
-   response) each run 6 iterations and the best goes on. Stop when the Gauss-Newton decrement
+   response) each run 4 iterations and the best goes on. Stop when the Gauss-Newton decrement
    is below 1e-8 of the residual sum of squares (1e-6 on the coarse record).
    Many records are fitted together (:func:`identify_many`): the steps of all records of a
    batch run as one set of array operations, each record with its own damping and stop, so
@@ -112,7 +112,7 @@ PARAMS = {"fopdt": ("gain", "tau1", "dead_time"),
           "sopdt0": ("gain", "tau1", "tau2", "dead_time")}     # sopdt with the lead fixed at 0 (internal)
 UNITS = {"gain": "-", "tau1": "s", "tau2": "s", "tau_lead": "s", "dead_time": "s"}
 COARSE_POINTS = 1000      # records longer than twice this are searched on every q-th sample first
-SCOUT_ITER = 6            # iterations from each of several starts before the best goes on
+SCOUT_ITER = 4            # iterations from each of several starts before the best goes on
 FINE_ITER = 8             # iterations on all samples after the coarse search
 COARSE_ITER = 40          # iterations on the coarse record
 _CONTEXT = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None

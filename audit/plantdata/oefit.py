@@ -441,8 +441,11 @@ def _solve_rows(M: np.ndarray, g: np.ndarray) -> np.ndarray:
         return np.linalg.solve(M, -g[:, :, None])[:, :, 0]
     except np.linalg.LinAlgError:
         out = np.zeros_like(g)
-        for i in range(len(g)):
-            out[i] = np.linalg.lstsq(M[i], -g[i], rcond=None)[0]
+        for i in range(len(g)):             # row by row: only a singular row falls back to least squares
+            try:
+                out[i] = np.linalg.solve(M[i:i + 1], -g[i:i + 1, :, None])[0, :, 0]
+            except np.linalg.LinAlgError:
+                out[i] = np.linalg.lstsq(M[i], -g[i], rcond=None)[0]
         return out
 
 
@@ -567,8 +570,8 @@ def levenberg_marquardt(model: str, x0: np.ndarray, b: Batch, max_iter: int = 10
 def response_jacobian(model: str, x: np.ndarray, coef: np.ndarray, u: np.ndarray, dt: float) -> np.ndarray:
     """Jacobian of the simulated pv with respect to every parameter of one record, for the covariance.
 
-    Columns: gain, the nonlinear parameters (central differences of s through the filter;
-    one-sided at a bound), bias, and for ipdt the balancing op (pv stands still when op - op[0]
+    Columns: gain, the nonlinear parameters (forward differences of s through the filter,
+    step 1e-6 of the parameter; backward at an upper bound), bias, and for ipdt the balancing op (pv stands still when op - op[0]
     equals it; the ramp slope is -gain x balance).
 
     Parameters
@@ -590,7 +593,7 @@ def response_jacobian(model: str, x: np.ndarray, coef: np.ndarray, u: np.ndarray
         n x p, columns in the order of ``PARAMS[model]`` of :mod:`.identify`, then bias
         (and balance).
     """
-    lo, hi = bounds(model, dt, len(u) * dt)
+    hi = bounds(model, dt, len(u) * dt)[1]
     s = unit_response(model, x, u, dt)
     gain = coef[1]
     t = np.arange(len(s)) * dt
@@ -599,11 +602,10 @@ def response_jacobian(model: str, x: np.ndarray, coef: np.ndarray, u: np.ndarray
         balance = -coef[2] / gain if gain != 0 else 0.0
         cols = [s - balance * t]
     for i in range(len(x)):
-        h = 1e-5 * max(abs(x[i]), dt)
-        up, dn = x.copy(), x.copy()
-        up[i] = min(x[i] + h, hi[i])
-        dn[i] = max(x[i] - h, lo[i])
-        cols.append(gain * (unit_response(model, up, u, dt) - unit_response(model, dn, u, dt)) / (up[i] - dn[i]))
+        h = 1e-6 * max(abs(x[i]), dt)
+        up = x.copy()
+        up[i] = x[i] + h if x[i] + h <= hi[i] else x[i] - h
+        cols.append(gain * (unit_response(model, up, u, dt) - s) / (up[i] - x[i]))
     cols.append(np.ones_like(s))
     if model == "ipdt":
         cols.append(-gain * t)
@@ -668,7 +670,7 @@ BATCH_ELEMENTS = 4_000_000
 
 def solve_rows(model: str, rows: Sequence[tuple[np.ndarray, np.ndarray, float, int, int]],
                x0: Sequence[np.ndarray], max_iter: int = 100, ftol: float = 1e-8) -> list[Solution | None]:
-    """:func:`levenberg_marquardt` over many records, in batches of similar length.
+    """:func:`levenberg_marquardt` over many records, in batches of records of one length.
 
     Parameters
     ----------
@@ -697,8 +699,8 @@ def solve_rows(model: str, rows: Sequence[tuple[np.ndarray, np.ndarray, float, i
     k = 0
     while k < len(order):
         size = len(rows[order[k]][0])
-        m = 1
-        while k + m < len(order) and (m + 1) * p * max(size, len(rows[order[k + m]][0])) <= BATCH_ELEMENTS:
+        m = 1           # records of one length together: no padding, so a record's arithmetic is its own
+        while k + m < len(order) and len(rows[order[k + m]][0]) == size and (m + 1) * p * size <= BATCH_ELEMENTS:
             m += 1
         part = order[k:k + m]
         b = Batch.of([rows[i] for i in part], model)
