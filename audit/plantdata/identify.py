@@ -64,7 +64,10 @@ Fitting
 7. Model selection by the Bayesian information criterion on the effective sample size,
    BIC = N_eff ln(RSS/N) + p ln(N_eff); a more complex model (sopdt) is chosen only when it
    lowers the BIC by more than ``bic_margin`` (default 10, "very strong" evidence in the
-   scale of Kass and Raftery [6]_); otherwise the simpler one (fopdt, or ipdt) stands.
+   scale of Kass and Raftery [6]_) and leaves a smaller residual sum of squares than fopdt
+   (sopdt holds fopdt, so one that fits worse has not reached its optimum: its residuals,
+   correlated, would shrink N_eff and with it its BIC); otherwise the simpler one (fopdt, or
+   ipdt) stands.
 8. A model is refused ("not identifiable") when its fit % is below ``min_fit_pct``
    (default 30 %) or the 95 % interval of its gain is wider than its gain
    (half-width > |K|).
@@ -113,7 +116,7 @@ PARAMS = {"fopdt": ("gain", "tau1", "dead_time"),
 UNITS = {"gain": "-", "tau1": "s", "tau2": "s", "tau_lead": "s", "dead_time": "s"}
 COARSE_POINTS = 1000      # records longer than twice this are searched on every q-th sample first
 SCOUT_ITER = 4            # iterations from each of several starts before the best goes on
-FINE_ITER = 8             # iterations on all samples after the coarse search
+FINE_ITER = 4             # iterations on all samples after the coarse search
 COARSE_ITER = 40          # iterations on the coarse record
 _CONTEXT = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
 
@@ -700,7 +703,9 @@ def _fit_cases(cases: list[_Case], policy: IdentifyPolicy) -> None:
         best = min(simple, key=lambda m: c.fits[m].bic) if simple else "sopdt"
         if "sopdt" in c.fits and best != "sopdt":
             so = c.fits["sopdt"]
-            if so.bic < c.fits[best].bic - policy.bic_margin and so.params["tau2"] > c.a.dt:
+            # sopdt holds fopdt (tau2 -> 0, no lead): one that fits worse has not reached its optimum
+            if so.bic < c.fits[best].bic - policy.bic_margin and so.params["tau2"] > c.a.dt and \
+                    ("fopdt" not in c.fits or so.rss < c.fits["fopdt"].rss):
                 best = "sopdt"
         chosen.append((c, best))
     if policy.holdout > 0:
