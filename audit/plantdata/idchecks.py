@@ -162,30 +162,37 @@ def step_estimate(op: np.ndarray, pv: np.ndarray, dt: float, points: int = 400) 
     y1, y2 = np.concatenate([[0.0], y[:-1]]), np.concatenate([[0.0, 0.0], y[:-2]])
     i0 = np.clip(k[None, :] - delays[:, None], 0, m - 1)
     i1 = np.clip(i0 - 1, 0, m - 1)
-    X = np.stack([np.broadcast_to(-y1, rows.shape), np.broadcast_to(-y2, rows.shape), u[i0], u[i1], np.ones_like(rows)],
-                 axis=2) * rows[:, :, None]
-    G = np.einsum("dki,dkj->dij", X, X)
-    h = np.einsum("dki,dk->di", X, y[None, :] * rows)
-    sc = np.sqrt(np.maximum(np.einsum("dii->di", G), 1e-300))
+    X = np.empty((len(delays), m, 5))
+    X[:, :, 0], X[:, :, 1], X[:, :, 2], X[:, :, 3], X[:, :, 4] = -y1, -y2, u[i0], u[i1], 1.0
+    X *= rows[:, :, None]
+    Xt = X.transpose(0, 2, 1)
+    G = Xt @ X
+    h = (Xt @ (y[None, :] * rows)[:, :, None])[:, :, 0]
+    sc = np.sqrt(np.maximum(np.diagonal(G, axis1=1, axis2=2), 1e-300))
     try:
         coefs = np.linalg.solve(G / sc[:, :, None] / sc[:, None, :], (h / sc)[:, :, None])[:, :, 0] / sc
     except np.linalg.LinAlgError:
         coefs = np.array([_lsq(X[j][rows[j] > 0], y[rows[j] > 0]) for j in range(len(delays))])
+    # stable fits only, judged by their simulation error (the one-step error hardly sees the input)
+    disc = np.sqrt((coefs[:, 0] * coefs[:, 0] - 4.0 * coefs[:, 1]).astype(complex))
+    radius = np.maximum(np.abs((-coefs[:, 0] + disc) / 2.0), np.abs((-coefs[:, 0] - disc) / 2.0))
+    keep = np.flatnonzero(radius <= 1.0 + 1e-9)
     best = None
-    for nk, coef in zip(delays, coefs):
-        nk = int(nk)
-        a = np.array([1.0, coef[0], coef[1]])
-        if _pole_radius(a) > 1.0 + 1e-9:
-            continue
-        # judged by its simulation error (the one-step error hardly sees the input)
-        sim = np.zeros(m)
-        sim[nk:] = _lfilter(np.ascontiguousarray(coef[2:4]), a, u[:m - nk])
-        sm = sim - sim.mean()
-        ss = float(sm @ sm)
-        e = yc - yc.mean() - (float(sm @ yc) / ss if ss > 0 else 0.0) * sm
-        r = float(e @ e)
-        if best is None or r < best[0]:
-            best = (r, nk, coef)
+    if len(keep):
+        sims = np.zeros((len(keep), m))
+        for j, i in enumerate(keep):
+            nk = int(delays[i])
+            sims[j, nk:] = _lfilter(np.ascontiguousarray(coefs[i, 2:4]), np.array([1.0, coefs[i, 0], coefs[i, 1]]),
+                                    u[:m - nk])
+        sm = sims - sims.mean(axis=1, keepdims=True)
+        ss = np.einsum("ij,ij->i", sm, sm)
+        yz = yc - yc.mean()
+        g = np.where(ss > 0, (sm @ yz) / np.where(ss > 0, ss, 1.0), 0.0)
+        e = yz[None, :] - g[:, None] * sm
+        r = np.einsum("ij,ij->i", e, e)
+        r = np.where(np.isnan(r), np.inf, r)
+        j = int(np.argmin(r))                # the first of equals, as a strict "<" in order of delays
+        best = (float(r[j]), int(delays[keep[j]]), coefs[keep[j]])
     if best is None:
         return np.zeros(max(m, 2)), q * dt
     _, nk, c = best
