@@ -59,33 +59,13 @@ NONLINEAR = {"fopdt": ("tau1", "dead_time"), "sopdt": ("tau1", "tau2", "tau_lead
 
 # --------------------------------------------------------------------------- simulation
 
-def modes(model: str, shape: Sequence[float]) -> list[tuple[float, float]]:
-    """Unit-gain model as a sum of first-order modes.
-
-    Parameters
-    ----------
-    model : str
-        'fopdt', 'sopdt' or 'ipdt'.
-    shape : sequence of float
-        fopdt: (tau1,); sopdt: (tau1, tau2, tau_lead); ipdt: (). [s]
-
-    Returns
-    -------
-    list of tuple
-        (time constant [s], weight [-]) pairs; tau = inf is an integrator.
-    """
-    if model == "fopdt":
-        return [(shape[0], 1.0)]
-    if model == "ipdt":
-        return [(math.inf, 1.0)]
-    t1, t2, ta = shape
-    if abs(t1 - t2) < 1e-4 * max(t1, t2):        # repeated pole: split it slightly (relative error ~1e-12)
-        t2 = t1 * (1.0 - 1e-4)
-    return [(t1, (t1 - ta) / (t1 - t2)), (t2, (ta - t2) / (t1 - t2))]
-
-
 def coefficients(model: str, X: np.ndarray, dt: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Exact difference equations of many parameter vectors at once (see the module notes).
+
+    Each model is a sum of first-order modes (partial fractions): fopdt one mode of weight 1,
+    ipdt an integrator, sopdt the modes tau1 and tau2 of weights (tau1 - tau_lead)/(tau1 - tau2)
+    and (tau_lead - tau2)/(tau1 - tau2) (a repeated pole split by 1e-4 relative, an error of about
+    1e-12), summed over the common denominator.
 
     Parameters
     ----------
@@ -144,7 +124,7 @@ def difference(model: str, shape: Sequence[float], dead_time: float, dt: float
     model : str
         'fopdt', 'sopdt' or 'ipdt'.
     shape : sequence of float
-        As in :func:`modes`. [s]
+        fopdt: (tau1,); sopdt: (tau1, tau2, tau_lead); ipdt: (). [s]
     dead_time : float
         Dead time. [s]
     dt : float
@@ -175,7 +155,7 @@ def run(model: str, shape: Sequence[float], dead_time: float, dt: float, u: np.n
     model : str
         'fopdt', 'sopdt' or 'ipdt'.
     shape : sequence of float
-        As in :func:`modes`. [s]
+        fopdt: (tau1,); sopdt: (tau1, tau2, tau_lead); ipdt: (). [s]
     dead_time : float
         Dead time. [s]
     dt : float
@@ -303,10 +283,6 @@ class Batch:
             w[i, lo:hi] = 1.0
         return cls(u, y, w, np.array([len(r[0]) for r in rows]), np.array([float(r[2]) for r in rows]),
                    model == "ipdt")
-
-    def take(self, idx: np.ndarray) -> "Batch":
-        """The rows ``idx`` as a batch of their own."""
-        return Batch(self.u[idx], self.y[idx], self.w[idx], self.n[idx], self.dt[idx], self.integrating)
 
     def __len__(self) -> int:
         return len(self.n)
