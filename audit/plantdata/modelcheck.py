@@ -28,6 +28,10 @@ For a row with a record holding ``op`` and ``pv``:
    a factor 2, so a factor 1.5 already spends most of it; a dead-time error of 50 % costs
    about 30 degrees of phase margin at a SIMC crossover; time constants matter less.
 
+Records are read in groups of up to :data:`GROUP_SAMPLES` samples and each group is identified
+together (:func:`.identify.identify_many`, over ``run --jobs`` processes); a row's result is the
+same as alone.
+
 A disputed model adds the finding "the data dispute the model ...: re-identify; model-based
 figures rest on a disputed model", the action "re-identify the model" before any other,
 and the loop's Ms, gain and phase margins with the identified model beside the inventory's
@@ -321,7 +325,10 @@ def check_models(audit) -> None:
     for row in rows:
         if audit.models[row.index] is None:
             continue
-        rec = read_row_record(row, folder)
+        try:
+            rec = read_row_record(row, folder)
+        except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:   # a bad record, never the run
+            rec = ModelCheck("record unusable", note=f"data record could not be analysed: {exc}")
         if isinstance(rec, ModelCheck):
             checks[row.index] = rec
             continue
