@@ -450,8 +450,74 @@ def _not_the_valve(h: LoopHealth) -> bool:
             and not (h.valve is not None and h.valve.sticking))
 
 
+@dataclass(frozen=True)
+class HealthOutcome:
+    """One row's loop health as the stage writes it (compact: the record is not inside).
+
+    Attributes
+    ----------
+    columns : dict
+        :data:`HEALTH_COLUMNS` -> value (:func:`health_record`).
+    figures : LoopHealth or None
+        The figures; None when the row had no usable record.
+    plots : HealthPlots or None
+        What the report draws (thinned); None with ``figures``.
+    message : str
+        A note for the row's ``message`` (why its record gives no figures); '' otherwise.
+    retune : bool
+        Oscillating and the valve not suspected: a retune may help.
+    """
+
+    columns: dict
+    figures: LoopHealth | None
+    plots: HealthPlots | None
+    message: str
+    retune: bool
+
+
+def health_outcome(data: OperationData | None, note: str, model, settings: HealthSettings, policy) -> HealthOutcome:
+    """Loop health of one row from its arrays (or the note on why there are none).
+
+    Parameters
+    ----------
+    data : OperationData or None
+        The row's record of normal operation; None when it gives none.
+    note : str
+        What the reader found, or why there is no record.
+    model : audit.loop.LoopModel or None
+        The loop as tuned: its dead time [s] feeds the Harris index and its resonance the words
+        on where an oscillation comes from.
+    settings : HealthSettings
+        From the policy (:func:`settings_from_policy`).
+    policy : audit.policy.Policy
+        Limits for the findings.
+
+    Returns
+    -------
+    HealthOutcome
+    """
+    if data is None:
+        return HealthOutcome(health_record(None, policy, note), None, None, note, False)
+    dead = model.delay if model is not None else None
+    integrating = model is not None and model.process.kind == "ipdt"
+    h = loop_health(data.t, data.sp, data.pv, data.op, data.mode, dead_time_s=dead, integrating=integrating,
+                    settings=settings)
+    a, b = h.stretch
+    where = f"{data.source}: {b - a} samples of {_fmt(h.ts)} s analysed" if b > a else data.source
+    rec = health_record(h, policy, f"{where}{'; ' + note if note else ''}")
+    if model is not None and _not_the_valve(h):
+        words = source_words(model, h.oscillation.period_s)
+        if words:
+            rec["health_findings"] = "; ".join(x for x in (rec["health_findings"], words) if x)
+    return HealthOutcome(rec, h, health_plots(data, h), "", _not_the_valve(h))
+
+
 def add_loop_health(audit, source=None) -> None:
     """Pipeline stage: loop-health columns for every row with a record of normal operation.
+
+    Each row's record is read once, for this stage and the model check together
+    (:func:`audit.plantdata.loopdata.loop_data`, on the run's executor); a row whose analysis
+    raises is recorded as a fault of this stage for that row, the others complete.
 
     Parameters
     ----------
@@ -461,38 +527,39 @@ def add_loop_health(audit, source=None) -> None:
         ``audit.extras['health']`` (row position -> (LoopHealth, HealthPlots)), and the rows
         whose oscillation is not blamed on the valve to ``audit.extras['retune_for_oscillation']``.
     source : callable or None
-        ``source(audit) -> dict`` of row position -> (OperationData or None, note); the
-        records of the inventory's ``data_file`` column when None (:func:`operation_records`).
+        ``source(audit) -> dict`` of row position -> (OperationData or None, note), analysed
+        here; when None, each row's own record (:func:`audit.plantdata.sources.record_for_row`).
     """
     rows = audit.inventory.rows
     policy = audit.inventory.policy
-    settings = settings_from_policy(policy)
-    data = (source or operation_records)(audit)
+    outcomes: dict[int, HealthOutcome] = {}
+    if source is not None:
+        settings = settings_from_policy(policy)
+        for i, (d, note) in source(audit).items():
+            model = audit.models[i] if i < len(audit.models) else None
+            outcomes[i] = health_outcome(d, note, model, settings, policy)
+    else:
+        from ..faults import row_fault_elsewhere
+        from .loopdata import RowFailure, loop_data
+        for i, got in loop_data(audit).items():
+            if isinstance(got.health, RowFailure):
+                row_fault_elsewhere(audit, "health", i, got.health.error, got.health.detail)
+            elif got.health is not None:
+                outcomes[i] = got.health
     recs, extras, retune = [], {}, set()
     for i, row in enumerate(rows):
-        d, note = data.get(i, (None, ""))
-        if d is None:
-            recs.append(health_record(None, policy, note))
-            if note:
-                old = audit.results.at[audit.results.index[i], "message"]
-                old = "" if old is None or (isinstance(old, float) and math.isnan(old)) else str(old)
-                audit.results.at[audit.results.index[i], "message"] = "; ".join(x for x in (old, note) if x)
+        out = outcomes.get(i)
+        if out is None:
+            recs.append(health_record(None, policy, ""))
             continue
-        model = audit.models[i] if i < len(audit.models) else None
-        dead = model.delay if model is not None else None
-        integrating = model is not None and model.process.kind == "ipdt"
-        h = loop_health(d.t, d.sp, d.pv, d.op, d.mode, dead_time_s=dead, integrating=integrating,
-                        settings=settings)
-        a, b = h.stretch
-        where = f"{d.source}: {b - a} samples of {_fmt(h.ts)} s analysed" if b > a else d.source
-        rec = health_record(h, policy, f"{where}{'; ' + note if note else ''}")
-        if model is not None and _not_the_valve(h):
-            words = source_words(model, h.oscillation.period_s)
-            if words:
-                rec["health_findings"] = "; ".join(x for x in (rec["health_findings"], words) if x)
-        recs.append(rec)
-        extras[i] = (h, health_plots(d, h))
-        if _not_the_valve(h):
+        recs.append(out.columns)
+        if out.message:
+            old = audit.results.at[audit.results.index[i], "message"]
+            old = "" if old is None or (isinstance(old, float) and math.isnan(old)) else str(old)
+            audit.results.at[audit.results.index[i], "message"] = "; ".join(x for x in (old, out.message) if x)
+        if out.figures is not None:
+            extras[i] = (out.figures, out.plots)
+        if out.retune:
             retune.add(i)
     res = audit.results
     cols = {}
@@ -560,58 +627,32 @@ def _problems(rec) -> str:
     return "; ".join(shown) + more
 
 
-def operation_records(audit) -> dict:
-    """Records of normal operation of the inventory's rows, as arrays (the reader's adapter).
+def operation_data(found) -> tuple[OperationData | None, str] | None:
+    """A row's record of normal operation as arrays, or the note on why it gives none.
 
-    A row's record (its ``data_file``) is read with :func:`audit.plantdata.records.read_record`
-    and used when it holds ``sp``, ``pv`` and ``op`` (``mode`` where logged). Problems the reader
-    found are named by file and line in the note; a record with nothing usable gives no figures,
-    only the note. The records read are kept in ``audit.extras['plant_records']`` (row position ->
-    Record) for later stages.
+    The record is used when it holds ``sp``, ``pv`` and ``op`` (``mode`` where logged).
+    Problems the reader found are named by file and line in the note; a record with nothing
+    usable gives no arrays, only the note.
 
     Parameters
     ----------
-    audit : Audit
-        The run; paths are confined to the inventory's folder.
+    found : audit.plantdata.sources.RowRecord
+        The row's record as found (:func:`audit.plantdata.sources.record_for_row`).
 
     Returns
     -------
-    dict
-        Row position -> (OperationData or None, note). Rows without a record are left out.
+    tuple of (OperationData or None, str) or None
+        The arrays (None when unusable) and the note; None when the row has no record at all.
     """
-    from pathlib import Path
-
-    from . import records as _records
-
-    inv = audit.inventory
-    policy = inv.policy
-    folder = Path(inv.path).resolve().parent
-    rp = _records.ReadPolicy(max_gap_intervals=policy.max_gap_s, uniform_tolerance=policy.uniform_tolerance,
-                             min_samples=policy.min_samples)
-    kept = audit.extras.setdefault("plant_records", {})
-    out: dict = {}
-    for i, row in enumerate(inv.rows):
-        target = getattr(row, "data_file", None) or row.extras.get("data_file")
-        if not target or not row.valid:
-            continue
-        try:
-            full, shown = _records.confine(folder, str(target))
-        except _records.PathError as exc:
-            out[i] = (None, f"operating record: {exc}")
-            continue
-        rec = kept.get(i)
-        if rec is None:
-            rec = _records.read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, policy=rp, name=shown)
-            kept[i] = rec
-        problems = _problems(rec)
-        missing = [s for s in ("sp", "pv", "op") if s not in rec.signals]
-        if missing:
-            out[i] = (None, f"{shown}: no {', '.join(missing)} column, so no loop-health figures (they need "
-                            f"sp, pv and op of routine operation)" + (f"; {problems}" if problems else ""))
-            continue
-        data = record_arrays(rec)
-        if data is None:
-            out[i] = (None, f"{shown}: nothing usable" + (f"; {problems}" if problems else ""))
-            continue
-        out[i] = (data, problems)
-    return out
+    if found.record is None:
+        return (None, f"operating record: {found.refused}") if found.refused else None
+    rec, shown = found.record, found.name
+    problems = _problems(rec)
+    missing = [s for s in ("sp", "pv", "op") if s not in rec.signals]
+    if missing:
+        return (None, f"{shown}: no {', '.join(missing)} column, so no loop-health figures (they need "
+                      f"sp, pv and op of routine operation)" + (f"; {problems}" if problems else ""))
+    data = record_arrays(rec)
+    if data is None:
+        return None, f"{shown}: nothing usable" + (f"; {problems}" if problems else "")
+    return data, problems
