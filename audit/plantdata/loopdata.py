@@ -50,12 +50,16 @@ class LoopTask:
         The loop as tuned; None when the row was not evaluated (no model check then).
     health : bool
         Run the loop-health analysis (a valid row).
+    check : bool
+        Run the model check (when there is a model; the benchmark turns it off to time the
+        loop health alone).
     """
 
     index: int
     row: Any
     model: Any
     health: bool
+    check: bool = True
 
 
 @dataclass(frozen=True)
@@ -146,6 +150,10 @@ def _peak_mib() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
+def _checks(task: LoopTask) -> bool:
+    return task.check and task.model is not None
+
+
 def analyse_loop(task: LoopTask, shared: LoopSettings) -> LoopData:
     """Read one row's record once; its loop health and its model check on it.
 
@@ -169,7 +177,7 @@ def analyse_loop(task: LoopTask, shared: LoopSettings) -> LoopData:
         raise
     except Exception:  # noqa: BLE001 - contained: both parts of this row fail, the others go on
         bad = _failure()
-        return LoopData(task.index, bad if task.health else None, bad if task.model is not None else None,
+        return LoopData(task.index, bad if task.health else None, bad if _checks(task) else None,
                         cpu_s=time.process_time() - c0, worker=os.getpid(), worker_peak_mib=_peak_mib())
     t1 = time.perf_counter()
     rec = found.record
@@ -186,7 +194,7 @@ def analyse_loop(task: LoopTask, shared: LoopSettings) -> LoopData:
             health = _failure()
     t2 = time.perf_counter()
     check = None
-    if task.model is not None:
+    if _checks(task):
         try:
             try:
                 mc = check_record(task.row, found, shared.policy)
