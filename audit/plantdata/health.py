@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .oscillation import Oscillation, detect_oscillation
+from .oscillation import MIN_CROSSINGS, Oscillation, autocorrelation, detect_oscillation, detrend
 from .use import AUTOMATIC, CASCADE, ModeWords, Use, loop_use
 from .valve import PvOpPoints, ValveTest, assess_valve
 from .variance import MAX_ORDER, HarrisIndex, delay_samples, harris_index
@@ -144,13 +144,19 @@ def loop_health(t: np.ndarray, sp: np.ndarray | None, pv: np.ndarray | None, op:
     -------
     LoopHealth
     """
+    return _loop_health(t, sp, pv, op, mode, dead_time_s, integrating, settings)[0]
+
+
+def _loop_health(t, sp, pv, op, mode, dead_time_s, integrating, settings) -> tuple[LoopHealth, np.ndarray | None]:
+    """:func:`loop_health`, and the autocorrelation of the detrended error it used (None without one),
+    so the report's plot does not compute it again."""
     t = np.asarray(t, dtype=float)
     use = loop_use(t, sp, pv, op, mode, words=settings.words, limit_band_pct=settings.limit_band_pct,
                    sp_change_min_pct=settings.sp_change_min_pct, max_gap_s=settings.max_gap_s)
     notes: list[str] = []
     if sp is None or pv is None or op is None:
         notes.append("sp, pv and op are all needed for the oscillation, valve and variance figures")
-        return LoopHealth(use, None, None, None, math.nan, (0, 0), tuple(notes))
+        return LoopHealth(use, None, None, None, math.nan, (0, 0), tuple(notes)), None
     sp_, pv_, op_ = (np.asarray(x, dtype=float) for x in (sp, pv, op))
     ok = np.isfinite(sp_) & np.isfinite(pv_) & np.isfinite(op_)
     if mode is not None:
@@ -161,10 +167,11 @@ def loop_health(t: np.ndarray, sp: np.ndarray | None, pv: np.ndarray | None, op:
     if b - a < MIN_STRETCH:
         notes.append(f"longest closed-loop stretch has {b - a} samples, fewer than {MIN_STRETCH}: "
                      "no oscillation, valve or variance figures")
-        return LoopHealth(use, None, None, None, math.nan, (a, b), tuple(notes))
+        return LoopHealth(use, None, None, None, math.nan, (a, b), tuple(notes)), None
     ts = float(np.median(np.diff(t[a:b])))
     e = sp_[a:b] - pv_[a:b]
-    osc = detect_oscillation(e, ts, min_amplitude_pct=settings.min_amplitude_pct)
+    acf = autocorrelation(detrend(e)) if e.size >= 4 * MIN_CROSSINGS else None   # as detect_oscillation takes it
+    osc = detect_oscillation(e, ts, min_amplitude_pct=settings.min_amplitude_pct, acf=acf)
     valve = None
     if osc.oscillating:
         valve = assess_valve(op_[a:b], pv_[a:b], ts, osc.period_s, integrating=integrating,
@@ -177,7 +184,7 @@ def loop_health(t: np.ndarray, sp: np.ndarray | None, pv: np.ndarray | None, op:
             var = harris_index(e, delay_samples(dead_time_s, ts), criterion=settings.ar_criterion)
         except ValueError as exc:
             notes.append(f"no Harris index: {exc}")
-    return LoopHealth(use, osc, valve, var, ts, (a, b), tuple(notes))
+    return LoopHealth(use, osc, valve, var, ts, (a, b), tuple(notes)), acf
 
 
 # ----------------------------------------------------------------------------- the pipeline stage
@@ -274,27 +281,32 @@ def settings_from_policy(policy) -> HealthSettings:
 
 
 def _thin_trend(t: np.ndarray, *ys: np.ndarray | None, n: int = TREND_POINTS) -> tuple[np.ndarray, ...]:
-    """Bucketed min/max thinning: every bucket keeps its lowest and highest sample of each signal."""
+    """Bucketed min/max thinning: every bucket keeps its first sample and, of each signal with a
+    finite sample there, its lowest and highest (first occurrence), all buckets at once."""
     size = t.size
     out_ys = [np.full(size, np.nan) if y is None else np.asarray(y, dtype=float) for y in ys]
     if size <= n:
         return (t, *out_ys)
     b = int(math.ceil(size / (n // 2)))
-    idx = []
-    for start in range(0, size, b):
-        seg = slice(start, min(size, start + b))
-        keep = {start}
-        for y in out_ys:
-            part = y[seg]
-            if np.isfinite(part).any():
-                keep.add(start + int(np.nanargmin(part)))
-                keep.add(start + int(np.nanargmax(part)))
-        idx.extend(sorted(keep))
-    sel = np.array(sorted(set(idx)))
+    nb = -(-size // b)
+    starts = np.arange(nb) * b
+    keep = [starts]
+    for y in out_ys:
+        pad = np.full(nb * b, np.nan)
+        pad[:size] = y
+        pad = pad.reshape(nb, b)
+        has = np.isfinite(pad).any(axis=1)
+        nan = np.isnan(pad)
+        # NaN as +inf (-inf) never wins where a bucket has a finite sample: argmin (argmax) then
+        # equals nanargmin (nanargmax), the first occurrence of the extreme
+        lo = np.argmin(np.where(nan, np.inf, pad), axis=1)
+        hi = np.argmax(np.where(nan, -np.inf, pad), axis=1)
+        keep += [(starts + lo)[has], (starts + hi)[has]]
+    sel = np.unique(np.concatenate(keep))
     return (t[sel], *[y[sel] for y in out_ys])
 
 
-def health_plots(data: OperationData, h: LoopHealth) -> HealthPlots:
+def health_plots(data: OperationData, h: LoopHealth, error_acf: np.ndarray | None = None) -> HealthPlots:
     """Trend, pv-op and autocorrelation data of one loop for the report.
 
     Parameters
@@ -303,6 +315,9 @@ def health_plots(data: OperationData, h: LoopHealth) -> HealthPlots:
         The loop's record.
     h : LoopHealth
         Its health figures.
+    error_acf : ndarray or None
+        The autocorrelation of the detrended control error over the analysed stretch, when
+        already computed; computed here when None. [-]
 
     Returns
     -------
@@ -320,7 +335,7 @@ def health_plots(data: OperationData, h: LoopHealth) -> HealthPlots:
         step = max(1, int(math.ceil(keep / PV_OP_POINTS)))     # at most PV_OP_POINTS points, evenly spaced
         pvop = pv_op_points(data.op[b - keep:b:step], data.pv[b - keep:b:step], max_points=keep)
         e = np.asarray(data.sp[a:b], dtype=float) - np.asarray(data.pv[a:b], dtype=float)
-        ac = autocorrelation_for_plot(e, h.ts, periods=6.0, period_s=period)
+        ac = autocorrelation_for_plot(e, h.ts, periods=6.0, period_s=period, acf=error_acf)
         lags, acf, zc = ac.lags_s, ac.values, ac.crossings_s
         if lags.size > 2000:
             step = int(math.ceil(lags.size / 2000))
@@ -500,8 +515,7 @@ def health_outcome(data: OperationData | None, note: str, model, settings: Healt
         return HealthOutcome(health_record(None, policy, note), None, None, note, False)
     dead = model.delay if model is not None else None
     integrating = model is not None and model.process.kind == "ipdt"
-    h = loop_health(data.t, data.sp, data.pv, data.op, data.mode, dead_time_s=dead, integrating=integrating,
-                    settings=settings)
+    h, acf = _loop_health(data.t, data.sp, data.pv, data.op, data.mode, dead, integrating, settings)
     a, b = h.stretch
     where = f"{data.source}: {b - a} samples of {_fmt(h.ts)} s analysed" if b > a else data.source
     rec = health_record(h, policy, f"{where}{'; ' + note if note else ''}")
@@ -509,7 +523,7 @@ def health_outcome(data: OperationData | None, note: str, model, settings: Healt
         words = source_words(model, h.oscillation.period_s)
         if words:
             rec["health_findings"] = "; ".join(x for x in (rec["health_findings"], words) if x)
-    return HealthOutcome(rec, h, health_plots(data, h), "", _not_the_valve(h))
+    return HealthOutcome(rec, h, health_plots(data, h, acf), "", _not_the_valve(h))
 
 
 def add_loop_health(audit, source=None) -> None:
