@@ -24,7 +24,10 @@ Dask is an optional extra (``pip install 'plant-audit[cluster]'``); without it `
 is refused as a user's mistake (exit 2). The workers of a cluster must have the same version
 of plant-audit installed and see the inventory's folder at the same path (a shared file
 system): a chunk carries rows and file names, never the records themselves. Nothing but the
-named scheduler is contacted.
+named scheduler is contacted. Dask's nannies set ``MALLOC_TRIM_THRESHOLD_`` in their workers by
+default, which about doubles the CPU time of numpy-heavy work (large temporaries mapped afresh each
+time); the local cluster is started without it, and an existing cluster is best started so too
+(``distributed.nanny.pre-spawn-environ`` in its Dask configuration).
 
 The frequency evaluation keeps its own fork-based split (:mod:`audit.parallel`): it shares
 the models with its workers at fork time, which this module does not do.
@@ -260,8 +263,15 @@ class DaskExecutor:
 
         from distributed import Client, LocalCluster
         if self.address == LOCAL:
-            self._cluster = LocalCluster(n_workers=self.workers, threads_per_worker=1, processes=True,
-                                         host="127.0.0.1", dashboard_address=None, silence_logs=logging.ERROR)
+            import dask
+            # Dask's nannies set MALLOC_TRIM_THRESHOLD_ for their workers, which turns off glibc's
+            # adaptive mmap threshold: every large numpy temporary is then mapped and faulted in
+            # afresh, which doubled the CPU time of the loop-health analysis (benchmarks/README.md)
+            environ = {k: v for k, v in dict(dask.config.get("distributed.nanny.pre-spawn-environ", {})).items()
+                       if k != "MALLOC_TRIM_THRESHOLD_"}
+            with dask.config.set({"distributed.nanny.pre-spawn-environ": environ}):
+                self._cluster = LocalCluster(n_workers=self.workers, threads_per_worker=1, processes=True,
+                                             host="127.0.0.1", dashboard_address=None, silence_logs=logging.ERROR)
             self._client = Client(self._cluster, set_as_default=False)
         else:
             try:
