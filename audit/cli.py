@@ -102,20 +102,24 @@ def cli() -> None:
 @click.option("--no-pdf", is_flag=True, help="Skip report.pdf.")
 @click.option("--jobs", type=click.IntRange(1, 64), default=1, show_default=True,
               help="Processes for the stages that parallelise.")
+@click.option("--scheduler", default=None, help="Per-loop plant-data work on a Dask cluster: 'local' (a local "
+                                               "cluster of --jobs processes) or tcp://HOST:PORT.")
 @click.option("--history", "history", default=None, help="History database: a path (SQLite) or a URL.")
 @click.option("--no-history", is_flag=True, help="Do not record this audit in the history.")
 @click.option("--quiet", is_flag=True, help="No progress output.")
 @click.option("--force", is_flag=True, help="Write into a folder that holds the inventory, or replace files "
                                             "of the output names that plant-audit did not write.")
-def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, jobs, history, no_history, quiet,
-        force):
+def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, jobs, scheduler, history, no_history,
+        quiet, force):
     """Evaluate every loop of INVENTORY and write results and report into --out."""
+    from .executors import check_scheduler
     from .pipeline import AuditOptions
     from .runner import run_audit
 
+    check_scheduler(scheduler)
     opts = AuditOptions(out_dir=out_dir, site=site, title=title, date=date, paper=paper, detail=detail,
-                        propose=propose, pdf=not no_pdf, jobs=jobs, quiet=quiet, history=history,
-                        record_history=not no_history)
+                        propose=propose, pdf=not no_pdf, jobs=jobs, scheduler=scheduler, quiet=quiet,
+                        history=history, record_history=not no_history)
     audit, written = run_audit(inventory, opts, force=force)
     if not quiet:
         counts = audit.results["status"].value_counts()
@@ -279,4 +283,7 @@ def _internal(exc: BaseException) -> int:
 
 
 if __name__ == "__main__":
-    raise SystemExit(main())
+    # ``python -m audit.cli``: run the package's own module, so that the UserError raised by other
+    # modules (imported from audit.cli) is the class main() catches, not a copy made for __main__
+    from audit.cli import main as _main
+    raise SystemExit(_main())

@@ -87,7 +87,14 @@ class StageFault:
         return f"stage {self.stage} failed: internal fault ({self.error}); figures of this stage missing"
 
 
-def _short(exc: BaseException) -> str:
+def short_error(exc: BaseException) -> str:
+    """``ExceptionType: message`` on one line, at most 200 characters (how a fault is named).
+
+    Parameters
+    ----------
+    exc : BaseException
+        What was raised.
+    """
     text = " ".join(str(exc).split())
     if len(text) > 160:
         text = text[:157] + "..."
@@ -136,7 +143,29 @@ def row_fault(audit, stage: str, index: int, exc: BaseException) -> None:
     """
     if isinstance(exc, user_errors()):
         raise exc
-    faults_of(audit).append(StageFault(stage, _short(exc), (int(index),), traceback.format_exc()))
+    faults_of(audit).append(StageFault(stage, short_error(exc), (int(index),), traceback.format_exc()))
+
+
+def row_fault_elsewhere(audit, stage: str, index: int, error: str, detail: str) -> None:
+    """Record a fault of one row's computation that ran in another process or on another machine.
+
+    The worker caught the exception and sent its description and traceback back as text
+    (:func:`short_error`, :func:`traceback.format_exc`); the stage goes on with the other rows.
+
+    Parameters
+    ----------
+    audit : Audit
+        The run.
+    stage : str
+        The stage's name.
+    index : int
+        The row (0-based inventory index).
+    error : str
+        ``ExceptionType: short message``.
+    detail : str
+        The worker's traceback.
+    """
+    faults_of(audit).append(StageFault(stage, error, (int(index),), detail))
 
 
 def _failed(audit) -> dict[str, StageFault]:
@@ -171,7 +200,7 @@ def run_contained(audit, name: str, fn: Callable, done: list[str]) -> None:
         except user_errors():
             raise
         except Exception as exc:  # noqa: BLE001 - contained: recorded with its traceback, the run goes on
-            faults_of(audit).append(StageFault(name, _short(exc), None, traceback.format_exc()))
+            faults_of(audit).append(StageFault(name, short_error(exc), None, traceback.format_exc()))
     _unjudge(audit)
 
 

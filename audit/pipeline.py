@@ -32,6 +32,7 @@ class AuditOptions:
     propose: str = "failing"         # failing | all | none
     pdf: bool = True
     jobs: int = 1
+    scheduler: str | None = None     # Dask: "local" or tcp://host:port (audit.executors)
     quiet: bool = False
     history: str | None = None       # path or URL; None -> default beside the inventory
     record_history: bool = True
@@ -49,6 +50,7 @@ class Audit:
     tool_version: str = __version__
     extras: dict[str, Any] = field(default_factory=dict)   # per-stage side data (records, proposals, ...)
     timings: dict[str, float] = field(default_factory=dict)  # stage -> wall time [s]
+    executor: Any = None    # where per-loop work runs during run_stages (audit.executors); None: here
 
     @property
     def meta(self) -> dict[str, Any]:
@@ -239,6 +241,8 @@ def run_stages(audit: "Audit", progress: Callable[[str], None] | None = None) ->
     audit : Audit
         The run (from :func:`new_audit`); each stage adds to it in place, and the
         stage's wall time [s] goes into ``audit.timings``. Faults go to ``audit.extras['faults']``.
+        Per-loop work runs on ``audit.executor``, opened here from ``--jobs``/``--scheduler``
+        (:func:`audit.executors.open_executor`) and closed after the last stage.
     progress : callable or None
         Called with each stage's name before the stage runs; nothing when None.
     """
@@ -247,13 +251,20 @@ def run_stages(audit: "Audit", progress: Callable[[str], None] | None = None) ->
 
     from .faults import finish, run_contained
 
+    from .executors import open_executor
+
     done: list[str] = []
-    for name, mod, fn in STAGES:
-        if progress:
-            progress(name)
-        t0 = time.perf_counter()
-        run_contained(audit, name, getattr(importlib.import_module(mod), fn), done)
-        audit.timings[name] = time.perf_counter() - t0
+    audit.executor = open_executor(audit.options.jobs, audit.options.scheduler)
+    try:
+        for name, mod, fn in STAGES:
+            if progress:
+                progress(name)
+            t0 = time.perf_counter()
+            run_contained(audit, name, getattr(importlib.import_module(mod), fn), done)
+            audit.timings[name] = time.perf_counter() - t0
+    finally:
+        audit.executor.close()
+        audit.executor = None
     finish(audit)
 
 

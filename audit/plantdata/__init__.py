@@ -12,4 +12,8 @@ use, oscillation, valve, variance
     valves (curve fitting, cross-correlation); the minimum-variance (Harris) index.
 health
     All of them on one record (:func:`~.health.loop_health`) and the pipeline stage.
+sources, loopdata
+    Where a row's record comes from (its ``data_file`` or a site export,
+    :func:`~.sources.record_for_row`), and the per-loop task that reads it once for the loop
+    health and the model check (:func:`~.loopdata.loop_data`, on the run's executor).
 """

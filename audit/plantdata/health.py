@@ -16,7 +16,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .oscillation import Oscillation, detect_oscillation
+from .oscillation import MIN_CROSSINGS, Oscillation, autocorrelation, detect_oscillation, detrend
 from .use import AUTOMATIC, CASCADE, ModeWords, Use, loop_use
 from .valve import PvOpPoints, ValveTest, assess_valve
 from .variance import MAX_ORDER, HarrisIndex, delay_samples, harris_index
@@ -144,13 +144,19 @@ def loop_health(t: np.ndarray, sp: np.ndarray | None, pv: np.ndarray | None, op:
     -------
     LoopHealth
     """
+    return _loop_health(t, sp, pv, op, mode, dead_time_s, integrating, settings)[0]
+
+
+def _loop_health(t, sp, pv, op, mode, dead_time_s, integrating, settings) -> tuple[LoopHealth, np.ndarray | None]:
+    """:func:`loop_health`, and the autocorrelation of the detrended error it used (None without one),
+    so the report's plot does not compute it again."""
     t = np.asarray(t, dtype=float)
     use = loop_use(t, sp, pv, op, mode, words=settings.words, limit_band_pct=settings.limit_band_pct,
                    sp_change_min_pct=settings.sp_change_min_pct, max_gap_s=settings.max_gap_s)
     notes: list[str] = []
     if sp is None or pv is None or op is None:
         notes.append("sp, pv and op are all needed for the oscillation, valve and variance figures")
-        return LoopHealth(use, None, None, None, math.nan, (0, 0), tuple(notes))
+        return LoopHealth(use, None, None, None, math.nan, (0, 0), tuple(notes)), None
     sp_, pv_, op_ = (np.asarray(x, dtype=float) for x in (sp, pv, op))
     ok = np.isfinite(sp_) & np.isfinite(pv_) & np.isfinite(op_)
     if mode is not None:
@@ -161,10 +167,11 @@ def loop_health(t: np.ndarray, sp: np.ndarray | None, pv: np.ndarray | None, op:
     if b - a < MIN_STRETCH:
         notes.append(f"longest closed-loop stretch has {b - a} samples, fewer than {MIN_STRETCH}: "
                      "no oscillation, valve or variance figures")
-        return LoopHealth(use, None, None, None, math.nan, (a, b), tuple(notes))
+        return LoopHealth(use, None, None, None, math.nan, (a, b), tuple(notes)), None
     ts = float(np.median(np.diff(t[a:b])))
     e = sp_[a:b] - pv_[a:b]
-    osc = detect_oscillation(e, ts, min_amplitude_pct=settings.min_amplitude_pct)
+    acf = autocorrelation(detrend(e)) if e.size >= 4 * MIN_CROSSINGS else None   # as detect_oscillation takes it
+    osc = detect_oscillation(e, ts, min_amplitude_pct=settings.min_amplitude_pct, acf=acf)
     valve = None
     if osc.oscillating:
         valve = assess_valve(op_[a:b], pv_[a:b], ts, osc.period_s, integrating=integrating,
@@ -177,7 +184,7 @@ def loop_health(t: np.ndarray, sp: np.ndarray | None, pv: np.ndarray | None, op:
             var = harris_index(e, delay_samples(dead_time_s, ts), criterion=settings.ar_criterion)
         except ValueError as exc:
             notes.append(f"no Harris index: {exc}")
-    return LoopHealth(use, osc, valve, var, ts, (a, b), tuple(notes))
+    return LoopHealth(use, osc, valve, var, ts, (a, b), tuple(notes)), acf
 
 
 # ----------------------------------------------------------------------------- the pipeline stage
@@ -274,27 +281,32 @@ def settings_from_policy(policy) -> HealthSettings:
 
 
 def _thin_trend(t: np.ndarray, *ys: np.ndarray | None, n: int = TREND_POINTS) -> tuple[np.ndarray, ...]:
-    """Bucketed min/max thinning: every bucket keeps its lowest and highest sample of each signal."""
+    """Bucketed min/max thinning: every bucket keeps its first sample and, of each signal with a
+    finite sample there, its lowest and highest (first occurrence), all buckets at once."""
     size = t.size
     out_ys = [np.full(size, np.nan) if y is None else np.asarray(y, dtype=float) for y in ys]
     if size <= n:
         return (t, *out_ys)
     b = int(math.ceil(size / (n // 2)))
-    idx = []
-    for start in range(0, size, b):
-        seg = slice(start, min(size, start + b))
-        keep = {start}
-        for y in out_ys:
-            part = y[seg]
-            if np.isfinite(part).any():
-                keep.add(start + int(np.nanargmin(part)))
-                keep.add(start + int(np.nanargmax(part)))
-        idx.extend(sorted(keep))
-    sel = np.array(sorted(set(idx)))
+    nb = -(-size // b)
+    starts = np.arange(nb) * b
+    keep = [starts]
+    for y in out_ys:
+        pad = np.full(nb * b, np.nan)
+        pad[:size] = y
+        pad = pad.reshape(nb, b)
+        has = np.isfinite(pad).any(axis=1)
+        nan = np.isnan(pad)
+        # NaN as +inf (-inf) never wins where a bucket has a finite sample: argmin (argmax) then
+        # equals nanargmin (nanargmax), the first occurrence of the extreme
+        lo = np.argmin(np.where(nan, np.inf, pad), axis=1)
+        hi = np.argmax(np.where(nan, -np.inf, pad), axis=1)
+        keep += [(starts + lo)[has], (starts + hi)[has]]
+    sel = np.unique(np.concatenate(keep))
     return (t[sel], *[y[sel] for y in out_ys])
 
 
-def health_plots(data: OperationData, h: LoopHealth) -> HealthPlots:
+def health_plots(data: OperationData, h: LoopHealth, error_acf: np.ndarray | None = None) -> HealthPlots:
     """Trend, pv-op and autocorrelation data of one loop for the report.
 
     Parameters
@@ -303,6 +315,9 @@ def health_plots(data: OperationData, h: LoopHealth) -> HealthPlots:
         The loop's record.
     h : LoopHealth
         Its health figures.
+    error_acf : ndarray or None
+        The autocorrelation of the detrended control error over the analysed stretch, when
+        already computed; computed here when None. [-]
 
     Returns
     -------
@@ -320,7 +335,7 @@ def health_plots(data: OperationData, h: LoopHealth) -> HealthPlots:
         step = max(1, int(math.ceil(keep / PV_OP_POINTS)))     # at most PV_OP_POINTS points, evenly spaced
         pvop = pv_op_points(data.op[b - keep:b:step], data.pv[b - keep:b:step], max_points=keep)
         e = np.asarray(data.sp[a:b], dtype=float) - np.asarray(data.pv[a:b], dtype=float)
-        ac = autocorrelation_for_plot(e, h.ts, periods=6.0, period_s=period)
+        ac = autocorrelation_for_plot(e, h.ts, periods=6.0, period_s=period, acf=error_acf)
         lags, acf, zc = ac.lags_s, ac.values, ac.crossings_s
         if lags.size > 2000:
             step = int(math.ceil(lags.size / 2000))
@@ -450,8 +465,73 @@ def _not_the_valve(h: LoopHealth) -> bool:
             and not (h.valve is not None and h.valve.sticking))
 
 
+@dataclass(frozen=True)
+class HealthOutcome:
+    """One row's loop health as the stage writes it (compact: the record is not inside).
+
+    Attributes
+    ----------
+    columns : dict
+        :data:`HEALTH_COLUMNS` -> value (:func:`health_record`).
+    figures : LoopHealth or None
+        The figures; None when the row had no usable record.
+    plots : HealthPlots or None
+        What the report draws (thinned); None with ``figures``.
+    message : str
+        A note for the row's ``message`` (why its record gives no figures); '' otherwise.
+    retune : bool
+        Oscillating and the valve not suspected: a retune may help.
+    """
+
+    columns: dict
+    figures: LoopHealth | None
+    plots: HealthPlots | None
+    message: str
+    retune: bool
+
+
+def health_outcome(data: OperationData | None, note: str, model, settings: HealthSettings, policy) -> HealthOutcome:
+    """Loop health of one row from its arrays (or the note on why there are none).
+
+    Parameters
+    ----------
+    data : OperationData or None
+        The row's record of normal operation; None when it gives none.
+    note : str
+        What the reader found, or why there is no record.
+    model : audit.loop.LoopModel or None
+        The loop as tuned: its dead time [s] feeds the Harris index and its resonance the words
+        on where an oscillation comes from.
+    settings : HealthSettings
+        From the policy (:func:`settings_from_policy`).
+    policy : audit.policy.Policy
+        Limits for the findings.
+
+    Returns
+    -------
+    HealthOutcome
+    """
+    if data is None:
+        return HealthOutcome(health_record(None, policy, note), None, None, note, False)
+    dead = model.delay if model is not None else None
+    integrating = model is not None and model.process.kind == "ipdt"
+    h, acf = _loop_health(data.t, data.sp, data.pv, data.op, data.mode, dead, integrating, settings)
+    a, b = h.stretch
+    where = f"{data.source}: {b - a} samples of {_fmt(h.ts)} s analysed" if b > a else data.source
+    rec = health_record(h, policy, f"{where}{'; ' + note if note else ''}")
+    if model is not None and _not_the_valve(h):
+        words = source_words(model, h.oscillation.period_s)
+        if words:
+            rec["health_findings"] = "; ".join(x for x in (rec["health_findings"], words) if x)
+    return HealthOutcome(rec, h, health_plots(data, h, acf), "", _not_the_valve(h))
+
+
 def add_loop_health(audit, source=None) -> None:
     """Pipeline stage: loop-health columns for every row with a record of normal operation.
+
+    Each row's record is read once, for this stage and the model check together
+    (:func:`audit.plantdata.loopdata.loop_data`, on the run's executor); a row whose analysis
+    raises is recorded as a fault of this stage for that row, the others complete.
 
     Parameters
     ----------
@@ -461,38 +541,39 @@ def add_loop_health(audit, source=None) -> None:
         ``audit.extras['health']`` (row position -> (LoopHealth, HealthPlots)), and the rows
         whose oscillation is not blamed on the valve to ``audit.extras['retune_for_oscillation']``.
     source : callable or None
-        ``source(audit) -> dict`` of row position -> (OperationData or None, note); the
-        records of the inventory's ``data_file`` column when None (:func:`operation_records`).
+        ``source(audit) -> dict`` of row position -> (OperationData or None, note), analysed
+        here; when None, each row's own record (:func:`audit.plantdata.sources.record_for_row`).
     """
     rows = audit.inventory.rows
     policy = audit.inventory.policy
-    settings = settings_from_policy(policy)
-    data = (source or operation_records)(audit)
+    outcomes: dict[int, HealthOutcome] = {}
+    if source is not None:
+        settings = settings_from_policy(policy)
+        for i, (d, note) in source(audit).items():
+            model = audit.models[i] if i < len(audit.models) else None
+            outcomes[i] = health_outcome(d, note, model, settings, policy)
+    else:
+        from ..faults import row_fault_elsewhere
+        from .loopdata import RowFailure, loop_data
+        for i, got in loop_data(audit).items():
+            if isinstance(got.health, RowFailure):
+                row_fault_elsewhere(audit, "health", i, got.health.error, got.health.detail)
+            elif got.health is not None:
+                outcomes[i] = got.health
     recs, extras, retune = [], {}, set()
     for i, row in enumerate(rows):
-        d, note = data.get(i, (None, ""))
-        if d is None:
-            recs.append(health_record(None, policy, note))
-            if note:
-                old = audit.results.at[audit.results.index[i], "message"]
-                old = "" if old is None or (isinstance(old, float) and math.isnan(old)) else str(old)
-                audit.results.at[audit.results.index[i], "message"] = "; ".join(x for x in (old, note) if x)
+        out = outcomes.get(i)
+        if out is None:
+            recs.append(health_record(None, policy, ""))
             continue
-        model = audit.models[i] if i < len(audit.models) else None
-        dead = model.delay if model is not None else None
-        integrating = model is not None and model.process.kind == "ipdt"
-        h = loop_health(d.t, d.sp, d.pv, d.op, d.mode, dead_time_s=dead, integrating=integrating,
-                        settings=settings)
-        a, b = h.stretch
-        where = f"{d.source}: {b - a} samples of {_fmt(h.ts)} s analysed" if b > a else d.source
-        rec = health_record(h, policy, f"{where}{'; ' + note if note else ''}")
-        if model is not None and _not_the_valve(h):
-            words = source_words(model, h.oscillation.period_s)
-            if words:
-                rec["health_findings"] = "; ".join(x for x in (rec["health_findings"], words) if x)
-        recs.append(rec)
-        extras[i] = (h, health_plots(d, h))
-        if _not_the_valve(h):
+        recs.append(out.columns)
+        if out.message:
+            old = audit.results.at[audit.results.index[i], "message"]
+            old = "" if old is None or (isinstance(old, float) and math.isnan(old)) else str(old)
+            audit.results.at[audit.results.index[i], "message"] = "; ".join(x for x in (old, out.message) if x)
+        if out.figures is not None:
+            extras[i] = (out.figures, out.plots)
+        if out.retune:
             retune.add(i)
     res = audit.results
     cols = {}
@@ -560,58 +641,32 @@ def _problems(rec) -> str:
     return "; ".join(shown) + more
 
 
-def operation_records(audit) -> dict:
-    """Records of normal operation of the inventory's rows, as arrays (the reader's adapter).
+def operation_data(found) -> tuple[OperationData | None, str] | None:
+    """A row's record of normal operation as arrays, or the note on why it gives none.
 
-    A row's record (its ``data_file``) is read with :func:`audit.plantdata.records.read_record`
-    and used when it holds ``sp``, ``pv`` and ``op`` (``mode`` where logged). Problems the reader
-    found are named by file and line in the note; a record with nothing usable gives no figures,
-    only the note. The records read are kept in ``audit.extras['plant_records']`` (row position ->
-    Record) for later stages.
+    The record is used when it holds ``sp``, ``pv`` and ``op`` (``mode`` where logged).
+    Problems the reader found are named by file and line in the note; a record with nothing
+    usable gives no arrays, only the note.
 
     Parameters
     ----------
-    audit : Audit
-        The run; paths are confined to the inventory's folder.
+    found : audit.plantdata.sources.RowRecord
+        The row's record as found (:func:`audit.plantdata.sources.record_for_row`).
 
     Returns
     -------
-    dict
-        Row position -> (OperationData or None, note). Rows without a record are left out.
+    tuple of (OperationData or None, str) or None
+        The arrays (None when unusable) and the note; None when the row has no record at all.
     """
-    from pathlib import Path
-
-    from . import records as _records
-
-    inv = audit.inventory
-    policy = inv.policy
-    folder = Path(inv.path).resolve().parent
-    rp = _records.ReadPolicy(max_gap_intervals=policy.max_gap_s, uniform_tolerance=policy.uniform_tolerance,
-                             min_samples=policy.min_samples)
-    kept = audit.extras.setdefault("plant_records", {})
-    out: dict = {}
-    for i, row in enumerate(inv.rows):
-        target = getattr(row, "data_file", None) or row.extras.get("data_file")
-        if not target or not row.valid:
-            continue
-        try:
-            full, shown = _records.confine(folder, str(target))
-        except _records.PathError as exc:
-            out[i] = (None, f"operating record: {exc}")
-            continue
-        rec = kept.get(i)
-        if rec is None:
-            rec = _records.read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, policy=rp, name=shown)
-            kept[i] = rec
-        problems = _problems(rec)
-        missing = [s for s in ("sp", "pv", "op") if s not in rec.signals]
-        if missing:
-            out[i] = (None, f"{shown}: no {', '.join(missing)} column, so no loop-health figures (they need "
-                            f"sp, pv and op of routine operation)" + (f"; {problems}" if problems else ""))
-            continue
-        data = record_arrays(rec)
-        if data is None:
-            out[i] = (None, f"{shown}: nothing usable" + (f"; {problems}" if problems else ""))
-            continue
-        out[i] = (data, problems)
-    return out
+    if found.record is None:
+        return (None, f"operating record: {found.refused}") if found.refused else None
+    rec, shown = found.record, found.name
+    problems = _problems(rec)
+    missing = [s for s in ("sp", "pv", "op") if s not in rec.signals]
+    if missing:
+        return (None, f"{shown}: no {', '.join(missing)} column, so no loop-health figures (they need "
+                      f"sp, pv and op of routine operation)" + (f"; {problems}" if problems else ""))
+    data = record_arrays(rec)
+    if data is None:
+        return None, f"{shown}: nothing usable" + (f"; {problems}" if problems else "")
+    return data, problems

@@ -28,10 +28,6 @@ For a row with a record holding ``op`` and ``pv``:
    a factor 2, so a factor 1.5 already spends most of it; a dead-time error of 50 % costs
    about 30 degrees of phase margin at a SIMC crossover; time constants matter less.
 
-Records are read in groups of up to :data:`GROUP_SAMPLES` samples and each group is identified
-together (:func:`.identify.identify_many`, over ``run --jobs`` processes); a row's result is the
-same as alone.
-
 A disputed model adds the finding "the data dispute the model ...: re-identify; model-based
 figures rest on a disputed model", the action "re-identify the model" before any other,
 and the loop's Ms, gain and phase margins with the identified model beside the inventory's
@@ -48,8 +44,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .identify import Identification, IdentifyPolicy, _run, identify_many, identify_record, nrmse_fit
-from .records import PathError, confine, read_record
+from .identify import Identification, IdentifyPolicy, _run, identify_record, nrmse_fit
+from .records import ReadPolicy
+from .sources import RowRecord, has_source, record_for_row
 
 MODELCHECK_COLUMNS = ("model_check", "model_fit_pct", "id_model", "id_gain", "id_gain_ci95", "id_tau1_s",
                       "id_tau1_ci95_s", "id_tau2_s", "id_lead_s", "id_dead_time_s", "id_dead_time_ci95_s",
@@ -57,8 +54,62 @@ MODELCHECK_COLUMNS = ("model_check", "model_fit_pct", "id_model", "id_gain", "id
                       "id_stable", "id_ms", "id_gm_db", "id_pm_deg", "data_note")
 TEXT_COLUMNS = ("model_check", "id_model", "data_note", "id_stable")
 SIMULATED = ("fopdt", "sopdt", "ipdt")
-#: Samples of records held at once before they are identified together (bounds the memory). [-]
-GROUP_SAMPLES = 20_000_000
+#: Most samples of each line of the overlay plot (data, identified model, inventory model). [-]
+TRACE_POINTS = 600
+
+
+@dataclass(frozen=True)
+class CheckTrace:
+    """The overlay plot's data, thinned to every k-th sample (at most :data:`TRACE_POINTS`).
+
+    Attributes
+    ----------
+    t : ndarray
+        Times of the samples kept. [s]
+    pv : ndarray
+        Logged pv at those times (after spike removal). [% of range]
+    identified, inventory : ndarray or None
+        The identified and the inventory model's pv there; None when absent. [% of range]
+    t_first, t_last : float
+        First and last time of the whole segment. [s]
+    lo, hi : float
+        Lowest and highest value of the three lines over the whole segment. [% of range]
+    """
+
+    t: np.ndarray
+    pv: np.ndarray
+    identified: np.ndarray | None
+    inventory: np.ndarray | None
+    t_first: float
+    t_last: float
+    lo: float
+    hi: float
+
+
+def check_trace(t: np.ndarray, pv: np.ndarray, identified: np.ndarray | None,
+                inventory: np.ndarray | None) -> CheckTrace:
+    """Thin the overlay's lines to every k-th sample, keeping the whole segment's range.
+
+    Parameters
+    ----------
+    t : ndarray
+        Time. [s]
+    pv : ndarray
+        Logged pv. [% of range]
+    identified, inventory : ndarray or None
+        The identified and the inventory model's pv, as long as ``pv``. [% of range]
+
+    Returns
+    -------
+    CheckTrace
+    """
+    n = len(t)
+    idx = np.arange(0, n, max(1, int(math.ceil(n / TRACE_POINTS))))
+    series = [s for s in (pv, identified, inventory) if s is not None]
+    lo = float(min(np.nanmin(s) for s in series))
+    hi = float(max(np.nanmax(s) for s in series))
+    return CheckTrace(t[idx], pv[idx], None if identified is None else identified[idx],
+                      None if inventory is None else inventory[idx], float(t[0]), float(t[-1]), lo, hi)
 
 
 @dataclass(frozen=True)
@@ -85,6 +136,8 @@ class ModelCheck:
         Why disputed, in words with values.
     note : str
         What was done or why not.
+    trace : CheckTrace or None
+        The overlay plot's data, thinned (set by :meth:`compact`).
     """
 
     verdict: str
@@ -96,6 +149,32 @@ class ModelCheck:
     tau_ratio: float = float("nan")
     reasons: tuple[str, ...] = ()
     note: str = ""
+    trace: CheckTrace | None = None
+
+    def compact(self) -> "ModelCheck":
+        """The same check without the record's samples: the overlay thinned into ``trace``.
+
+        What crosses a process boundary and what the run keeps: the identification keeps its
+        figures, parameters and notes, its arrays and each fit's ``yhat`` are emptied, and
+        ``model_yhat`` is dropped.
+
+        Returns
+        -------
+        ModelCheck
+        """
+        ident = self.identification
+        if ident is None:
+            return replace(self, model_yhat=None)
+        trace = self.trace
+        if trace is None and len(ident.pv):
+            b = ident.best
+            inv = self.model_yhat if self.model_yhat is not None and len(self.model_yhat) == len(ident.pv) else None
+            trace = check_trace(ident.t, ident.pv, b.yhat if b is not None else None, inv)
+        empty = np.zeros(0)
+        fits = {k: replace(f, yhat=empty) for k, f in ident.fits.items()}
+        best = None if ident.best is None else replace(ident.best, yhat=empty)
+        return replace(self, model_yhat=None, trace=trace,
+                       identification=replace(ident, best=best, fits=fits, t=empty, pv=empty, op=empty))
 
 
 def row_modes(row) -> list[tuple[float, float]]:
@@ -162,15 +241,41 @@ def _fit_offsets(row, y: np.ndarray, s: np.ndarray, dt: float) -> np.ndarray:
     return s + X @ coef
 
 
-def check_row(row, folder: Path, policy, id_policy: IdentifyPolicy = IdentifyPolicy()) -> ModelCheck:
-    """Check one row's model against its record.
+def check_row(row, folder: Path, policy, id_policy: IdentifyPolicy = IdentifyPolicy(),
+              read_policy: ReadPolicy = ReadPolicy(), export=None) -> ModelCheck:
+    """Check one row's model against its record (read here; see :func:`check_record`).
 
     Parameters
     ----------
     row : LoopRow
-        With ``data_file`` set.
+        With ``data_file`` set (or a tag in ``export``).
     folder : Path
         The inventory's folder (the record must lie inside it).
+    policy : Policy
+        ``model_*`` thresholds.
+    id_policy : IdentifyPolicy
+        Identification settings.
+    read_policy : ReadPolicy
+        The reader's settings.
+    export : object or None
+        The site's export source (:mod:`audit.plantdata.sources`).
+
+    Returns
+    -------
+    ModelCheck
+    """
+    return check_record(row, record_for_row(row, folder, read_policy, export), policy, id_policy)
+
+
+def check_record(row, found: RowRecord, policy, id_policy: IdentifyPolicy = IdentifyPolicy()) -> ModelCheck:
+    """Check one row's model against its record, already read.
+
+    Parameters
+    ----------
+    row : LoopRow
+        The row (model type and parameters).
+    found : RowRecord
+        Its record (:func:`audit.plantdata.sources.record_for_row`).
     policy : Policy
         ``model_*`` thresholds.
     id_policy : IdentifyPolicy
@@ -179,57 +284,16 @@ def check_row(row, folder: Path, policy, id_policy: IdentifyPolicy = IdentifyPol
     Returns
     -------
     ModelCheck
+        With the full arrays; :meth:`ModelCheck.compact` thins them.
     """
-    rec = read_row_record(row, folder)
-    if isinstance(rec, ModelCheck):
-        return rec
-    return judge_row(row, rec, identify_record(rec, id_policy), policy)
-
-
-def read_row_record(row, folder: Path):
-    """The row's record, read, or the ``record unusable`` check that says why not.
-
-    Parameters
-    ----------
-    row : LoopRow
-        With ``data_file`` set.
-    folder : Path
-        The inventory's folder (the record must lie inside it).
-
-    Returns
-    -------
-    Record or ModelCheck
-    """
-    try:
-        full, shown = confine(folder, row.data_file)
-    except PathError as exc:
-        return ModelCheck("record unusable", note=f"data record: {exc}")
-    rec = read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, name=shown)
+    if found.record is None:
+        return ModelCheck("record unusable", note=f"data record: {found.refused or 'none found'}")
+    rec, shown = found.record, found.name
     if not rec.usable or "pv" not in rec.signals or "op" not in rec.signals:
         why = [str(n) for n in rec.notes_of("file", "header", "short")] or \
             [f"{shown}: needs op and pv columns"]
         return ModelCheck("record unusable", note="data record: " + "; ".join(why[:5]))
-    return rec
-
-
-def judge_row(row, rec, ident: Identification, policy) -> ModelCheck:
-    """The row's model against its record and the model re-identified from it.
-
-    Parameters
-    ----------
-    row : LoopRow
-        With ``data_file`` set.
-    rec : Record
-        Its record (holding op and pv).
-    ident : Identification
-        The identification from ``rec``.
-    policy : Policy
-        ``model_*`` thresholds.
-
-    Returns
-    -------
-    ModelCheck
-    """
+    ident = identify_record(rec, id_policy)
     seg = rec.longest()
     op, pv, dt = seg.values["op"], seg.values["pv"], seg.dt
     if row.model not in SIMULATED or row.gain is None:
@@ -282,10 +346,14 @@ def _identified_row(row, b):
 def check_models(audit) -> None:
     """Pipeline stage: the model check of every row with a ``data_file`` (see the module notes).
 
-    Adds :data:`MODELCHECK_COLUMNS`; stores each :class:`ModelCheck` in
-    ``audit.extras['model_checks'][row.index]``; for disputed models adds the finding and the
-    action "re-identify the model" (not when the loop-health stage suspects the valve: then the
-    data cannot judge the model, and the finding says so). Run after the priority stage.
+    The checks themselves ran with the loop health, on the same record read once
+    (:func:`audit.plantdata.loopdata.loop_data`); this stage puts them into the results. Adds
+    :data:`MODELCHECK_COLUMNS`; stores each :class:`ModelCheck` in
+    ``audit.extras['model_checks'][row.index]`` (compact: the overlay thinned, no samples); for
+    disputed models adds the finding and the action "re-identify the model" (not when the
+    loop-health stage suspects the valve: then the data cannot judge the model, and the finding
+    says so). A row whose check raised is recorded as a fault of this stage for that row. Run
+    after the priority stage.
 
     Parameters
     ----------
@@ -295,12 +363,16 @@ def check_models(audit) -> None:
     from ..frequency import evaluate
     from ..loop import model_from_row
 
+    from ..faults import row_fault_elsewhere
+    from .loopdata import RowFailure, loop_data
+    from .sources import export_of
+
     res = audit.results
     inv = audit.inventory
-    rows = [r for r in inv.rows if getattr(r, "data_file", None)]
+    export = export_of(audit)
+    rows = [r for r in inv.rows if has_source(r, export)]
     if not rows:
         return
-    folder = Path(inv.path).resolve().parent
     for c in MODELCHECK_COLUMNS:
         if c not in res.columns:
             res[c] = pd.Series([None if c == "id_stable" else ""] * len(res) if c in TEXT_COLUMNS else np.nan,
@@ -308,44 +380,19 @@ def check_models(audit) -> None:
                                dtype=object if c in TEXT_COLUMNS else float)
     store = audit.extras.setdefault("model_checks", {})
     id_rows, id_models = [], []
-    # records read in groups (memory bounded), each group identified together (batched, over --jobs processes)
-    checks: dict[int, ModelCheck] = {}
-    group: list = []
-
-    def flush() -> None:
-        idents = identify_many([rec for _, rec in group], IdentifyPolicy(), jobs=getattr(audit.options, "jobs", 1))
-        for (row, rec), ident in zip(group, idents):
-            try:
-                checks[row.index] = judge_row(row, rec, ident, inv.policy)
-            except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:   # a bad record, never the run
-                checks[row.index] = ModelCheck("record unusable", note=f"data record could not be analysed: {exc}")
-        group.clear()
-
-    held = 0
-    for row in rows:
-        if audit.models[row.index] is None:
-            continue
-        try:
-            rec = read_row_record(row, folder)
-        except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:   # a bad record, never the run
-            rec = ModelCheck("record unusable", note=f"data record could not be analysed: {exc}")
-        if isinstance(rec, ModelCheck):
-            checks[row.index] = rec
-            continue
-        group.append((row, rec))
-        held += sum(sg.n for sg in rec.segments)
-        if held > GROUP_SAMPLES:
-            flush()
-            held = 0
-    if group:
-        flush()
     for row in rows:
         label = res.index[row.index]
         if audit.models[row.index] is None:
             res.at[label, "model_check"] = "not checked"
             res.at[label, "data_note"] = "row not evaluated: see message"
             continue
-        mc = checks[row.index]
+        got = loop_data(audit).get(row.index)
+        mc = got.check if got is not None else None
+        if isinstance(mc, RowFailure):
+            row_fault_elsewhere(audit, "modelcheck", row.index, mc.error, mc.detail)
+            continue
+        if mc is None:
+            mc = ModelCheck("not checked", note="no data record found")
         store[row.index] = mc
         res.at[label, "model_check"] = mc.verdict
         res.at[label, "model_fit_pct"] = mc.model_fit_pct

@@ -329,7 +329,7 @@ def detect_oscillation(e: np.ndarray, ts: float, *, min_amplitude_pct: float = 0
 
 
 def autocorrelation_for_plot(e: np.ndarray, ts: float, periods: float = 6.0,
-                             period_s: float = math.nan) -> Autocorrelation:
+                             period_s: float = math.nan, acf: np.ndarray | None = None) -> Autocorrelation:
     """The autocorrelation of the control error over a few periods, with the crossings used.
 
     Parameters
@@ -342,13 +342,15 @@ def autocorrelation_for_plot(e: np.ndarray, ts: float, periods: float = 6.0,
         How many oscillation periods of lag to keep (half the record when there is no period). [-]
     period_s : float
         Detected period; NaN when none. [s]
+    acf : ndarray or None
+        The autocorrelation of the detrended ``e`` when already computed (as
+        :func:`detect_oscillation` uses it). [-]
 
     Returns
     -------
     Autocorrelation
     """
-    z = detrend(np.asarray(e, dtype=float))
-    r = autocorrelation(z)
+    r = autocorrelation(detrend(np.asarray(e, dtype=float))) if acf is None else np.asarray(acf, dtype=float)
     zc = zero_crossings(r)[:MAX_CROSSINGS] * ts
     if math.isfinite(period_s):
         keep = int(min(r.size, max(8, round(periods * period_s / ts))))

@@ -14,9 +14,11 @@ from typing import Any
 
 import numpy as np
 
+from .modelcheck import CheckTrace
+from .sources import export_of, has_source
+
 VERDICTS = ("confirmed", "disputed", "not identifiable", "record unusable", "not checked")
 PLOT_W, PLOT_H, PAD_L, PAD_B, PAD_T, PAD_R = 560, 220, 52, 30, 10, 10
-MAX_POINTS = 600
 
 
 @dataclass(frozen=True)
@@ -175,31 +177,24 @@ def _ticks(lo: float, hi: float, n: int = 5) -> list[float]:
     return [start + k * step for k in range(int((hi - start) / step + 1e-9) + 1)]
 
 
-def overlay(t: np.ndarray, pv: np.ndarray, ident: np.ndarray | None, inv: np.ndarray | None) -> Overlay:
-    """Scaled polylines of the logged pv and the two models (at most 600 points each).
+def overlay(trace: CheckTrace) -> Overlay:
+    """Scaled polylines of the logged pv and the two models (the thinned trace of the check).
 
     Parameters
     ----------
-    t : ndarray
-        Time. [s]
-    pv : ndarray
-        Logged pv. [%]
-    ident, inv : ndarray or None
-        Identified and inventory model outputs. [%]
+    trace : CheckTrace
+        Thinned samples of the logged pv [% of range] and of the identified and inventory
+        models' outputs [% of range], with the whole segment's time span [s] and range.
     """
-    n = len(t)
-    step = max(1, int(math.ceil(n / MAX_POINTS)))
-    idx = np.arange(0, n, step)
-    series = [s for s in (pv, ident, inv) if s is not None]
-    lo = float(min(np.nanmin(s) for s in series))
-    hi = float(max(np.nanmax(s) for s in series))
+    lo, hi = trace.lo, trace.hi
     if hi - lo < 1e-9:
         lo, hi = lo - 1, hi + 1
     pad = 0.05 * (hi - lo)
     lo, hi = lo - pad, hi + pad
-    scale_min = (t[-1] - t[0]) > 1800
-    tt = (t - t[0]) / (60.0 if scale_min else 1.0)
-    t_hi = float(tt[-1]) or 1.0
+    scale_min = (trace.t_last - trace.t_first) > 1800
+    scale = 60.0 if scale_min else 1.0
+    tt = (trace.t - trace.t_first) / scale
+    t_hi = float((np.float64(trace.t_last) - np.float64(trace.t_first)) / scale) or 1.0
     iw, ih = PLOT_W - PAD_L - PAD_R, PLOT_H - PAD_T - PAD_B
 
     def px(x):
@@ -211,10 +206,10 @@ def overlay(t: np.ndarray, pv: np.ndarray, ident: np.ndarray | None, inv: np.nda
     def pts(s):
         if s is None:
             return ""
-        return " ".join(f"{px(tt[i]):.1f},{py(s[i]):.1f}" for i in idx if np.isfinite(s[i]))
+        return " ".join(f"{px(tt[i]):.1f},{py(s[i]):.1f}" for i in range(len(tt)) if np.isfinite(s[i]))
     xt = tuple((px(x), f"{x:g}") for x in _ticks(0.0, t_hi))
     yt = tuple((py(y), f"{y:.4g}") for y in _ticks(lo, hi))
-    return Overlay(PLOT_W, PLOT_H, pts(pv), pts(ident), pts(inv), xt, yt,
+    return Overlay(PLOT_W, PLOT_H, pts(trace.pv), pts(trace.identified), pts(trace.inventory), xt, yt,
                    "time [min]" if scale_min else "time [s]", "pv [% of range]")
 
 
@@ -251,10 +246,11 @@ def data_views(audit) -> tuple[PlantDataSection | None, dict[int, DataCheckView]
     if "model_check" not in res.columns:
         return None, {}
     checks = audit.extras.get("model_checks", {})
+    export = export_of(audit)
     views: dict[int, DataCheckView] = {}
     lines = []
     for row in audit.inventory.rows:
-        if not getattr(row, "data_file", None):
+        if not has_source(row, export):
             continue
         label = res.index[row.index]
         verdict = str(res.at[label, "model_check"] or "")
@@ -262,13 +258,12 @@ def data_views(audit) -> tuple[PlantDataSection | None, dict[int, DataCheckView]
         ident = mc.identification if mc is not None else None
         b = ident.best if ident is not None else None
         ov = None
-        if ident is not None and len(ident.pv):
-            ih = b.yhat if b is not None else None
-            ov = overlay(ident.t, ident.pv, ih, mc.model_yhat if mc.model_yhat is not None and
-                         len(mc.model_yhat) == len(ident.pv) else None)
+        if mc is not None and ident is not None:
+            trace = mc.trace if mc.trace is not None else mc.compact().trace
+            ov = overlay(trace) if trace is not None else None
         note = str(res.at[label, "data_note"] or "")
         views[row.index] = DataCheckView(
-            record=(ident.name if ident is not None else str(row.data_file).rsplit("/", 1)[-1]), verdict=verdict,
+            record=(ident.name if ident is not None else str(row.data_file or row.tag).rsplit("/", 1)[-1]), verdict=verdict,
             model_fit_pct=_val(res.at[label, "model_fit_pct"]), id_fit_pct=_val(res.at[label, "id_fit_pct"]),
             id_fit_holdout_pct=_val(res.at[label, "id_fit_holdout_pct"]), id_model=str(res.at[label, "id_model"] or ""),
             params=_params(row, b), reasons=mc.reasons if mc is not None else (),
