@@ -43,7 +43,7 @@ from typing import Sequence
 import numpy as np
 
 from .loop import Controller, LoopModel
-from .tuning import (TAU_C_FLOOR, Limits, Requirement, Settings, _effective, _finite, amigo_pi, amigo_pid,
+from .tuning import (TAU_C_FLOOR, Limits, Requirement, Settings, _effective, amigo_pi, amigo_pid,
                      effective_extra_delay, simc_pi, simc_pid_series, simc_tau_c_min)
 
 #: A PID variant of the ki optimum is kept only when it raises ki by at least this factor over PI. [-]
@@ -435,11 +435,7 @@ def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts
         v, kk = (V, k) if whole else (V[rows], k[rows])
         with np.errstate(divide="ignore", invalid="ignore"):
             U = x[:, None] / (b if whole else b[rows])
-        im = U.imag[:, None, :] - kk * v.imag[:, None, :]
-        hit = np.nonzero(im[..., :-1] * im[..., 1:] <= 0)
-        i0, i1 = im[hit], im[hit[:-1] + (hit[-1] + 1,)]
-        moved = i0 != i1                        # a sign change, not a pair of zeros
-        hit, i0, i1 = tuple(h[moved] for h in hit), i0[moved], i1[moved]
+        hit, i0, i1 = _sign_changes(U.imag, v.imag, kk[..., 0])
         if not hit[0].size:
             continue
         kh = kk[hit[0], hit[1], 0]
@@ -450,11 +446,73 @@ def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts
             r1 = rr[hit[0], hit[2] + 1] - kh * v.real[hit[0], hit[2] + 1]
             kr = r0 + f * (r1 - r0)
         good = (kr > 0) & np.isfinite(kr)
-        where = np.ravel_multi_index(hit[:-1], im.shape[:-1])[good]
+        where = np.ravel_multi_index(hit[:-1], kk.shape[:-1])[good]
         if not whole:
-            where = _lift(where, rows, im.shape[:-1], t.shape)
+            where = _lift(where, rows, kk.shape[:-1], t.shape)
         np.minimum.at(flat_t, where, kr[good])
     return np.where(bad, 0.0, t)
+
+
+def _sign_changes(Ui: np.ndarray, Vi: np.ndarray, kp: np.ndarray) -> tuple[tuple[np.ndarray, ...], np.ndarray, np.ndarray]:
+    """Where im = Ui - kp Vi changes sign between neighbouring frequencies, for every gain of a row.
+
+    Exactly the (row, gain, interval) with im0 im1 <= 0 and im0 != im1, and im at both ends.
+    Where Vi > 0 throughout a row and its gains ascend (the ki search: Vi = w Re(1 + D(jw)) > 0),
+    im falls with kp through zero at Ui/Vi, so the gains with a change between two frequencies
+    lie between the two roots: they are found by a sorted search (with a 1e-9 relative slack,
+    far above rounding) and only they are tested; other rows are tested in full.
+
+    Parameters
+    ----------
+    Ui, Vi : ndarray (R, n_w)
+        Imaginary parts of x/b and of A/b. [s^-1], [-]
+    kp : ndarray (R, K)
+        Gains of each row. [-]
+
+    Returns
+    -------
+    tuple
+        (rows, gains, intervals) index arrays, and im at the interval's two ends.
+    """
+    R, m = Ui.shape
+    K = kp.shape[1]
+    with np.errstate(invalid="ignore"):
+        fast = (Vi > 0).all(-1) & np.isfinite(Ui).all(-1) & np.isfinite(Vi).all(-1) & (kp > 0).all(-1) \
+            & (np.diff(kp, axis=-1) > 0).all(-1)
+    parts = []
+    slow = np.flatnonzero(~fast)
+    if slow.size:
+        im = Ui[slow, None, :] - kp[slow, :, None] * Vi[slow, None, :]
+        h = np.nonzero(im[..., :-1] * im[..., 1:] <= 0)
+        parts.append((slow[h[0]], h[1], h[2]))
+    f = np.flatnonzero(fast)
+    if f.size:
+        rho = Ui[f] / Vi[f]
+        lo = np.minimum(rho[:, :-1], rho[:, 1:])
+        hi = np.maximum(rho[:, :-1], rho[:, 1:])
+        lo -= 1e-9 * np.abs(lo)
+        hi += 1e-9 * np.abs(hi)
+        scale = kp[f, -1:]
+        base = 4.0 * np.arange(f.size)[:, None]          # rows apart: arctan spans less than pi
+        keys = (np.arctan(kp[f] / scale) + base).ravel()  # ascending within and across rows
+        start = K * np.arange(f.size)[:, None]
+        a = np.searchsorted(keys, (np.arctan(lo / scale) + base).ravel(), "left").reshape(lo.shape) - start
+        b = np.searchsorted(keys, (np.arctan(hi / scale) + base).ravel(), "right").reshape(hi.shape) - start
+        a, b = np.clip(a, 0, K), np.clip(b, 0, K)
+        n = np.maximum(b - a, 0).ravel()
+        if n.sum():
+            cell = np.repeat(np.arange(n.size), n)
+            k = np.repeat(a.ravel(), n) + np.arange(n.sum()) - np.repeat(np.cumsum(n) - n, n)
+            parts.append((f[cell // (m - 1)], k, cell % (m - 1)))
+    if not parts:
+        e = np.zeros(0, int)
+        return (e, e, e), np.zeros(0), np.zeros(0)
+    r, k, i = (np.concatenate(x) for x in zip(*parts))
+    kr = kp[r, k]
+    i0 = Ui[r, i] - kr * Vi[r, i]
+    i1 = Ui[r, i + 1] - kr * Vi[r, i + 1]
+    keep = (i0 * i1 <= 0) & (i0 != i1)   # the sign test itself; i0 != i1: a change, not a pair of zeros
+    return (r[keep], k[keep], i[keep]), i0[keep], i1[keep]
 
 
 def _lift(flat: np.ndarray, rows: np.ndarray, sub_shape: tuple, full_shape: tuple) -> np.ndarray:
