@@ -62,10 +62,14 @@ def prepared(n: int, seed: int, tmp: Path):
 
 def timed_stage(audit, jobs: int) -> dict:
     """Run the proposals stage with ``jobs`` processes; wall and CPU time of it and of its parts. [s]"""
-    import audit.proposals as P
+    try:
+        import audit.proposals as P
+    except ImportError:   # an earlier version: the stage and its parts lived in audit.tuning
+        import audit.tuning as P
 
     parts: Counter = Counter()
-    real = {k: getattr(P, k) for k in ("check_actions", "candidate_settings_many", "_evaluate_jobs", "_iae_of")}
+    real = {k: getattr(P, k) for k in ("check_actions", "candidate_settings_many", "_evaluate_jobs", "_iae_of")
+            if hasattr(P, k)}
 
     def wrap(name, fn):
         def inner(*a, **k):
