@@ -177,23 +177,28 @@ def disturbance(record, allowed, plot):
 
 
 @cli.command()
-@click.argument("record", type=click.Path(dir_okay=False))
+@click.argument("record", nargs=-1, required=True, type=click.Path(dir_okay=False))
 @click.option("--pv-lo", type=float, default=None, help="PV range low, for *_eu columns [EU].")
 @click.option("--pv-hi", type=float, default=None, help="PV range high, for *_eu columns [EU].")
 @click.option("--timezone", default=None, help="IANA zone of timestamps written without one.")
 @click.option("--json", "as_json", is_flag=True, help="Print JSON.")
 @click.option("--write-inventory", "write_to", default=None,
               help="With an inventory (.xlsx): write a copy with the identified models to this new file.")
-def identify(record, pv_lo, pv_hi, timezone, as_json, write_to):
-    """Identify a process model (fopdt, sopdt, ipdt) from a logged RECORD with op and pv,
-    or from every data_file of an inventory (.xlsx)."""
+@click.option("--jobs", type=click.IntRange(1, 64), default=1, show_default=True,
+              help="Worker processes for several records.")
+def identify(record, pv_lo, pv_hi, timezone, as_json, write_to, jobs):
+    """Identify a process model (fopdt, sopdt, ipdt) from logged RECORDs with op and pv (several are
+    identified together), or from every data_file of an inventory (.xlsx)."""
     from .plantdata.command import identify_command, identify_inventory_command
 
-    if record.lower().endswith((".xlsx", ".xlsm")):
-        raise SystemExit(identify_inventory_command(record, write_to, as_json))
+    if len(record) == 1 and record[0].lower().endswith((".xlsx", ".xlsm")):
+        raise SystemExit(identify_inventory_command(record[0], write_to, as_json, jobs))
+    if any(r.lower().endswith((".xlsx", ".xlsm")) for r in record):
+        raise UserError("an inventory (.xlsx) is identified on its own: give it as the only argument")
     if write_to:
         raise UserError("--write-inventory needs an inventory workbook (.xlsx) in place of RECORD")
-    raise SystemExit(identify_command(record, pv_lo, pv_hi, as_json, timezone)[0])
+    raise SystemExit(identify_command(record[0] if len(record) == 1 else list(record), pv_lo, pv_hi, as_json,
+                                      timezone, jobs)[0])
 
 
 @cli.command()

@@ -1,8 +1,10 @@
-"""``plant-audit identify RECORD``: text and JSON views of an identification.
+"""``plant-audit identify RECORD [RECORD ...]``: text and JSON views of identifications.
 
-Exit codes: 0 a model was identified; 1 the record was read but the data do not
-support a model (the notes say why: too little excitation, op at a limit, poor fit);
-2 the record cannot be read (missing file, bad header, nothing usable).
+Exit codes: 0 a model was identified (from every record); 1 a record was read but the
+data do not support a model (the notes say why: too little excitation, op at a limit,
+poor fit); 2 a record cannot be read (missing file, bad header, nothing usable; the
+others are still identified). Several records are identified together
+(:func:`.identify.identify_many`, ``--jobs`` processes).
 """
 
 from __future__ import annotations
@@ -10,9 +12,9 @@ from __future__ import annotations
 import json
 import math
 import sys
-from typing import Any
+from typing import Any, Sequence
 
-from .identify import PARAMS, UNITS, Fit, Identification, IdentifyPolicy, identify_record
+from .identify import PARAMS, UNITS, Fit, Identification, IdentifyPolicy, identify_many
 from .records import read_record
 
 
@@ -78,40 +80,59 @@ def format_identification(r: Identification) -> str:
     return "\n".join(out)
 
 
-def identify_command(path: str, pv_lo: float | None = None, pv_hi: float | None = None, as_json: bool = False,
-                     timezone: str | None = None) -> tuple[int, Identification | None]:
-    """Read a record, identify, print; return (exit code, result).
+def identify_command(path: str | Sequence[str], pv_lo: float | None = None, pv_hi: float | None = None,
+                     as_json: bool = False, timezone: str | None = None, jobs: int = 1
+                     ) -> tuple[int, Identification | list[Identification | None] | None]:
+    """Read one record or several, identify (several together, over ``jobs`` processes), print.
 
     Parameters
     ----------
-    path : str
-        The record (CSV or Parquet).
+    path : str or sequence of str
+        The record(s) (CSV or Parquet).
     pv_lo, pv_hi : float, optional
         PV range for ``*_eu`` columns. [engineering units]
     as_json : bool
         Print JSON instead of text.
     timezone : str, optional
         Zone of timestamps written without one.
+    jobs : int
+        Worker processes for several records. [-]
 
     Returns
     -------
-    tuple of (int, Identification or None)
-        Exit code (0 model, 1 no model, 2 unreadable) and the result (None when unreadable).
+    tuple
+        Exit code and the result. One record: 0 model, 1 no model, 2 unreadable, and the
+        :class:`Identification` (None when unreadable). Several: 2 when any record cannot be
+        read, else 1 when any gives no model, else 0; and a list (None for an unreadable record).
     """
-    rec = read_record(path, pv_lo=pv_lo, pv_hi=pv_hi, timezone=timezone)
-    if not rec.usable and rec.notes_of("file", "header"):
-        for n in rec.notes_of("file", "header"):
-            print(f"plant-audit identify: {n}", file=sys.stderr)
-        return 2, None
-    r = identify_record(rec, IdentifyPolicy())
+    paths = [path] if isinstance(path, str) else list(path)
+    recs = [read_record(p, pv_lo=pv_lo, pv_hi=pv_hi, timezone=timezone) for p in paths]
+    ok = [not (not r.usable and r.notes_of("file", "header")) for r in recs]
+    for r, good in zip(recs, ok):
+        if not good:
+            for n in r.notes_of("file", "header"):
+                print(f"plant-audit identify: {n}", file=sys.stderr)
+    found = iter(identify_many([r for r, good in zip(recs, ok) if good], IdentifyPolicy(), jobs=jobs))
+    results = [next(found) if good else None for good in ok]
+    if len(paths) == 1:
+        r = results[0]
+        if r is None:
+            return 2, None
+        print(json.dumps(identification_json(r), indent=1, ensure_ascii=False) if as_json
+              else format_identification(r))
+        return (0 if r.identifiable else 1), r
     if as_json:
-        print(json.dumps(identification_json(r), indent=1, ensure_ascii=False))
+        print(json.dumps({"records": [identification_json(r) if r is not None else
+                                      {"record": p, "readable": False} for p, r in zip(paths, results)]},
+                         indent=1, ensure_ascii=False))
     else:
-        print(format_identification(r))
-    return (0 if r.identifiable else 1), r
+        print("\n\n".join(format_identification(r) if r is not None else f"record        {p}  (cannot be read)"
+                           for p, r in zip(paths, results)))
+    code = 2 if any(r is None for r in results) else (1 if not all(r.identifiable for r in results) else 0)
+    return code, results
 
 
-def identify_inventory_command(path: str, write_to: str | None = None, as_json: bool = False) -> int:
+def identify_inventory_command(path: str, write_to: str | None = None, as_json: bool = False, jobs: int = 1) -> int:
     """``plant-audit identify INVENTORY.xlsx [--write-inventory NEW.xlsx]``: every row's ``data_file``.
 
     Parameters
@@ -123,6 +144,8 @@ def identify_inventory_command(path: str, write_to: str | None = None, as_json: 
         :mod:`audit.plantdata.writeback`).
     as_json : bool
         Print JSON instead of text.
+    jobs : int
+        Worker processes. [-]
 
     Returns
     -------
@@ -138,7 +161,8 @@ def identify_inventory_command(path: str, write_to: str | None = None, as_json: 
     inv = read_inventory(path)
     folder = Path(path).resolve().parent
     found: dict[int, tuple[str, Identification]] = {}
-    items = []
+    items: list = []
+    todo = []
     for row in inv.rows:
         if not row.data_file:
             continue
@@ -149,10 +173,13 @@ def identify_inventory_command(path: str, write_to: str | None = None, as_json: 
             items.append({"row": row.excel_row, "tag": row.tag, "record": None, "identifiable": False,
                           "notes": [str(exc)]})
             continue
-        r = identify_record(read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, name=shown), IdentifyPolicy())
+        todo.append((len(items), row, where, shown, read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, name=shown)))
+        items.append(None)
+    # every row's record identified together (batched, over ``jobs`` processes)
+    for (k, row, where, shown, _), r in zip(todo, identify_many([t[4] for t in todo], IdentifyPolicy(), jobs=jobs)):
         if r.best is not None:
             found[row.excel_row] = (shown, r)
-        items.append({"row": row.excel_row, "tag": row.tag, "where": where, **identification_json(r)})
+        items[k] = {"row": row.excel_row, "tag": row.tag, "where": where, **identification_json(r)}
     summary = None
     if write_to:
         try:

@@ -34,12 +34,18 @@ Fitting
    block-averaged data, the best whole-sample delay), then the two-point method of Smith [1]_
    (28.3 % and 63.2 % of the final value: tau1 = 1.5 (t63 - t28), theta = t63 - tau1);
    for ipdt the slope and intercept of the estimated ramp.
-3. Refinement: :func:`scipy.optimize.least_squares` (trust region reflective) on the
-   output error (records over 2,000 samples: first on every q-th sample, about 1,000 of
-   them, then on all samples from that optimum), with the linear parameters (gain, bias, balance) eliminated by
-   linear least squares at each step (variable projection [3]_); a few extra starts
-   around the first guard against a local minimum in the dead time (tried only while the fit
-   is below 90 %, every start for sopdt); tolerances 1e-7 on cost, step and gradient.
+3. Refinement: output-error least squares by a bounded Levenberg-Marquardt
+   (:func:`.oefit.levenberg_marquardt`) with the linear parameters (gain, bias, balance)
+   eliminated in closed form at each step (variable projection [3]_). Records over 2,000
+   samples are searched first on a coarse record (every q-th pv sample, about 1,000 of them,
+   op averaged over each block), then refined on all samples from that optimum (at most 8
+   iterations). Further starts guard against a local minimum in the dead time: tried only
+   while the first fits below 90 %; for sopdt three starts (no lead, a lead, an inverse
+   response) each run 4 iterations and the best goes on. Stop when the Gauss-Newton decrement
+   is below 1e-8 of the residual sum of squares (1e-6 on the coarse record).
+   Many records are fitted together (:func:`identify_many`): the steps of all records of a
+   batch run as one set of array operations, each record with its own damping and stop, so
+   a record's result does not depend on the others in its batch.
 4. Confidence intervals, 95 %: from the Jacobian of all parameters at the optimum,
    cov = s^2 (J^T J)^-1 with s^2 = RSS/(N - p), multiplied by the variance-inflation
    factor (1 + r1)/(1 - r1) of AR(1)-correlated residuals (r1: lag-1 residual
@@ -58,7 +64,10 @@ Fitting
 7. Model selection by the Bayesian information criterion on the effective sample size,
    BIC = N_eff ln(RSS/N) + p ln(N_eff); a more complex model (sopdt) is chosen only when it
    lowers the BIC by more than ``bic_margin`` (default 10, "very strong" evidence in the
-   scale of Kass and Raftery [6]_); otherwise the simpler one (fopdt, or ipdt) stands.
+   scale of Kass and Raftery [6]_) and leaves a smaller residual sum of squares than fopdt
+   (sopdt holds fopdt, so one that fits worse has not reached its optimum: its residuals,
+   correlated, would shrink N_eff and with it its BIC); otherwise the simpler one (fopdt, or
+   ipdt) stands.
 8. A model is refused ("not identifiable") when its fit % is below ``min_fit_pct``
    (default 30 %) or the 95 % interval of its gain is wider than its gain
    (half-width > |K|).
@@ -87,12 +96,16 @@ References
 from __future__ import annotations
 
 import math
+import multiprocessing
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field, replace
 from typing import Mapping, Sequence
 
 import numpy as np
-from scipy import optimize, signal, stats
+from scipy import special
 
+from .idchecks import LAGS, _acf, _xcorr_past, hampel, ljung_box_p, nrmse_fit, step_estimate, two_point
+from .oefit import Solution, difference, predict, response_jacobian, run, solve_rows
 from .records import Record, Segment
 
 MODELS = ("fopdt", "sopdt", "ipdt")
@@ -101,8 +114,11 @@ PARAMS = {"fopdt": ("gain", "tau1", "dead_time"),
           "ipdt": ("gain", "dead_time"),
           "sopdt0": ("gain", "tau1", "tau2", "dead_time")}     # sopdt with the lead fixed at 0 (internal)
 UNITS = {"gain": "-", "tau1": "s", "tau2": "s", "tau_lead": "s", "dead_time": "s"}
-LAGS = 20
 COARSE_POINTS = 1000      # records longer than twice this are searched on every q-th sample first
+SCOUT_ITER = 4            # iterations from each of several starts before the best goes on
+FINE_ITER = 4             # iterations on all samples after the coarse search
+COARSE_ITER = 40          # iterations on the coarse record
+_CONTEXT = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
 
 
 @dataclass(frozen=True)
@@ -254,18 +270,6 @@ class Excitation:
 
 # --------------------------------------------------------------------------- simulation
 
-def _modes(model: str, shape: Sequence[float]) -> list[tuple[float, float]]:
-    """Unit-gain model as a sum of first-order modes (time constant [s], weight [-]); tau = inf: integrator."""
-    if model == "fopdt":
-        return [(shape[0], 1.0)]
-    if model == "ipdt":
-        return [(math.inf, 1.0)]
-    t1, t2, ta = shape
-    if abs(t1 - t2) < 1e-4 * max(t1, t2):        # repeated pole: split it slightly (relative error ~1e-12)
-        t2 = t1 * (1.0 - 1e-4)
-    return [(t1, (t1 - ta) / (t1 - t2)), (t2, (ta - t2) / (t1 - t2))]
-
-
 def discretise(model: str, shape: Sequence[float], dead_time: float, dt: float) -> tuple[np.ndarray, np.ndarray]:
     """Exact difference equation of a unit-gain model with a held input and a continuous dead time.
 
@@ -288,49 +292,16 @@ def discretise(model: str, shape: Sequence[float], dead_time: float, dt: float) 
 
     Notes
     -----
-    With theta = (d + f) dt, a mode x' = (-x + w v)/tau driven by the delayed held input
-    gives x[k+1] = a x[k] + w (1 - c) u[k-d] + w (c - a) u[k-d-1], a = e^{-dt/tau},
-    c = e^{-(1-f) dt/tau} (integrator: x[k+1] = x[k] + w (1-f) dt u[k-d] + w f dt u[k-d-1]).
-    The modes (partial fractions) are summed over a common denominator.
+    See :mod:`.oefit`: each mode integrated exactly over the two parts of a sample
+    interval that the fractional delay splits, the modes summed over a common denominator.
     """
-    d, num, den = _difference(model, shape, dead_time, dt)
+    d, num, den = difference(model, shape, dead_time, dt)
     return np.concatenate([np.zeros(d), num]), den
 
 
-def _difference(model: str, shape: Sequence[float], dead_time: float, dt: float
-                ) -> tuple[int, np.ndarray, np.ndarray]:
-    """(whole-sample delay d, numerator, denominator): the delay kept apart for speed."""
-    q = dead_time / dt
-    d = int(math.floor(q + 1e-12))
-    f = min(max(q - d, 0.0), 1.0)
-    num = np.zeros(1)
-    den = np.ones(1)
-    for tau, w in _modes(model, shape):
-        if math.isinf(tau):
-            a, g2, g1 = 1.0, w * (1.0 - f) * dt, w * f * dt
-        else:
-            a = math.exp(-dt / tau)
-            c = math.exp(-(1.0 - f) * dt / tau)
-            g2, g1 = w * (1.0 - c), w * (c - a)
-        bm, am = np.array([0.0, g2, g1]), np.array([1.0, -a])
-        if len(den) > 1:
-            x1, x2 = np.convolve(num, am), np.convolve(bm, den)
-            m = max(len(x1), len(x2))
-            num = np.pad(x1, (0, m - len(x1))) + np.pad(x2, (0, m - len(x2)))
-        else:
-            num = bm
-        den = np.convolve(den, am)
-    return d, num, den
-
-
 def _run(model: str, shape: Sequence[float], dead_time: float, dt: float, u: np.ndarray) -> np.ndarray:
-    """Unit-gain response to ``u`` (deviation, zero before the record): delay line, then the filter."""
-    d, num, den = _difference(model, shape, dead_time, dt)
-    if d >= len(u):
-        return np.zeros(len(u))
-    if d:
-        u = np.concatenate([np.zeros(d), u[:len(u) - d]])
-    return signal.lfilter(num, den, u)
+    """Unit-gain response to ``u`` (deviation, zero before the record); see :func:`.oefit.run`."""
+    return run(model, shape, dead_time, dt, u)
 
 
 def simulate(model: str, params: Mapping[str, float], op: np.ndarray, dt: float) -> np.ndarray:
@@ -352,17 +323,7 @@ def simulate(model: str, params: Mapping[str, float], op: np.ndarray, dt: float)
     ndarray
         pv deviation. [%]
     """
-    return params["gain"] * _run(model, _shape(model, params), params["dead_time"], dt, op - op[0])
-
-
-def _shape(model: str, params: Mapping[str, float]) -> tuple[float, ...]:
-    if model == "fopdt":
-        return (params["tau1"],)
-    if model == "sopdt":
-        return (params["tau1"], params["tau2"], params["tau_lead"])
-    if model == "sopdt0":
-        return (params["tau1"], params["tau2"], 0.0)
-    return ()
+    return predict(model, params, 0.0, 0.0, op - op[0], dt)
 
 
 # --------------------------------------------------------------------------- checks
@@ -394,301 +355,78 @@ def excitation(op: np.ndarray, policy: IdentifyPolicy = IdentifyPolicy()) -> Exc
     return Excitation(True, move, limited)
 
 
-def hampel(x: np.ndarray, window: int = 7, sigmas: float = 5.0) -> tuple[np.ndarray, np.ndarray]:
-    """Spikes replaced by the local median (Hampel identifier).
-
-    Parameters
-    ----------
-    x : ndarray
-        Samples. [%]
-    window : int
-        Odd window length. [-]
-    sigmas : float
-        Threshold in robust standard deviations of the noise (1.4826 x the median
-        absolute deviation of the first differences, divided by sqrt 2). [-]
-
-    Returns
-    -------
-    tuple of ndarray
-        The cleaned samples [%] and a boolean mask of the spikes.
-    """
-    from scipy.ndimage import median_filter
-    med = median_filter(x, size=window, mode="nearest")
-    dev = np.abs(x - med)
-    dx = np.diff(x)
-    s = 1.4826 * float(np.median(np.abs(dx - np.median(dx)))) / math.sqrt(2)
-    if s <= 0:
-        s = 1.4826 * float(np.median(dev)) or 1e-12
-    spikes = dev > sigmas * s
-    out = np.where(spikes, med, x)
-    return out, spikes
-
-
-def nrmse_fit(y: np.ndarray, yhat: np.ndarray) -> float:
-    """Fit % = 100 (1 - ||y - yhat|| / ||y - mean(y)||) (normalised root-mean-square error). [%]
-
-    Parameters
-    ----------
-    y : ndarray
-        Measured pv. [%]
-    yhat : ndarray
-        Simulated pv. [%]
-    """
-    den = float(np.linalg.norm(y - np.mean(y)))
-    return 100.0 * (1.0 - float(np.linalg.norm(y - yhat)) / den) if den > 0 else float("nan")
-
-
-def ljung_box_p(e: np.ndarray, lags: int = LAGS) -> float:
-    """p-value of the Ljung-Box statistic Q = N(N+2) sum r_k^2/(N-k), k = 1..lags, against chi2(lags). [-]
-
-    Parameters
-    ----------
-    e : ndarray
-        Residuals. [%]
-    lags : int
-        Number of autocorrelations. [-]
-    """
-    r = _acf(e, lags)
-    n = len(e)
-    q = n * (n + 2) * float(np.sum(r[1:] ** 2 / (n - np.arange(1, lags + 1))))
-    return float(stats.chi2.sf(q, lags))
-
-
-def _acf(e: np.ndarray, lags: int) -> np.ndarray:
-    e = e - e.mean()
-    n = len(e)
-    c0 = float(np.dot(e, e)) / n
-    if c0 <= 0:
-        return np.zeros(lags + 1)
-    m = int(2 ** math.ceil(math.log2(2 * n)))
-    F = np.fft.rfft(e, m)
-    ac = np.fft.irfft(F * np.conj(F), m)[:lags + 1] / n
-    return ac / c0
-
-
-def _xcorr_past(e: np.ndarray, u: np.ndarray, lags: int) -> float:
-    e = e - e.mean()
-    u = u - u.mean()
-    den = math.sqrt(float(np.dot(e, e)) * float(np.dot(u, u)))
-    if den <= 0:
-        return 0.0
-    n = len(e)
-    return max(abs(float(np.dot(e[k:], u[:n - k]))) / den for k in range(lags + 1))
-
-
-# --------------------------------------------------------------------------- start
-
-def step_estimate(op: np.ndarray, pv: np.ndarray, dt: float, points: int = 400) -> tuple[np.ndarray, float]:
-    """Step response of pv to op from a second-order ARX model fitted by least squares.
-
-    The data are block-averaged to about ``points`` samples; for every whole delay of
-    0 to a third of the record, y[k] = -a1 y[k-1] - a2 y[k-2] + b1 u[k-nk] + b2 u[k-nk-1] + c
-    is fitted by linear least squares; the stable fit whose simulation (driven by op
-    alone) errs least wins and its model's unit step response is returned (a start only: ARX estimates are biased
-    by output noise) [2]_ (module references).
-
-    Parameters
-    ----------
-    op, pv : ndarray
-        Input and output. [%]
-    dt : float
-        Sample interval. [s]
-    points : int
-        Samples after averaging. [-]
-
-    Returns
-    -------
-    tuple of (ndarray, float)
-        Unit step response at the averaged spacing, over the record's length [-], and
-        that spacing [s].
-    """
-    n = len(op)
-    q = max(1, n // points)
-    m = n // q
-    u = op[:m * q].reshape(m, q).mean(axis=1) - op[0]
-    y = pv[:m * q].reshape(m, q).mean(axis=1)
-    best = None
-    yc = y - y[0]
-    top = max(m // 3, 2)
-    delays = np.unique(np.concatenate([np.arange(min(top, 24)), np.geomspace(24, max(top, 25), 24).astype(int)]))
-    for nk in delays[delays < top]:
-        nk = int(nk)
-        k0 = nk + 2
-        if m - k0 < 10:
-            break
-        X = np.column_stack([-y[k0 - 1:m - 1], -y[k0 - 2:m - 2], u[k0 - nk:m - nk], u[k0 - nk - 1:m - nk - 1],
-                             np.ones(m - k0)])
-        coef = _lsq(X, y[k0:])
-        a = np.array([1.0, coef[0], coef[1]])
-        if np.any(np.abs(np.roots(a)) > 1.0 + 1e-9):
-            continue
-        # judged by its simulation error (the one-step error hardly sees the input)
-        sim = signal.lfilter(np.concatenate([np.zeros(nk), coef[2:4]]), a, u)
-        X2 = np.column_stack([sim, np.ones(m)])
-        e = yc - X2 @ _lsq(X2, yc)
-        r = float(e @ e)
-        if best is None or r < best[0]:
-            best = (r, nk, coef)
-    if best is None:
-        return np.zeros(max(m, 2)), q * dt
-    _, nk, c = best
-    a = np.array([1.0, c[0], c[1]])
-    bb = np.concatenate([np.zeros(nk), [c[2], c[3]]])
-    if np.any(np.abs(np.roots(a)) >= 1.0):      # an unstable ARX fit: integrating, or noise
-        return np.arange(1, m + 1) * (c[2] + c[3]), q * dt
-    return signal.lfilter(bb, a, np.ones(m)), q * dt
-
-
-def two_point(step: np.ndarray, h: float) -> tuple[float, float, float]:
-    """Smith's two-point method on a unit step response: (gain [-], tau1 [s], dead time [s]).
-
-    Parameters
-    ----------
-    step : ndarray
-        Unit step response sampled every ``h``, starting at the step. [-]
-    h : float
-        Spacing. [s]
-
-    Notes
-    -----
-    Gain is the final value (mean of the last fifth); t28 and t63 are where the
-    response first reaches 28.3 % and 63.2 % of it (linear interpolation);
-    tau1 = 1.5 (t63 - t28), theta = t63 - tau1 [1]_ (module references).
-    """
-    k = float(np.mean(step[-max(len(step) // 5, 1):]))
-    if k == 0 or not np.isfinite(k):
-        return 0.0, 5 * h, h
-    r = step / k
-    t = np.arange(len(step)) * h
-
-    def cross(level):
-        idx = np.flatnonzero(r >= level)
-        if not len(idx):
-            return t[-1]
-        i = int(idx[0])
-        if i == 0:
-            return t[0] * level / max(r[0], 1e-9)
-        return t[i - 1] + (level - r[i - 1]) / (r[i] - r[i - 1]) * h
-    t28, t63 = cross(0.283), cross(0.632)
-    tau = max(1.5 * (t63 - t28), 0.5 * h)
-    theta = max(t63 - tau, 0.0)
-    return k, tau, theta
-
-
 # --------------------------------------------------------------------------- fitting
 
-def _basis(model: str, s: np.ndarray, t: np.ndarray) -> np.ndarray:
-    cols = [np.ones_like(s), s]
-    if model == "ipdt":
-        cols.append(t)
-    return np.column_stack(cols)
+def _multi_start(model: str, rows, starts: list[list], max_iter: int, ftol: float) -> list[Solution | None]:
+    """The best of Levenberg-Marquardt runs from several starts per record, all records together.
 
-
-def _nl_to_shape(model: str, x: np.ndarray) -> tuple[tuple[float, ...], float]:
-    if model == "fopdt":
-        return (x[0],), x[1]
+    sopdt: every start runs :data:`SCOUT_ITER` iterations, the best goes on. Others: the first
+    start runs to the end; the further starts are tried (scouted the same way) only where it
+    fits below 90 %.
+    """
+    k = len(starts[0]) if starts else 0
+    if k == 1 or not rows:
+        return solve_rows(model, rows, [s[0] for s in starts], max_iter, ftol)
     if model == "sopdt":
-        return (x[0], x[1], x[2]), x[3]
-    if model == "sopdt0":
-        return (x[0], x[1], 0.0), x[2]
-    return (), x[0]
+        base: list[Solution | None] = [None] * len(rows)
+        todo = list(range(len(rows)))
+        tries = range(k)
+    else:
+        base = solve_rows(model, rows, [s[0] for s in starts], max_iter, ftol)
+        spread = [float(np.sum((r[1][r[3]:r[4]] - r[1][r[3]:r[4]].mean()) ** 2)) for r in rows]
+        todo = [i for i in range(len(rows)) if base[i] is None or not base[i].cost < 0.01 * spread[i]]
+        tries = range(1, k)
+    if not todo:
+        return base
+    scout = solve_rows(model, [rows[i] for i in todo for _ in tries], [starts[i][j] for i in todo for j in tries],
+                       SCOUT_ITER, ftol)
+    best: list[Solution | None] = []
+    for a, i in enumerate(todo):
+        found = [f for f in scout[a * len(tries):(a + 1) * len(tries)] if f is not None]
+        best.append(min(found, key=lambda f: f.cost) if found else None)
+    go = [a for a, f in enumerate(best) if f is not None and f.iterations >= SCOUT_ITER]
+    more = solve_rows(model, [rows[todo[a]] for a in go], [best[a].x for a in go], max_iter, ftol)
+    for a, m in zip(go, more):
+        if m is not None and m.cost <= best[a].cost:
+            best[a] = m
+    out = list(base)
+    for a, i in enumerate(todo):
+        if best[a] is not None and (out[i] is None or best[a].cost < out[i].cost):
+            out[i] = best[a]
+    return out
 
 
-def _unit_response(model, x, u, dt):
-    shape, theta = _nl_to_shape(model, x)
-    return _run(model, shape, theta, dt, u)
+def _coarse_row(u: np.ndarray, y: np.ndarray, dt: float):
+    """Every q-th sample of a long record (about :data:`COARSE_POINTS`), the input averaged over each block.
+
+    The block mean of a held input, held over the block, keeps its first moment in time, so a step
+    inside a block is not moved to the block's edge (the coarse optimum is a start only).
+    """
+    n = len(u)
+    q = n // COARSE_POINTS
+    m = n // q
+    return u[:m * q].reshape(m, q).mean(axis=1), y[:m * q:q], dt * q, 0, m
 
 
-def _lsq(X: np.ndarray, y: np.ndarray) -> np.ndarray:
-    """Small linear least squares by scaled normal equations (columns few, rows many)."""
-    sc = np.sqrt(np.einsum("ij,ij->j", X, X))
-    sc[sc == 0] = 1.0
-    Xs = X / sc
-    try:
-        return np.linalg.solve(Xs.T @ Xs, Xs.T @ y) / sc
-    except np.linalg.LinAlgError:
-        return np.linalg.lstsq(X, y, rcond=None)[0]
-
-
-def _vp_residual(model, x, u, y, t, dt, keep=None):
-    s = _unit_response(model, x, u, dt)
-    X = _basis(model, s, t)
-    if keep is not None:
-        X, y = X[keep], y[keep]
-    return y - X @ _lsq(X, y)
-
-
-def _bounds(model: str, dt: float, T: float):
-    tmin, tmax = dt / 20.0, 20.0 * T
-    thmax = 0.5 * T
-    if model == "fopdt":
-        return [tmin, 0.0], [tmax, thmax]
-    if model == "sopdt":
-        return [tmin, tmin, -tmax, 0.0], [tmax, tmax, tmax, thmax]
-    if model == "sopdt0":
-        return [tmin, tmin, 0.0], [tmax, tmax, thmax]
-    return [0.0], [thmax]
-
-
-def _fit_structure(model: str, u: np.ndarray, y: np.ndarray, t: np.ndarray, dt: float, starts,
-                   keep: np.ndarray | None = None) -> np.ndarray:
-    lo, hi = _bounds(model, dt, t[-1] - t[0] + dt)
-    best, best_cost = None, np.inf
-    yk = y if keep is None else y[keep]
-    spread = float(np.sum((yk - yk.mean()) ** 2))
-    for x0 in starts:
-        if best is not None and model != "sopdt" and 2 * best_cost < 0.01 * spread:
-            break                            # the first start already fits 90 % or better: no further starts
-        x0 = np.clip(np.asarray(x0, float), np.asarray(lo) + 1e-9, np.asarray(hi) - 1e-9)
-        try:
-            r = optimize.least_squares(lambda x: _vp_residual(model, x, u, y, t, dt, keep), x0, bounds=(lo, hi),
-                                       x_scale=np.maximum(np.abs(x0), dt), diff_step=1e-4, max_nfev=200,
-                                       ftol=1e-7, xtol=1e-7, gtol=1e-7)
-        except (ValueError, np.linalg.LinAlgError):
-            continue
-        if r.cost < best_cost:
-            best, best_cost = r.x, r.cost
-    return best
-
-
-def _full(model: str, x: np.ndarray, u, y, t, dt, keep=None) -> tuple[np.ndarray, list[str]]:
-    """Nonlinear optimum + linear parameters -> full parameter vector and names."""
-    s = _unit_response(model, x, u, dt)
-    X = _basis(model, s, t)
-    coef = _lsq(X, y) if keep is None else _lsq(X[keep], y[keep])
-    names = list(PARAMS[model]) + ["bias"] + (["balance"] if model == "ipdt" else [])
-    shape, theta = _nl_to_shape(model, x)
-    if model == "sopdt0":
-        shape = shape[:2]
-    gain = coef[1]
-    vals = [gain, *shape, theta, coef[0]]
-    if model == "ipdt":
-        vals.append(-coef[2] / gain if gain != 0 else 0.0)  # op offset at which pv stands still
-    return np.array(vals, float), names
-
-
-def _predict(model: str, full: np.ndarray, u, t, dt) -> np.ndarray:
-    p = dict(zip(PARAMS[model], full))
-    yhat = full[len(PARAMS[model])] + p["gain"] * _run(model, _shape(model, p), p["dead_time"], dt, u)
-    if model == "ipdt":
-        yhat = yhat - p["gain"] * full[-1] * t
-    return yhat
-
-
-def _jacobian(model, full, u, t, dt) -> np.ndarray:
-    cols = []
-    for i in range(len(full)):
-        h = 1e-5 * max(abs(full[i]), dt if PARAMS[model][i:i + 1] and PARAMS[model][i] != "gain" else 1e-3)
-        if i < len(PARAMS[model]) and PARAMS[model][i] == "dead_time" and full[i] - h < 0:
-            up, dn = full.copy(), full.copy()
-            up[i] += h
-            cols.append((_predict(model, up, u, t, dt) - _predict(model, full, u, t, dt)) / h)
-            continue
-        up, dn = full.copy(), full.copy()
-        up[i] += h
-        dn[i] -= h
-        cols.append((_predict(model, up, u, t, dt) - _predict(model, dn, u, t, dt)) / (2 * h))
-    return np.column_stack(cols)
+def _solve_many(model: str, rows, starts: list[list]) -> list[Solution | None]:
+    """Coarse to fine: long records searched on the coarse record first, then all counted samples."""
+    long_ = [i for i, r in enumerate(rows) if len(r[0]) > 2 * COARSE_POINTS and r[3] == 0 and r[4] == len(r[0])]
+    starts = list(starts)
+    if long_:
+        coarse = _multi_start(model, [_coarse_row(rows[i][0], rows[i][1], rows[i][2]) for i in long_],
+                              [starts[i] for i in long_], COARSE_ITER, 1e-6)
+        for i, c in zip(long_, coarse):
+            if c is not None:
+                starts[i] = [c.x]
+    out: list[Solution | None] = [None] * len(rows)
+    fine = [i for i in long_ if len(starts[i]) == 1]
+    rest = [i for i in range(len(rows)) if i not in set(fine)]
+    for group, it in ((fine, FINE_ITER), (rest, 100)):
+        if group:
+            for i, sol in zip(group, _multi_start(model, [rows[i] for i in group], [starts[i] for i in group], it,
+                                                  1e-8)):
+                out[i] = sol
+    return out
 
 
 def _starts(model: str, step: np.ndarray, h: float, dt: float, seed: np.ndarray | None) -> list[list[float]]:
@@ -697,7 +435,9 @@ def _starts(model: str, step: np.ndarray, h: float, dt: float, seed: np.ndarray 
         return [[tau, theta], [0.5 * tau, theta + 0.5 * tau]]
     if model == "sopdt":
         tf, thf = (seed[0], seed[1]) if seed is not None else (tau, theta)
-        return [[0.8 * tf, 0.2 * tf, 0.0, 0.8 * thf], [0.55 * tf, 0.45 * tf, 0.3 * tf, 0.5 * thf]]
+        # a lead trades off against the dead time: start with none, a lead, and an inverse response
+        return [[0.8 * tf, 0.2 * tf, 0.0, 0.8 * thf], [0.55 * tf, 0.45 * tf, 0.3 * tf, 0.5 * thf],
+                [0.7 * tf, 0.3 * tf, -0.3 * tf, 0.3 * thf]]
     # ipdt: intercept of the ramp's tangent as the dead time
     grow = np.gradient(step, h)
     j = int(np.argmax(np.abs(grow)))
@@ -705,26 +445,104 @@ def _starts(model: str, step: np.ndarray, h: float, dt: float, seed: np.ndarray 
     return [[th], [0.5 * th + dt]]
 
 
-def _holdout(model: str, x: np.ndarray, op: np.ndarray, pv: np.ndarray, dt: float, share: float,
-             yhat: np.ndarray) -> float:
-    """Fit % on the held-out block (first or last ``share``, the livelier) of a refit on the rest. [%]"""
+def _holdout_many(cases) -> list[float]:
+    """Fit % on the held-out block (first or last ``share``, the livelier) of a refit on the rest, per case. [%]
+
+    ``cases``: ``(model, x, op, pv, dt, share, yhat)``; the refits of one structure run together.
+    """
+    out = [float("nan")] * len(cases)
+    plan = {}
+    for c, (model, x, op, pv, dt, share, yhat) in enumerate(cases):
+        n = len(op)
+        m = int(round(n * share))
+        if not (m > 20 and n - m > 20):
+            continue
+        first = bool(np.std(yhat[:m]) > np.std(yhat[n - m:]))
+        lo, hi = (m, n) if first else (0, n - m)
+        if not np.ptp(op[lo:hi]) > 0:
+            continue
+        plan.setdefault(model, []).append((c, (op - op[0], pv, dt, lo, hi), np.asarray(x, float),
+                                           slice(0, m) if first else slice(n - m, n)))
+    for model, items in plan.items():
+        sols = solve_rows(model, [it[1] for it in items], [it[2] for it in items])
+        for (c, row, _, block), sol in zip(items, sols):
+            if sol is None:
+                continue
+            yh = sol.coef[0] + sol.coef[1] * sol.s
+            if model == "ipdt":
+                yh = yh + sol.coef[2] * np.arange(len(yh)) * row[2]
+            out[c] = nrmse_fit(row[1][block], yh[block])
+    return out
+
+
+def _fit_of(model: str, sol: Solution, op: np.ndarray, pv: np.ndarray, dt: float) -> Fit:
+    """Statistics of an optimum: intervals, fit %, BIC, residual checks (see the module notes)."""
     n = len(op)
-    t = np.arange(n) * dt
     u = op - op[0]
-    m = int(round(n * share))
-    if not (m > 20 and n - m > 20):
-        return float("nan")
-    first = np.arange(n) < m
-    last = np.arange(n) >= n - m
-    block = first if np.std(yhat[first]) > np.std(yhat[last]) else last
-    keep = ~block
-    if not np.ptp(op[keep]) > 0:
-        return float("nan")
-    xh = _fit_structure(model, u, pv, t, dt, [x], keep)
-    if xh is None:
-        return float("nan")
-    fh, _ = _full(model, xh, u, pv, t, dt, keep)
-    return nrmse_fit(pv[block], _predict(model, fh, u, t, dt)[block])
+    x, coef = sol.x, sol.coef
+    gain = float(coef[1])
+    full = np.concatenate([[gain], x, [coef[0]]])
+    yhat = coef[0] + gain * sol.s
+    if model == "ipdt":
+        full = np.append(full, -coef[2] / gain if gain != 0 else 0.0)   # op offset at which pv stands still
+        yhat = yhat + coef[2] * np.arange(n) * dt
+    e = pv - yhat
+    rss = float(np.dot(e, e))
+    p = len(full)
+    r1 = float(_acf(e, 1)[1]) if n > 2 else 0.0
+    # correct for correlated residuals only where the correlation is significant (|r1| > 2/sqrt(N))
+    infl = (1 + r1) / (1 - r1) if 2.0 / math.sqrt(n) < r1 < 0.999 else (1.0 if r1 < 0.999 else 2000.0)
+    n_eff = max(n / infl, p + 1.0)
+    J = response_jacobian(model, x, coef, u, dt)
+    s2 = rss / max(n - p, 1)
+    try:
+        cov = np.linalg.pinv(J.T @ J) * s2 * infl
+        half = special.stdtrit(max(n_eff - p, 1), 0.975) * np.sqrt(np.maximum(np.diag(cov), 0))
+    except np.linalg.LinAlgError:
+        half = np.full(p, np.inf)
+    bic = n_eff * math.log(max(rss / n, 1e-300)) + p * math.log(n_eff)
+    params = {k: float(v) for k, v in zip(PARAMS[model], full)}
+    ci = {k: float(v) for k, v in zip(PARAMS[model], half)}
+    if model in ("sopdt", "sopdt0") and params["tau2"] > params["tau1"]:
+        params["tau1"], params["tau2"] = params["tau2"], params["tau1"]
+        ci["tau1"], ci["tau2"] = ci["tau2"], ci["tau1"]
+    if model == "sopdt0":
+        params = {"gain": params["gain"], "tau1": params["tau1"], "tau2": params["tau2"], "tau_lead": 0.0,
+                  "dead_time": params["dead_time"]}
+        ci = {"gain": ci["gain"], "tau1": ci["tau1"], "tau2": ci["tau2"], "tau_lead": 0.0,
+              "dead_time": ci["dead_time"]}
+    return Fit("sopdt" if model == "sopdt0" else model, params, ci, float(full[len(PARAMS[model])]),
+               nrmse_fit(pv, yhat), float("nan"), rss, bic, n_eff, ljung_box_p(e), _xcorr_past(e, op, LAGS), yhat)
+
+
+def _fit_many(model: str, cases) -> list[Fit | None]:
+    """One structure fitted to many records: ``cases`` of ``(op, pv, dt, step, seed)`` (seed: a fit or None).
+
+    A sopdt whose lead's interval holds 0 is refitted with the lead fixed at 0 (lead and dead time
+    trade off at low frequency, so a free lead would blur the dead time).
+    """
+    starts = []
+    for op, pv, dt, step, seed in cases:
+        if model == "sopdt0":
+            sp = seed.params
+            starts.append([np.array([sp["tau1"], sp["tau2"], max(sp["dead_time"] + sp["tau_lead"], 0.0)])])
+        else:
+            sx = np.array([seed.params["tau1"], seed.params["dead_time"]]) if seed is not None and \
+                seed.model == "fopdt" else None
+            starts.append([np.asarray(v, float) for v in _starts(model, step[0], step[1], dt, sx)])
+    sols = _solve_many(model, [(op - op[0], pv, dt, 0, len(op)) for op, pv, dt, _, _ in cases], starts)
+    fits: list[Fit | None] = []
+    for (op, pv, dt, _, _), sol in zip(cases, sols):
+        fits.append(_fit_of(model, sol, op, pv, dt) if sol is not None else None)
+    if model == "sopdt":
+        again = [i for i, f in enumerate(fits) if f is not None and not abs(f.params["tau_lead"]) > f.ci95["tau_lead"]]
+        if again:
+            reduced = _fit_many("sopdt0", [(cases[i][0], cases[i][1], cases[i][2], cases[i][3], fits[i])
+                                           for i in again])
+            for i, r in zip(again, reduced):
+                if r is not None:
+                    fits[i] = r
+    return fits
 
 
 def _x_of(f: Fit) -> tuple[str, np.ndarray]:
@@ -763,63 +581,239 @@ def fit_structure(model: str, op: np.ndarray, pv: np.ndarray, dt: float, step: t
     Fit or None
         None when the optimiser found nothing finite.
     """
-    n = len(op)
-    t = np.arange(n) * dt
-    u = op - op[0]
-    T = n * dt
     if step is None:
         step = step_estimate(op, pv, dt)
-    sx = np.array([seed.params["tau1"], seed.params["dead_time"]]) if seed is not None and seed.model == "fopdt" \
-        else None
-    starts = _starts(model, step[0], step[1], dt, sx) if model != "sopdt0" else \
-        [[seed.params["tau1"], seed.params["tau2"], max(seed.params["dead_time"] + seed.params["tau_lead"], 0.0)]]
-    if n > 2 * COARSE_POINTS:
-        # coarse to fine: the search on every q-th sample (op still held, so the model is the same),
-        # then a few refining steps on all samples from there
-        q = n // COARSE_POINTS
-        xc = _fit_structure(model, u[::q], pv[::q], t[::q], dt * q, starts)
-        if xc is not None:
-            starts = [xc]
-    x = _fit_structure(model, u, pv, t, dt, starts)
-    if x is None:
-        return None
-    full, names = _full(model, x, u, pv, t, dt)
-    yhat = _predict(model, full, u, t, dt)
-    e = pv - yhat
-    rss = float(np.dot(e, e))
-    p = len(full)
-    r1 = float(_acf(e, 1)[1]) if n > 2 else 0.0
-    # correct for correlated residuals only where the correlation is significant (|r1| > 2/sqrt(N))
-    infl = (1 + r1) / (1 - r1) if 2.0 / math.sqrt(n) < r1 < 0.999 else (1.0 if r1 < 0.999 else 2000.0)
-    n_eff = max(n / infl, p + 1.0)
-    J = _jacobian(model, full, u, t, dt)
-    s2 = rss / max(n - p, 1)
+    f = _fit_many(model, [(op, pv, dt, step, seed)])[0]
+    if f is None or not holdout > 0:
+        return f
+    name_x, x = _x_of(f)
+    return replace(f, fit_holdout_pct=_holdout_many([(name_x, x, op, pv, dt, holdout, f.yhat)])[0])
+
+
+# --------------------------------------------------------------------------- many records
+
+@dataclass(frozen=True)
+class Arrays:
+    """One stretch of data to identify from, when it is not a :class:`Record`.
+
+    Attributes
+    ----------
+    op, pv : ndarray
+        Controller output and process variable on a uniform grid. [%]
+    dt : float
+        Sample interval. [s]
+    name : str
+        Name for notes.
+    notes : tuple of str
+        Notes carried from reading.
+    t0 : float
+        Time of the first sample. [s]
+    lines : tuple of int
+        First and last line of the data.
+    """
+
+    op: np.ndarray
+    pv: np.ndarray
+    dt: float
+    name: str = ""
+    notes: tuple[str, ...] = ()
+    t0: float = 0.0
+    lines: tuple[int, int] = (0, 0)
+
+
+def _arrays_of(record: Record) -> Arrays | Identification:
+    """The longest usable segment of a record, or the refusal that says why there is none."""
+    notes = [str(n) for n in record.notes]
+    empty = np.zeros(0)
+    missing = [s for s in ("pv", "op") if s not in record.signals]
+    if missing:
+        notes.append(f"{record.name}: no {' and no '.join(missing)} column: a model needs pv and op")
+        return Identification(record.name, None, {}, tuple(notes), False, empty, empty, empty)
+    if record.notes_of("units") and any(n.column in ("pv", "op", "pv_eu") for n in record.notes_of("units")):
+        notes.append(f"{record.name}: units of pv or op in doubt (see above): not identified")
+        return Identification(record.name, None, {}, tuple(notes), False, empty, empty, empty)
+    seg: Segment | None = record.longest()
+    if seg is None:
+        notes.append(f"{record.name}: no usable stretch of data: not identified")
+        return Identification(record.name, None, {}, tuple(notes), False, empty, empty, empty)
+    if len(record.segments) > 1:
+        notes.append(f"{record.name}: {len(record.segments)} segments; the longest (lines {seg.first_line}-"
+                     f"{seg.last_line}) used")
+    return Arrays(seg.values["op"], seg.values["pv"], seg.dt, record.name, tuple(notes), seg.t0,
+                  (seg.first_line, seg.last_line))
+
+
+@dataclass
+class _Case:
+    """A record on its way through :func:`identify_many`."""
+
+    a: Arrays
+    t: np.ndarray
+    pv: np.ndarray
+    notes: list[str]
+    step: tuple[np.ndarray, float] | None = None
+    fits: dict = field(default_factory=dict)
+    done: Identification | None = None
+
+    def refuse(self, reason: str, fits=None) -> Identification:
+        self.notes.append(reason)
+        return Identification(self.a.name, None, fits or {}, tuple(self.notes), False, self.t, self.pv, self.a.op,
+                              self.a.dt, self.a.lines)
+
+
+def _prepare(a: Arrays, policy: IdentifyPolicy) -> _Case:
+    """Data checks, spike removal and the start (step response) of one record."""
+    op = np.asarray(a.op, float)
+    pv = np.asarray(a.pv, float)
+    a = replace(a, op=op, pv=pv)
+    c = _Case(a, a.t0 + np.arange(len(op)) * a.dt, pv, list(a.notes))
+    if len(op) != len(pv) or not (math.isfinite(a.dt) and a.dt > 0) or len(op) < 10 or \
+            not (np.all(np.isfinite(op)) and np.all(np.isfinite(pv))):
+        c.done = c.refuse(f"{a.name or 'record'}: op and pv must be finite, of equal length (at least 10 samples) "
+                          f"on a positive sample interval: not identified")
+        return c
+    ex = excitation(op, policy)
+    if not ex.ok:
+        c.done = c.refuse(ex.reason)
+        return c
+    clean, spikes = hampel(pv, 7, policy.spike_sigmas)
+    if spikes.any():
+        c.notes.append(f"{int(spikes.sum())} spike{'s' if spikes.sum() != 1 else ''} in pv replaced by the local "
+                       f"median (Hampel identifier, window 7, {policy.spike_sigmas:g} robust sigmas)")
+    c.pv = clean
+    c.step = step_estimate(op, clean, a.dt)
+    return c
+
+
+def _fit_cases(cases: list[_Case], policy: IdentifyPolicy) -> None:
+    """Every structure over every open case (all records together), then selection and the held-out fit."""
+    open_ = [c for c in cases if c.done is None]
+    for m in sorted(policy.models, key=("fopdt", "ipdt", "sopdt").index):
+        fits = _fit_many(m, [(c.a.op, c.pv, c.a.dt, c.step, c.fits.get("fopdt")) for c in open_])
+        for c, f in zip(open_, fits):
+            if f is not None and np.isfinite(f.rss):
+                c.fits[m] = f
+    chosen = []
+    for c in open_:
+        if not c.fits:
+            c.done = c.refuse("no model could be fitted")
+            continue
+        order = [m for m in ("fopdt", "ipdt", "sopdt") if m in c.fits]
+        simple = [m for m in order if m != "sopdt"]
+        best = min(simple, key=lambda m: c.fits[m].bic) if simple else "sopdt"
+        if "sopdt" in c.fits and best != "sopdt":
+            so = c.fits["sopdt"]
+            # sopdt holds fopdt (tau2 -> 0, no lead): one that fits worse has not reached its optimum
+            if so.bic < c.fits[best].bic - policy.bic_margin and so.params["tau2"] > c.a.dt and \
+                    ("fopdt" not in c.fits or so.rss < c.fits["fopdt"].rss):
+                best = "sopdt"
+        chosen.append((c, best))
+    if policy.holdout > 0:
+        held = _holdout_many([(*_x_of(c.fits[b]), c.a.op, c.pv, c.a.dt, policy.holdout, c.fits[b].yhat)
+                              for c, b in chosen])
+        for (c, b), h in zip(chosen, held):
+            c.fits[b] = replace(c.fits[b], fit_holdout_pct=h)
+    for c, best in chosen:
+        bf = c.fits[best]
+        if not bf.fit_pct >= policy.min_fit_pct:
+            c.done = c.refuse(f"best model ({best}) fits only {bf.fit_pct:.0f} % (less than {policy.min_fit_pct:g} "
+                              f"%): the data do not support a model", c.fits)
+            continue
+        g, gh = bf.params["gain"], bf.ci95["gain"]
+        if not (np.isfinite(gh) and gh < abs(g)):
+            c.done = c.refuse(f"gain of the best model ({best}) not determined: {g:.3g} +/- {gh:.3g}; too little "
+                              f"excitation for the noise", c.fits)
+            continue
+        c.done = Identification(c.a.name, bf, c.fits, tuple(c.notes), True, c.t, c.pv, c.a.op, c.a.dt, c.a.lines)
+
+
+def _identify_chunk(items: Sequence[Record | Arrays], policy: IdentifyPolicy, summarise=None) -> list:
+    """:func:`identify_many` in one process."""
+    cases: list[_Case | Identification] = []
+    for it in items:
+        a = _arrays_of(it) if isinstance(it, Record) else it
+        if isinstance(a, Identification):
+            cases.append(a)
+            continue
+        try:
+            cases.append(_prepare(a, policy))
+        except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:   # one bad record, never the batch
+            cases.append(Identification(a.name, None, {}, (*a.notes, f"{a.name or 'record'}: could not be analysed: "
+                                                           f"{exc}"), False, np.zeros(0), np.zeros(0), np.zeros(0)))
+    work = [c for c in cases if isinstance(c, _Case)]
     try:
-        cov = np.linalg.pinv(J.T @ J) * s2 * infl
-        half = stats.t.ppf(0.975, max(n_eff - p, 1)) * np.sqrt(np.maximum(np.diag(cov), 0))
-    except np.linalg.LinAlgError:
-        half = np.full(p, np.inf)
-    bic = n_eff * math.log(max(rss / n, 1e-300)) + p * math.log(n_eff)
-    fit_h = _holdout(model, x, op, pv, dt, holdout, yhat) if holdout > 0 else float("nan")
-    params = {k: float(v) for k, v in zip(PARAMS[model], full)}
-    ci = {k: float(v) for k, v in zip(PARAMS[model], half)}
-    if model in ("sopdt", "sopdt0") and params["tau2"] > params["tau1"]:
-        params["tau1"], params["tau2"] = params["tau2"], params["tau1"]
-        ci["tau1"], ci["tau2"] = ci["tau2"], ci["tau1"]
-    if model == "sopdt0":
-        params = {"gain": params["gain"], "tau1": params["tau1"], "tau2": params["tau2"], "tau_lead": 0.0,
-                  "dead_time": params["dead_time"]}
-        ci = {"gain": ci["gain"], "tau1": ci["tau1"], "tau2": ci["tau2"], "tau_lead": 0.0,
-              "dead_time": ci["dead_time"]}
-    out = Fit("sopdt" if model == "sopdt0" else model, params, ci, float(full[len(PARAMS[model])]),
-              nrmse_fit(pv, yhat), fit_h, rss, bic, n_eff, ljung_box_p(e), _xcorr_past(e, op, LAGS), yhat)
-    if model == "sopdt" and not abs(params["tau_lead"]) > ci["tau_lead"]:
-        # the data do not show a lead (its interval holds 0): the lead and the dead time trade off at low
-        # frequency, so fix the lead at 0 and fit again
-        reduced = fit_structure("sopdt0", op, pv, dt, step, holdout, out)
-        if reduced is not None:
-            return reduced
-    return out
+        _fit_cases(work, policy)
+    except (ValueError, FloatingPointError, np.linalg.LinAlgError):
+        for c in work:                       # find the record at fault: each on its own
+            if c.done is not None:
+                continue
+            try:
+                c.fits = {}
+                _fit_cases([c], policy)
+            except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
+                c.done = c.refuse(f"{c.a.name or 'record'}: could not be analysed: {exc}")
+    out = [c.done if isinstance(c, _Case) else c for c in cases]
+    return [summarise(r) for r in out] if summarise is not None else out
+
+
+_SHARED: tuple | None = None
+
+
+def _run_shared(bounds_: tuple[int, int]) -> list:
+    """Worker side of :func:`identify_many`: records ``lo:hi`` of those shared at fork time."""
+    items, policy, summarise = _SHARED
+    return _identify_chunk(items[bounds_[0]:bounds_[1]], policy, summarise)
+
+
+#: Fewer records than this per process are identified here (a worker costs ~0.3 s to start). [-]
+MIN_RECORDS_PER_JOB = 8
+
+
+def identify_many(items: Sequence[Record | Arrays], policy: IdentifyPolicy = IdentifyPolicy(), jobs: int = 1,
+                  summarise=None, chunk: int = 500) -> list:
+    """Identify models from many records at once (see the module notes).
+
+    Records are fitted together: each structure's Levenberg-Marquardt steps run for all records
+    of a batch in one set of array operations (:func:`.oefit.levenberg_marquardt`), records of any
+    length and with any sample interval mixed. A record that cannot be analysed gets its own
+    refusal note and never stops the others. The result of a record does not depend on the
+    others in its batch.
+
+    Parameters
+    ----------
+    items : sequence of Record or Arrays
+        The records (the longest segment of a :class:`Record` is used).
+    policy : IdentifyPolicy
+        Thresholds.
+    jobs : int
+        Worker processes (forked; records split in contiguous chunks). [-]
+    summarise : callable, optional
+        Applied to each :class:`Identification` in the worker, its result returned instead
+        (keeps large batches from carrying every simulated pv back).
+    chunk : int
+        Most records fitted in one batch. [-]
+
+    Returns
+    -------
+    list
+        One :class:`Identification` (or its summary) per item, in order.
+    """
+    items = list(items)
+    n = len(items)
+    jobs = max(1, min(int(jobs), n // MIN_RECORDS_PER_JOB)) if n else 1
+    parts = max(jobs * 2 if jobs > 1 else 1, -(-n // max(chunk, 1))) if n else 0
+    edges = [round(k * n / parts) for k in range(parts + 1)] if parts else [0]
+    spans = [(lo, hi) for lo, hi in zip(edges[:-1], edges[1:]) if hi > lo]
+    if jobs == 1 or _CONTEXT is None:
+        return [r for lo, hi in spans for r in _identify_chunk(items[lo:hi], policy, summarise)]
+    global _SHARED
+    _SHARED = (items, policy, summarise)
+    try:
+        # forked workers inherit the records: only the chunks' bounds and the results cross
+        with ProcessPoolExecutor(max_workers=jobs, mp_context=_CONTEXT) as pool:
+            return [r for part in pool.map(_run_shared, spans) for r in part]
+    finally:
+        _SHARED = None
 
 
 def identify_arrays(op: np.ndarray, pv: np.ndarray, dt: float, policy: IdentifyPolicy = IdentifyPolicy(),
@@ -848,49 +842,7 @@ def identify_arrays(op: np.ndarray, pv: np.ndarray, dt: float, policy: IdentifyP
     -------
     Identification
     """
-    out = list(notes)
-    t = t0 + np.arange(len(op)) * dt
-
-    def refuse(reason: str, fits=None) -> Identification:
-        out.append(reason)
-        return Identification(name, None, fits or {}, tuple(out), False, t, pv, op, dt, lines)
-
-    ex = excitation(op, policy)
-    if not ex.ok:
-        return refuse(ex.reason)
-    clean, spikes = hampel(pv, 7, policy.spike_sigmas)
-    if spikes.any():
-        out.append(f"{int(spikes.sum())} spike{'s' if spikes.sum() != 1 else ''} in pv replaced by the local "
-                   f"median (Hampel identifier, window 7, {policy.spike_sigmas:g} robust sigmas)")
-    pv = clean
-    step = step_estimate(op, pv, dt)
-    fits: dict[str, Fit] = {}
-    for m in sorted(policy.models, key=("fopdt", "ipdt", "sopdt").index):
-        f = fit_structure(m, op, pv, dt, step, 0.0, fits.get("fopdt"))   # held-out fit: the chosen one only
-        if f is not None and np.isfinite(f.rss):
-            fits[m] = f
-    if not fits:
-        return refuse("no model could be fitted")
-    order = [m for m in ("fopdt", "ipdt", "sopdt") if m in fits]
-    simple = [m for m in order if m != "sopdt"]
-    best = min(simple, key=lambda m: fits[m].bic) if simple else "sopdt"
-    if "sopdt" in fits and best != "sopdt":
-        so = fits["sopdt"]
-        if so.bic < fits[best].bic - policy.bic_margin and so.params["tau2"] > dt:
-            best = "sopdt"
-    bf = fits[best]
-    if policy.holdout > 0:
-        name_x, x = _x_of(bf)
-        bf = replace(bf, fit_holdout_pct=_holdout(name_x, x, op, pv, dt, policy.holdout, bf.yhat))
-        fits[best] = bf
-    if not bf.fit_pct >= policy.min_fit_pct:
-        return refuse(f"best model ({best}) fits only {bf.fit_pct:.0f} % (less than {policy.min_fit_pct:g} %): "
-                      f"the data do not support a model", fits)
-    g, gh = bf.params["gain"], bf.ci95["gain"]
-    if not (np.isfinite(gh) and gh < abs(g)):
-        return refuse(f"gain of the best model ({best}) not determined: {g:.3g} +/- {gh:.3g}; too little "
-                      f"excitation for the noise", fits)
-    return Identification(name, bf, fits, tuple(out), True, t, pv, op, dt, lines)
+    return identify_many([Arrays(op, pv, dt, name, tuple(notes), t0, lines)], policy)[0]
 
 
 def identify_record(record: Record, policy: IdentifyPolicy = IdentifyPolicy()) -> Identification:
@@ -908,21 +860,4 @@ def identify_record(record: Record, policy: IdentifyPolicy = IdentifyPolicy()) -
     Identification
         With ``best`` None and a note when the record cannot give a model.
     """
-    notes = [str(n) for n in record.notes]
-    empty = np.zeros(0)
-    missing = [s for s in ("pv", "op") if s not in record.signals]
-    if missing:
-        notes.append(f"{record.name}: no {' and no '.join(missing)} column: a model needs pv and op")
-        return Identification(record.name, None, {}, tuple(notes), False, empty, empty, empty)
-    if record.notes_of("units") and any(n.column in ("pv", "op", "pv_eu") for n in record.notes_of("units")):
-        notes.append(f"{record.name}: units of pv or op in doubt (see above): not identified")
-        return Identification(record.name, None, {}, tuple(notes), False, empty, empty, empty)
-    seg: Segment | None = record.longest()
-    if seg is None:
-        notes.append(f"{record.name}: no usable stretch of data: not identified")
-        return Identification(record.name, None, {}, tuple(notes), False, empty, empty, empty)
-    if len(record.segments) > 1:
-        notes.append(f"{record.name}: {len(record.segments)} segments; the longest (lines {seg.first_line}-"
-                     f"{seg.last_line}) used")
-    return identify_arrays(seg.values["op"], seg.values["pv"], seg.dt, policy, record.name, notes, seg.t0,
-                           (seg.first_line, seg.last_line))
+    return identify_many([record], policy)[0]
