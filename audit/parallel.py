@@ -194,3 +194,50 @@ def step_figures_parallel(models: Sequence[LoopModel | None], policy, stable=Non
     st = [None] * len(models) if stable is None else list(stable)
     # one chunk per worker: the simulation's cost per time step is mostly fixed per call
     return map_chunks(_steps_chunk, models, [st], jobs, extra=(policy,), chunks_per_job=1)
+
+
+_PARTS: tuple | None = None
+
+
+def _run_part(idx: np.ndarray):
+    """Worker side of :func:`map_parts`: ``fn(*extra, idx)`` with the arguments shared at fork time."""
+    fn, extra = _PARTS
+    return fn(*extra, idx)
+
+
+def map_parts(fn, n: int, jobs: int, extra: tuple = (), min_per_job: int = MIN_LOOPS_PER_JOB) -> list:
+    """``fn(*extra, indices)`` on consecutive parts of ``range(n)`` in ``jobs`` processes; results in order.
+
+    With one job (or too few items to pay for workers) ``fn`` runs once, here, on every index.
+    Forked workers inherit ``extra``: only the indices and the results cross the process boundary.
+
+    Parameters
+    ----------
+    fn : callable
+        A module-level function of (*extra, indices) returning a picklable result.
+    n : int
+        Number of items. [-]
+    jobs : int
+        Worker processes. [-]
+    extra : tuple
+        Arguments passed whole to every call (items, settings, ...).
+    min_per_job : int
+        Fewest items a worker is started for. [-]
+
+    Returns
+    -------
+    list
+        One result per part, in order of the parts.
+    """
+    jobs = max(1, int(jobs))
+    if jobs == 1 or n < 2 * min_per_job or _CONTEXT is None:
+        return [fn(*extra, np.arange(n))]
+    jobs = min(jobs, n // min_per_job)
+    parts = np.array_split(np.arange(n), jobs)
+    global _PARTS
+    _PARTS = (fn, extra)
+    try:
+        with ProcessPoolExecutor(max_workers=jobs, mp_context=_CONTEXT) as pool:
+            return list(pool.map(_run_part, parts))
+    finally:
+        _PARTS = None

@@ -226,7 +226,7 @@ STAGES: tuple[tuple[str, str, str], ...] = (
     ("residuals", "audit.disturbance", "add_residuals"),
     ("residual_check", "audit.pipeline", "judge_residuals"),
     ("health", "audit.plantdata.health", "add_loop_health"),
-    ("proposals", "audit.tuning", "add_proposals"),
+    ("proposals", "audit.proposals", "add_proposals"),
     ("group_proposals", "audit.multiloop.stage", "check_group_proposals"),
     ("priority", "audit.priority", "add_priority"),
     ("modelcheck", "audit.plantdata.modelcheck", "check_models"),

@@ -141,7 +141,7 @@ def test_one_row_that_raises_in_each_row_wise_stage(baseline, tmp_path, monkeypa
     import audit.cascade as cascade
     import audit.disturbance as disturbance
     import audit.timedomain as timedomain
-    import audit.tuning as tuning
+    import audit.proposals as tuning
 
     rows = read_inventory(str(SAMPLE)).rows
     tags = [r["tag"] for r in baseline]

@@ -1,0 +1,212 @@
+"""Unit tests of audit.candidates: the candidate search batched across loops.
+
+The batched search must give every loop the candidates it gets alone (a batched computation
+equals its per-item form: common practice), its array shortcuts must equal the plain
+definitions they replace, and one loop whose search fails must not stop the others.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+import audit.candidates as cand
+from audit.candidates import (
+    candidate_settings, candidate_settings_many, characteristic_w, characteristic_ws, loop_responses, max_ki,
+    screening_grids,
+)
+from audit.loop import model_from_row
+from audit.rows import LoopRow
+from audit.tuning import Limits, Requirement
+
+
+def _row(i, **kw) -> LoopRow:
+    base = dict(index=i, sheet="loops", excel_row=i + 2, tag=f"T-{i}")
+    base.update(kw)
+    return LoopRow(**base)
+
+
+#: Mixed loops (test data): fopdt, sopdt, ipdt with and without lag, a tf with a right-half-plane
+#: zero, an open-loop unstable tf, a loop without dead time, direct action, a series-form row.
+ROWS = [
+    _row(0, model="fopdt", gain=2.0, tau1=20.0, dead_time=4.0, kc=2.0, ti=5.0),
+    _row(1, model="sopdt", gain=1.5, tau1=100.0, tau2=20.0, dead_time=10.0, kc=3.0, ti=30.0, form="series",
+         sample=1.0),
+    _row(2, model="ipdt", gain=0.01, dead_time=10.0, kc=20.0, ti=100.0),
+    _row(3, model="ipdt", gain=0.02, tau1=15.0, dead_time=5.0, kc=5.0, ti=200.0, pv_filter=1.0),
+    _row(4, model="tf", num=(-1.0, 1.0), den=(10.0, 7.0, 1.0), dead_time=1.0, form="parallel", kp=1.0, ki=0.1,
+         kd=0.0),
+    _row(5, model="tf", num=(1.0,), den=(10.0, -1.0), dead_time=0.5, kc=2.0, ti=20.0),
+    _row(6, model="fopdt", gain=1.0, tau1=10.0, dead_time=0.0, pv_filter=0.5, sample=0.2, kc=8.0, ti=1.0),
+    _row(7, model="fopdt", gain=-1.0, tau1=10.0, dead_time=2.0, kc=1.0, ti=10.0, action="direct"),
+    _row(8, model="sopdt", gain=0.8, tau1=30.0, tau2=30.0, dead_time=3.0, kc=1.0, ti=30.0, td=5.0),
+]
+#: Requirements and limits varied across the loops: some without a requirement, some with
+#: limits that add forbidden points (a tight gain margin) or remove them (a loose phase margin).
+REQS = [Requirement(0.01, 20.0), Requirement(0.002, 10.0), Requirement(), Requirement(0.005, 6.0), Requirement(),
+        Requirement(0.05, 10.0), Requirement(0.5, 10.0), Requirement(0.02, 12.0), Requirement(0.01, 3.0)]
+LIMS = [Limits(), Limits(1.6, 6.0, 30.0), Limits(), Limits(2.0, 10.0, 45.0), Limits(1.4, 8.0, 50.0),
+        Limits(), Limits(2.0, 4.0, 20.0), Limits(), Limits(1.8, 6.0, 30.0)]
+
+
+def _models():
+    models = [model_from_row(r) for r in ROWS]
+    # a cascade's outer loop: the slow sopdt loop around the fast fopdt loop as its inner loop
+    inner = model_from_row(_row(9, model="fopdt", gain=1.0, tau1=2.0, dead_time=0.2, kc=1.0, ti=2.0, tag="FIC-1"))
+    outer = model_from_row(_row(10, model="fopdt", gain=1.5, tau1=120.0, dead_time=10.0, kc=2.0, ti=120.0), inner)
+    return models + [outer], REQS + [Requirement(0.005, 10.0)], LIMS + [Limits()]
+
+
+def _same_settings(a, b):
+    assert a.method == b.method and a.form == b.form
+    for x, y in ((a.kc, b.kc), (a.ti, b.ti), (a.td, b.td), (a.alpha, b.alpha)):
+        assert (x is None and y is None) or x == pytest.approx(y, rel=1e-12), (a.method, x, y)
+
+
+def test_batched_candidates_equal_each_loop_alone():
+    """Every loop of a mixed batch (rules, tau_c screens, ki frontiers) gets the candidates it gets
+    alone, in the same order (a batched computation equals its per-item form: common practice)."""
+    models, reqs, lims = _models()
+    alphas = [0.1, 0.125, 0.1, 0.1, 0.1, 0.1, 0.1, 0.1, 0.2, 0.1]
+    many = candidate_settings_many(models, lims, reqs, alphas)
+    assert len(many) == len(models)
+    kinds = set()
+    for m, lim, req, a, got in zip(models, lims, reqs, alphas, many):
+        assert got.error is None
+        alone, notes = candidate_settings(m, lim, req, a)
+        assert got.notes == notes
+        assert len(got.settings) == len(alone), m.tag
+        for x, y in zip(got.settings, alone):
+            _same_settings(x, y)
+        kinds |= {s.method.split(",")[0].split(" at ")[0] for s in got.settings}
+    # the batch exercised every kind of candidate
+    assert {"SIMC PI", "SIMC PID", "AMIGO PI", "AMIGO PID", "max-ki PI", "max-ki PID"} <= kinds
+    assert any("smoothest" in s.method for c in many for s in c.settings)
+    assert any(s.method.startswith("best-band") for c in many for s in c.settings)
+
+
+def test_batch_order_does_not_matter():
+    """Reversing the batch gives each loop the same candidates (common practice)."""
+    models, reqs, lims = _models()
+    alphas = [0.1] * len(models)
+    fwd = candidate_settings_many(models, lims, reqs, alphas)
+    rev = candidate_settings_many(models[::-1], lims[::-1], reqs[::-1], alphas)[::-1]
+    for a, b in zip(fwd, rev):
+        assert len(a.settings) == len(b.settings)
+        for x, y in zip(a.settings, b.settings):
+            _same_settings(x, y)
+
+
+def test_one_loop_whose_search_fails_does_not_stop_the_others(monkeypatch):
+    """A loop whose own search raises gets the exception; every other loop its usual candidates."""
+    models, reqs, lims = _models()
+    alphas = [0.1] * len(models)
+    clean = candidate_settings_many(models, lims, reqs, alphas)
+    real = cand._plan
+
+    def plan(model, *a, **k):
+        if model.tag == "T-3":
+            raise RuntimeError("planted search fault")
+        return real(model, *a, **k)
+
+    monkeypatch.setattr(cand, "_plan", plan)
+    got = candidate_settings_many(models, lims, reqs, alphas)
+    for m, a, b in zip(models, got, clean):
+        if m.tag == "T-3":
+            assert isinstance(a.error, RuntimeError) and a.settings == []
+            continue
+        assert a.error is None and len(a.settings) == len(b.settings)
+        for x, y in zip(a.settings, b.settings):
+            _same_settings(x, y)
+    with pytest.raises(RuntimeError, match="planted"):
+        candidate_settings(models[3], lims[3], reqs[3])
+
+
+def test_a_fault_of_the_batched_arithmetic_costs_only_its_loop(monkeypatch):
+    """When the batched arithmetic itself raises, the loops are searched one by one: only the loop
+    at fault is lost."""
+    models, reqs, lims = _models()
+    alphas = [0.1] * len(models)
+    clean = candidate_settings_many(models, lims, reqs, alphas)
+    real = cand.characteristic_ws
+
+    def wcs(ms):
+        if any(m.tag == "T-1" for m in ms):
+            raise FloatingPointError("planted arithmetic fault")
+        return real(ms)
+
+    monkeypatch.setattr(cand, "characteristic_ws", wcs)
+    got = candidate_settings_many(models, lims, reqs, alphas)
+    assert [g.error is not None for g in got] == [m.tag == "T-1" for m in models]
+    for a, b in zip(got, clean):
+        if a.error is None:
+            assert [s.method for s in a.settings] == [s.method for s in b.settings]
+
+
+def test_loop_responses_equal_each_loops_own_response():
+    """The batched L(jw) (padded Horner, delay, inner set-point response) equals LoopModel.L of
+    each loop (common practice)."""
+    models, _, _ = _models()
+    w = np.logspace(-4, 2, 301)
+    got = loop_responses(models, w)
+    for m, row in zip(models, got):
+        np.testing.assert_allclose(row, m.L(w), rtol=1e-13, atol=0)
+
+
+def test_characteristic_w_is_the_phase_crossover_of_a_pure_delay_lag():
+    """For K e^{-theta s}/(tau s + 1) with C = 1 the phase reaches -180 deg where
+    w theta + atan(w tau) = pi (closed form); the grid point found lies at or just past it."""
+    m = model_from_row(_row(0, model="fopdt", gain=1.0, tau1=10.0, dead_time=2.0, kc=1.0, ti=10.0))
+    from scipy.optimize import brentq
+    w180 = brentq(lambda w: w * 2.0 + math.atan(w * 10.0) - math.pi, 1e-3, 10.0)
+    wc = characteristic_w(m)
+    step = 10 ** (12 / 2400)
+    assert w180 <= wc <= w180 * step
+    assert characteristic_ws([m, m])[1] == wc
+    # no dead time or lag: the phase never falls far enough
+    free = model_from_row(_row(1, model="ipdt", gain=1.0, dead_time=0.0, kc=1.0, ti=10.0))
+    assert characteristic_w(free) is None
+
+
+def test_screening_grid_is_the_log_grid_with_the_band_edge():
+    """Each row is numpy's union of the log grid and the band edge (the definition it replaces),
+    padded by repeating its last point when the edge is absent or already a grid point."""
+    wc = np.array([0.3, 2.0, 5.0, 0.01])
+    base = [np.logspace(math.log10(x) - 2.5, math.log10(x) + 1.2, 500) for x in wc]
+    wd = np.array([0.05, np.nan, base[2][100], 7.0])
+    g = screening_grids(wc, wd)
+    for k in range(len(wc)):
+        ref = np.union1d(base[k], [wd[k]]) if np.isfinite(wd[k]) else base[k]
+        np.testing.assert_array_equal(g.w[k, :ref.size], ref)
+        if ref.size == 500:
+            assert g.w[k, 500] == ref[-1] and not g.pair[k, 499]
+        else:
+            assert g.pair[k].all()
+
+
+def test_ki_contact_equals_the_general_first_contact():
+    """The real-arithmetic contact of L0 = kp A equals the general contact of the line L0 + t b
+    (the same geometry solved two ways: common practice)."""
+    rng = np.random.default_rng(5)
+    R, K, n = 3, 7, 400
+    w = np.logspace(-2, 1, n)
+    A = (2.0 / (1j * w * 5 + 1))[None, :] * np.exp(-1j * w[None, :] * rng.uniform(0.5, 2.0, (R, 1)))
+    b = A / (1j * w[None, :])
+    kp = np.sort(rng.uniform(0.05, 1.0, (R, K)), -1)
+    r = np.array([0.5, 0.6, 0.55])
+    pts = np.array([[-2.0, -1.7, np.nan], [-1.9, np.nan, np.nan], [complex(-0.87, -0.5), -2.0, -1.6]])
+    got = cand._ki_contact(kp, A, b, r, pts)
+    ref = cand._first_contact(kp[..., None] * A[:, None, :], b[:, None, :], r, pts)
+    np.testing.assert_allclose(got, ref, rtol=1e-9)
+    assert np.isfinite(got).all() and (got > 0).sum() > R * K // 2   # mostly real contacts, not t = 0
+
+
+def test_max_ki_is_unchanged_by_the_batch_of_one():
+    """max_ki of a loop equals the max-ki PI candidate its batched search finds (same frontier)."""
+    models, reqs, lims = _models()
+    s = max_ki(models[0], lims[0])
+    got = candidate_settings_many(models[:1], lims[:1], [Requirement()], [0.1])[0]
+    pick = [c for c in got.settings if c.method.startswith("max-ki PI")][0]
+    assert s.kc == pick.kc and s.ti == pick.ti
