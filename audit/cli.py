@@ -107,16 +107,20 @@ def cli() -> None:
 @click.option("--quiet", is_flag=True, help="No progress output.")
 @click.option("--force", is_flag=True, help="Write into a folder that holds the inventory, or replace files "
                                             "of the output names that plant-audit did not write.")
+@click.option("--data", "data", default=None, help="The site's historian export (a .parquet/.csv file or a folder of "
+                                                   "them): each row's operating record unless it has a data_file.")
 def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, jobs, history, no_history, quiet,
-        force):
+        force, data):
     """Evaluate every loop of INVENTORY and write results and report into --out."""
     from .pipeline import AuditOptions
     from .runner import run_audit
 
     opts = AuditOptions(out_dir=out_dir, site=site, title=title, date=date, paper=paper, detail=detail,
                         propose=propose, pdf=not no_pdf, jobs=jobs, quiet=quiet, history=history,
-                        record_history=not no_history)
+                        record_history=not no_history, data=data)
     audit, written = run_audit(inventory, opts, force=force)
+    if not quiet and audit.extras.get("export") is not None:
+        click.echo(audit.extras["export"].text(), err=True)
     if not quiet:
         counts = audit.results["status"].value_counts()
         summary = ", ".join(f"{counts.get(s, 0)} {s}" for s in ("passes", "marginal", "fails", "unstable", "invalid"))

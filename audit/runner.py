@@ -300,6 +300,13 @@ def run_audit(inventory_path: str, options: AuditOptions, force: bool = False) -
         t0 = time.perf_counter()
         inv = read_inventory(inventory_path)
         audit = new_audit(inv, options)
+        if options.data is not None and not hasattr(options.data, "read"):
+            from .plantdata.export import ExportError, open_for_audit
+            try:
+                src, summary = open_for_audit(str(options.data), inv)
+            except ExportError as exc:
+                raise UserError(str(exc)) from None
+            audit.extras["export"] = summary
         audit.timings["read"] = time.perf_counter() - t0
         run_stages(audit, progress)
         progress("write")

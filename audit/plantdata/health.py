@@ -563,8 +563,9 @@ def _problems(rec) -> str:
 def operation_records(audit) -> dict:
     """Records of normal operation of the inventory's rows, as arrays (the reader's adapter).
 
-    A row's record (its ``data_file``) is read with :func:`audit.plantdata.records.read_record`
-    and used when it holds ``sp``, ``pv`` and ``op`` (``mode`` where logged). Problems the reader
+    A row's record (its ``data_file``, else its slice of the historian export ``--data``) comes
+    from :func:`audit.plantdata.export.record_for_row` and is used when it holds ``sp``, ``pv``
+    and ``op`` (``mode`` where logged). Problems the reader
     found are named by file and line in the note; a record with nothing usable gives no figures,
     only the note. The records read are kept in ``audit.extras['plant_records']`` (row position ->
     Record) for later stages.
@@ -581,30 +582,31 @@ def operation_records(audit) -> dict:
     """
     from pathlib import Path
 
-    from . import records as _records
+    from .export import record_for_row
 
     inv = audit.inventory
     policy = inv.policy
     folder = Path(inv.path).resolve().parent
-    rp = _records.ReadPolicy(max_gap_intervals=policy.max_gap_s, uniform_tolerance=policy.uniform_tolerance,
-                             min_samples=policy.min_samples)
     kept = audit.extras.setdefault("plant_records", {})
     out: dict = {}
     for i, row in enumerate(inv.rows):
-        target = getattr(row, "data_file", None) or row.extras.get("data_file")
-        if not target or not row.valid:
-            continue
-        try:
-            full, shown = _records.confine(folder, str(target))
-        except _records.PathError as exc:
-            out[i] = (None, f"operating record: {exc}")
+        if not row.valid:
             continue
         rec = kept.get(i)
         if rec is None:
-            rec = _records.read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, policy=rp, name=shown)
-            kept[i] = rec
+            got = record_for_row(row, folder, audit.options, policy)
+            if got is None:
+                continue
+            if got.record is None:
+                out[i] = (None, got.note)
+                continue
+            rec = kept[i] = got.record
+        shown = rec.name
         problems = _problems(rec)
         missing = [s for s in ("sp", "pv", "op") if s not in rec.signals]
+        if not rec.signals and problems:
+            out[i] = (None, problems)
+            continue
         if missing:
             out[i] = (None, f"{shown}: no {', '.join(missing)} column, so no loop-health figures (they need "
                             f"sp, pv and op of routine operation)" + (f"; {problems}" if problems else ""))

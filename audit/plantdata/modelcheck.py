@@ -45,7 +45,8 @@ import numpy as np
 import pandas as pd
 
 from .identify import Identification, IdentifyPolicy, _run, identify_record, nrmse_fit
-from .records import PathError, confine, read_record
+from .export import has_record, record_for_row
+from .records import Record
 
 MODELCHECK_COLUMNS = ("model_check", "model_fit_pct", "id_model", "id_gain", "id_gain_ci95", "id_tau1_s",
                       "id_tau1_ci95_s", "id_tau2_s", "id_lead_s", "id_dead_time_s", "id_dead_time_ci95_s",
@@ -156,29 +157,37 @@ def _fit_offsets(row, y: np.ndarray, s: np.ndarray, dt: float) -> np.ndarray:
     return s + X @ coef
 
 
-def check_row(row, folder: Path, policy, id_policy: IdentifyPolicy = IdentifyPolicy()) -> ModelCheck:
+def check_row(row, folder: Path, policy, id_policy: IdentifyPolicy = IdentifyPolicy(), options=None,
+              record: Record | None = None) -> ModelCheck:
     """Check one row's model against its record.
 
     Parameters
     ----------
     row : LoopRow
-        With ``data_file`` set.
+        With ``data_file`` set, or a tag in the export ``options.data``.
     folder : Path
         The inventory's folder (the record must lie inside it).
     policy : Policy
-        ``model_*`` thresholds.
+        ``model_*`` thresholds; the reader's settings.
     id_policy : IdentifyPolicy
         Identification settings.
+    options : AuditOptions or None
+        ``options.data``: the historian export, for a row without a ``data_file``.
+    record : Record or None
+        The row's record when already read (by the loop-health stage).
 
     Returns
     -------
     ModelCheck
     """
-    try:
-        full, shown = confine(folder, row.data_file)
-    except PathError as exc:
-        return ModelCheck("record unusable", note=f"data record: {exc}")
-    rec = read_record(full, pv_lo=row.pv_lo, pv_hi=row.pv_hi, name=shown)
+    if record is None:
+        got = record_for_row(row, folder, options, policy)
+        if got is None:
+            return ModelCheck("record unusable", note="data record: none (no data_file, no export)")
+        if got.record is None:
+            return ModelCheck("record unusable", note=f"data record: {got.note.split(': ', 1)[-1]}")
+        record = got.record
+    rec, shown = record, record.name
     if not rec.usable or "pv" not in rec.signals or "op" not in rec.signals:
         why = [str(n) for n in rec.notes_of("file", "header", "short")] or \
             [f"{shown}: needs op and pv columns"]
@@ -251,7 +260,7 @@ def check_models(audit) -> None:
 
     res = audit.results
     inv = audit.inventory
-    rows = [r for r in inv.rows if getattr(r, "data_file", None)]
+    rows = [r for r in inv.rows if has_record(r, audit.options, inv.policy)]
     if not rows:
         return
     folder = Path(inv.path).resolve().parent
@@ -269,7 +278,8 @@ def check_models(audit) -> None:
             res.at[label, "data_note"] = "row not evaluated: see message"
             continue
         try:
-            mc = check_row(row, folder, inv.policy)
+            mc = check_row(row, folder, inv.policy, options=audit.options,
+                           record=audit.extras.get("plant_records", {}).get(row.index))
         except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:   # a bad record, never the run
             mc = ModelCheck("record unusable", note=f"data record could not be analysed: {exc}")
         store[row.index] = mc
