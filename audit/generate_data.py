@@ -440,16 +440,11 @@ def write_synthetic_export(inventory_path: str | Path, path: str | Path, days: f
     tmp.mkdir(parents=True)
     t0_us = int(np.datetime64(START.replace("+00:00", ""), "us").astype(np.int64))
     try:
-        speeds = [substeps_for([q.row], ts) for q in plans]
-        if single:                                                # one file: every loop in one batch
-            batches = [(0, plans)] if plans else []
-        else:                                                     # loops of one speed together
-            batches, b0 = [], 0
-            for m in sorted(set(speeds)):
-                same = [q for q, s in zip(plans, speeds) if s == m]
-                for a in range(0, len(same), BATCH_LOOPS):
-                    batches.append((b0, same[a:a + BATCH_LOOPS]))
-                    b0 += FILE_LOOPS * math.ceil(len(same[a:a + BATCH_LOOPS]) / FILE_LOOPS)
+        # loops of like speed together; a batch steps at its fastest controller's rate (per-step cost
+        # is mostly fixed, so one large batch beats many small ones)
+        order = sorted(plans, key=lambda q: substeps_for([q.row], ts))
+        size = max(len(order), 1) if single else BATCH_LOOPS
+        batches = [(b0, order[b0:b0 + size]) for b0 in range(0, len(order), size)]
         for b0, batch in batches:
             p = discretise([q.row for q in batch], ts, [q.dead_time for q in batch],
                            substeps_for([q.row for q in batch], ts))

@@ -62,7 +62,7 @@ from typing import Iterator, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from ..limits import MAX_RECORD_LINES
+from ..limits import MAX_EXPORT_FILES, MAX_RECORD_LINES
 from .records import (SIGNALS, TIME_COLUMNS, PathError, ReadPolicy, Record, _Chunk, _csv_chunks, _csv_header,
                       _Notes, _parquet_chunks, _times, assemble_record, confine, read_record)
 
@@ -70,8 +70,6 @@ PARQUET_SUFFIXES = (".parquet", ".pq")
 CSV_SUFFIXES = (".csv",)
 #: Line numbers of the files of a folder are kept apart by this stride while a slice is read. [-]
 _STRIDE = 10 ** 12
-#: Most files of one export. [-]
-MAX_EXPORT_FILES = 100_000
 
 
 class ExportError(ValueError):

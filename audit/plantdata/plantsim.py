@@ -313,27 +313,40 @@ def run_chunk(p: PlantArrays, st: LoopState, sp: np.ndarray, noise: np.ndarray, 
     df_b = np.where(p.td > 0, p.kc * p.td / den, 0.0)
     has_i = ki > 0
     any_st = bool(np.any(S > 0))
+    any_d = bool(np.any(p.td > 0))
+    any_man = bool(manual.any())
     all_run = bool(np.all(p.every == 1))
-    x, line, c, a, b1, b2 = st.x, st.line, p.c, p.a, p.b1, p.b2
+    simple_i = bool(np.all(has_i)) and not any_man            # back-calculation alone
+    m = max(1, int(np.max(np.count_nonzero(p.c, axis=1), initial=1)))   # modes in use
+    x, line = st.x[:, :m], st.line
+    c, a, b1, b2 = p.c[:, :m], p.a[:, :m], p.b1[:, :m], p.b2[:, :m]
+    sdf = p.sign * df_b
+    sign, kc = p.sign, p.kc
     u = st.u_out
+    dfilt = st.dfilt
     for j in range(T):
         man = manual[:, j]
         hand = op_hand[:, j]
         spj = sp[:, j]
-        nj = noise[:, j]
-        lj = load[:, j]
+        base = sp0 + noise[:, j]
+        lj = load[:, j] - op0
         for sub in range(p.substeps):
             k = st.k
-            meas = sp0 + (x * c).sum(axis=1) + nj
+            meas = base + (x[:, 0] * c[:, 0] if m == 1 else (x * c).sum(axis=1))
             if sub == 0:
                 pv[:, j] = meas
-            e = p.sign * (spj - meas)
-            dfilt = df_a * st.dfilt - p.sign * df_b * (meas - st.meas_prev)
-            prop = p.kc * e
+            e = sign * (spj - meas)
+            prop = kc * e
+            if any_d:
+                dfilt = df_a * st.dfilt - sdf * (meas - st.meas_prev)
             integ = st.integ + ki * e
-            un = np.clip(prop + integ + dfilt, 0.0, 100.0)
-            un = np.where(man, hand, un)
-            integ = np.where(has_i | man, un - prop - dfilt, integ)   # back-calculation and tracking
+            un = np.minimum(np.maximum(prop + integ + dfilt, 0.0), 100.0)
+            if any_man:
+                un = np.where(man, hand, un)
+            if simple_i:
+                integ = un - prop - dfilt
+            else:
+                integ = np.where(has_i | man, un - prop - dfilt, integ)   # back-calculation and tracking
             if all_run:
                 u, st.integ, st.dfilt, st.meas_prev = un, integ, dfilt, meas
             else:
@@ -345,11 +358,14 @@ def run_chunk(p: PlantArrays, st: LoopState, sp: np.ndarray, noise: np.ndarray, 
             if sub == 0:
                 op[:, j] = u
             xv = stiction(u, st, S, J) if any_st else u
-            line[:, k % width] = xv - op0 + lj
+            line[:, k % width] = xv + lj
             u1 = line[rows, (k - p.d) % width]
             u2 = line[rows, (k - p.d - 1) % width]
             x = a * x + b1 * u1[:, None] + b2 * u2[:, None]
             st.k = k + 1
+    full = np.zeros_like(st.x)
+    full[:, :m] = x
+    x = full
     st.x = x
     st.u_out = u
     return pv, op
