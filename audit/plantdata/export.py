@@ -627,8 +627,8 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
     lines = np.concatenate(parts_l)
     raw_t = pd.concat(parts_t, ignore_index=True)
     raw_s = pd.concat(parts_s, ignore_index=True).astype(str).str.lower().str.split().str.join(" ")
-    raw_v = pd.concat(parts_v, ignore_index=True)
-    del parts_t, parts_s, parts_v
+    starts = np.cumsum([0] + [len(v) for v in parts_v[:-1]])
+    del parts_t, parts_s
     sig = raw_s.map(words).to_numpy(dtype=object)
     unknown = pd.isna(sig)
     if unknown.any():
@@ -660,13 +660,9 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
             keep[dup] = False
             idx, ts = idx[keep], ts[keep]
         pos = np.searchsorted(grid, ts)
-        vals = raw_v.iloc[idx]
-        if pd.api.types.is_numeric_dtype(vals.dtype) and not pd.api.types.is_bool_dtype(vals.dtype) and s != "mode":
-            arr = np.full(len(grid), np.nan)
-            arr[pos] = vals.to_numpy(dtype=float, na_value=np.nan)
-        else:
-            arr = np.full(len(grid), None, dtype=object)
-            arr[pos] = vals.to_numpy(dtype=object)
+        vals, numeric = _take(parts_v, starts, idx, s != "mode")
+        arr = np.full(len(grid), np.nan) if numeric else np.full(len(grid), None, dtype=object)
+        arr[pos] = vals
         ln = np.zeros(len(grid), dtype=np.int64)
         ln[pos] = lines[idx]
         np.minimum.at(rep, pos, lines[idx])
@@ -677,6 +673,21 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
         col_lines[s][miss] = rep[miss]
     chunk = _Chunk(rep, cols, (), grid.astype(float), col_lines)
     return iter((chunk,)), {s: (s, False) for s in present}, state
+
+
+def _take(parts: Sequence[pd.Series], starts: np.ndarray, idx: np.ndarray, numbers: bool
+          ) -> tuple[np.ndarray, bool]:
+    """Values at positions ``idx`` of the parts laid end to end; floats when every part holding them is numeric."""
+    which = np.searchsorted(starts, idx, side="right") - 1
+    used = np.unique(which)
+    numeric = numbers and all(pd.api.types.is_numeric_dtype(parts[w].dtype)
+                              and not pd.api.types.is_bool_dtype(parts[w].dtype) for w in used)
+    out = np.empty(len(idx), dtype=float if numeric else object)
+    for w in used:
+        m = which == w
+        v = parts[w].iloc[idx[m] - starts[w]]
+        out[m] = v.to_numpy(dtype=float, na_value=np.nan) if numeric else v.to_numpy(dtype=object)
+    return out, numeric
 
 
 def _wide_slice(files: Sequence[ExportFile], key: str, policy: ReadPolicy, notes: _Notes, tname: str, stats: dict,
