@@ -550,15 +550,18 @@ def _long_batches(f: ExportFile, key: str, rows: int, stats: dict) -> Iterator[t
         md = pf.metadata
         ci = pf.schema_arrow.get_field_index(tag_c)
         lo_hi = sorted(spell)
+        text_tags = _is_text(pf.schema_arrow.field(tag_c).type)
         first = 1
         for g in range(md.num_row_groups):
             rg = md.row_group(g)
             n = rg.num_rows
             s = rg.column(ci).statistics
-            if s is not None and s.has_min_max and _is_text(pf.schema_arrow.field(tag_c).type):
+            only = False                                   # the row group holds this tag alone
+            if s is not None and s.has_min_max and text_tags:
                 if not any(str(s.min) <= t <= str(s.max) for t in lo_hi):
                     first += n
                     continue
+                only = s.min == s.max and s.null_count == 0
             stats["row_groups"] += 1
             start = first
             for batch in pf.iter_batches(batch_size=rows, row_groups=[g], columns=[tag_c, f.time_column, sig_c, val_c]):
@@ -567,12 +570,16 @@ def _long_batches(f: ExportFile, key: str, rows: int, stats: dict) -> Iterator[t
                 tags = batch.column(0)
                 if not _is_text(tags.type):
                     tags = tags.cast(pa.string())
-                mask = pc.is_in(pc.utf8_trim_whitespace(tags.cast(pa.string())),
-                                value_set=pa.array(list(spell), pa.string()))
-                mask = pc.fill_null(mask, False)
-                idx = np.flatnonzero(mask.to_numpy(zero_copy_only=False))
+                if only:
+                    idx = np.arange(m)
+                    sub = batch
+                else:
+                    mask = pc.is_in(pc.utf8_trim_whitespace(tags.cast(pa.string())),
+                                    value_set=pa.array(list(spell), pa.string()))
+                    mask = pc.fill_null(mask, False)
+                    idx = np.flatnonzero(mask.to_numpy(zero_copy_only=False))
+                    sub = batch.take(pa.array(idx)) if len(idx) else None
                 if len(idx):
-                    sub = batch.take(pa.array(idx))
                     cols = {"time": sub.column(1).to_pandas(), "signal": sub.column(2).to_pandas(),
                             "value": sub.column(3).to_pandas()}
                     yield start + idx.astype(np.int64), cols
@@ -626,20 +633,22 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
         return iter(()), {}, {}
     lines = np.concatenate(parts_l)
     raw_t = pd.concat(parts_t, ignore_index=True)
-    raw_s = pd.concat(parts_s, ignore_index=True).astype(str).str.lower().str.split().str.join(" ")
+    codes, uniq = pd.factorize(pd.concat(parts_s, ignore_index=True))     # words normalised once each
+    norm = np.array([" ".join(str(u).lower().split()) for u in uniq] + [""], dtype=object)
     starts = np.cumsum([0] + [len(v) for v in parts_v[:-1]])
     del parts_t, parts_s
-    sig = raw_s.map(words).to_numpy(dtype=object)
-    unknown = pd.isna(sig)
+    lut = np.array([SIGNALS.index(words[w]) if w in words else -1 for w in norm], dtype=np.int8)
+    sig = lut[codes]                                                    # index into SIGNALS, -1 unknown
+    unknown = sig < 0
     if unknown.any():
-        vc = raw_s[unknown].value_counts()
+        vc = pd.Series(norm[codes[unknown]]).value_counts()
         shown = ", ".join(f"{w!r} ({c})" for w, c in vc.head(6).items())
         notes.add("header", f"signal words not in the policy's export_words_* settings: {shown}"
                             f"{' ...' if len(vc) > 6 else ''}; those rows are not read", column="signal")
     state: dict = {}
     t = _times(raw_t, lines, tname, notes, state)
     ok = ~unknown & np.isfinite(t)
-    present = [s for s in SIGNALS if np.any(sig[ok] == s)]
+    present = [s for j, s in enumerate(SIGNALS) if np.any(sig[ok] == j)]
     if not present:
         return iter(()), {}, state
     grid = np.unique(t[ok])
@@ -647,7 +656,7 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
     cols: dict[str, pd.Series] = {}
     col_lines: dict[str, np.ndarray] = {}
     for s in present:
-        idx = np.flatnonzero(ok & (sig == s))
+        idx = np.flatnonzero(ok & (sig == SIGNALS.index(s)))
         ts = t[idx]
         order = np.argsort(ts, kind="stable")
         idx, ts = idx[order], ts[order]
