@@ -777,9 +777,8 @@ def _unstride(rec: Record, files: Sequence[ExportFile], tag: str) -> Record:
 
 # --------------------------------------------------------------------------- a row's record
 
-@functools.lru_cache(maxsize=4)
 def export_source(path: str, naming: ExportNaming) -> ExportSource:
-    """The export at ``path``, scanned once per process (see :meth:`ExportSource.open`).
+    """The export at ``path``, scanned once per process while it is unchanged (see :meth:`ExportSource.open`).
 
     Parameters
     ----------
@@ -788,6 +787,16 @@ def export_source(path: str, naming: ExportNaming) -> ExportSource:
     naming : ExportNaming
         How it names tags and signals.
     """
+    try:
+        st = os.stat(path)
+        mark = (st.st_mtime_ns, st.st_size, st.st_ino)
+    except OSError:
+        mark = None
+    return _scanned(str(path), naming, mark)
+
+
+@functools.lru_cache(maxsize=4)
+def _scanned(path: str, naming: ExportNaming, mark) -> ExportSource:
     return ExportSource.open(path, naming)
 
 
