@@ -205,6 +205,9 @@ class ExportFile:
 class ExportSource:
     """A historian export: what each file holds, and one tag's record on request. Picklable.
 
+    ``ExportSource(path, naming)`` scans the export (as :meth:`open` does; :class:`ExportError` when
+    it cannot be used).
+
     Attributes
     ----------
     path : str
@@ -267,7 +270,9 @@ class ExportSource:
         return cls(str(p), naming, files, _index(files))
 
     def __post_init__(self):
-        if not self._where and self.files:
+        if not self.files:                       # ExportSource(path, naming): scanned here
+            object.__setattr__(self, "files", ExportSource.open(self.path, self.naming).files)
+        if not self._where:
             object.__setattr__(self, "_where", _index(self.files))
 
     @property

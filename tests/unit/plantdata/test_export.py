@@ -238,6 +238,7 @@ def test_source_pickles_and_reads_alike(tmp_path):
     src = ExportSource.open(tmp_path / "e.parquet")
     again = pickle.loads(pickle.dumps(src))
     _same_record(src.read("A-2"), again.read("A-2"))
+    _same_record(src.read("A-2"), ExportSource(str(tmp_path / "e.parquet"), ExportNaming()).read("A-2"))
 
 
 def test_record_for_row_keeps_a_data_file_and_confines_it(tmp_path):
