@@ -109,8 +109,10 @@ def cli() -> None:
 @click.option("--quiet", is_flag=True, help="No progress output.")
 @click.option("--force", is_flag=True, help="Write into a folder that holds the inventory, or replace files "
                                             "of the output names that plant-audit did not write.")
+@click.option("--data", "data", default=None, help="The site's historian export (a .parquet/.csv file or a folder of "
+                                                   "them): each row's operating record unless it has a data_file.")
 def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, jobs, scheduler, history, no_history,
-        quiet, force):
+        quiet, force, data):
     """Evaluate every loop of INVENTORY and write results and report into --out."""
     from .executors import check_scheduler
     from .pipeline import AuditOptions
@@ -119,8 +121,10 @@ def run(inventory, out_dir, site, title, date, paper, detail, propose, no_pdf, j
     check_scheduler(scheduler)
     opts = AuditOptions(out_dir=out_dir, site=site, title=title, date=date, paper=paper, detail=detail,
                         propose=propose, pdf=not no_pdf, jobs=jobs, scheduler=scheduler, quiet=quiet,
-                        history=history, record_history=not no_history)
+                        history=history, record_history=not no_history, data=data)
     audit, written = run_audit(inventory, opts, force=force)
+    if not quiet and audit.extras.get("export") is not None:
+        click.echo(audit.extras["export"].text(), err=True)
     if not quiet:
         counts = audit.results["status"].value_counts()
         summary = ", ".join(f"{counts.get(s, 0)} {s}" for s in ("passes", "marginal", "fails", "unstable", "invalid"))
@@ -208,14 +212,41 @@ def identify(record, pv_lo, pv_hi, timezone, as_json, write_to, jobs):
 @cli.command()
 @click.option("--loops", type=click.IntRange(1, MAX_ROWS), required=True, help="Number of loops.")
 @click.option("--seed", type=click.IntRange(min=0), default=1, show_default=True)
-@click.option("--force", is_flag=True, help="Replace PATH if it exists.")
+@click.option("--force", is_flag=True, help="Replace PATH (and --data) if it exists.")
+@click.option("--data", "data", default=None,
+              help="Also write a synthetic historian export of the loops' routine operation here "
+                   "(a .parquet/.csv file, or a folder).")
+@click.option("--days", type=PositiveFinite(), default=1.0, show_default=True, help="Length of the export [d].")
+@click.option("--ts", "ts", type=PositiveFinite(), default=1.0, show_default=True,
+              help="Sample interval of the export [s].")
+@click.option("--layout", type=click.Choice(["long", "wide"]), default="long", show_default=True)
+@click.option("--format", "fmt", type=click.Choice(["parquet", "csv"]), default="parquet", show_default=True,
+              help="File format of a folder export (a file's ending decides for a file).")
 @click.argument("path", type=click.Path(dir_okay=False))
-def generate(loops, seed, force, path):
-    """Write a seeded synthetic inventory of --loops loops to PATH (.xlsx or .csv)."""
+def generate(loops, seed, force, data, days, ts, layout, fmt, path):
+    """Write a seeded synthetic inventory of --loops loops to PATH (.xlsx or .csv),
+    and with --data a synthetic historian export of their operation."""
     from .generate import write_synthetic_inventory
 
+    if data is not None:
+        if days * 86400.0 / ts > 1e8:
+            raise UserError(f"--days {days:g} at --ts {ts:g} s is more than 100 million samples a loop; "
+                            "shorten the record or sample more slowly")
+        if Path(data).exists() and not force:
+            raise UserError(f"--data {data} exists; give --force to replace it")
     write_synthetic_inventory(path, loops, seed, force=force)
     click.echo(f"{loops} synthetic loops written: {path}")
+    if data is not None:
+        from .generate_data import write_synthetic_export
+
+        t0 = time.perf_counter()
+        w = write_synthetic_export(path, data, days=days, ts=ts, seed=seed, layout=layout, fmt=fmt, force=force)
+        counts = {k: list(w.planted.values()).count(k) for k in ("normal", "manual", "pinned", "sticking", "cycling",
+                                                                  "stale")}
+        click.echo(f"export written: {w.path} ({w.loops} loops x {w.samples:,} samples in "
+                   f"{time.perf_counter() - t0:.1f} s; " + ", ".join(f"{v} {k}" for k, v in counts.items())
+                   + (f"; {len(w.not_simulated)} rows not simulated (tf model or entry mistake)"
+                      if w.not_simulated else "") + ")")
 
 
 @cli.command()

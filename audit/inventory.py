@@ -47,7 +47,7 @@ from . import units
 from .limits import MAX_CELL_CHARS, MAX_COLUMNS, MAX_INFLATED_BYTES, MAX_INVENTORY_BYTES, MAX_ROWS, NotARegularFile, \
     read_regular
 from .policy import Policy
-from .ranges import POLICY_RANGES, ROW_RANGES, tf_problems
+from .ranges import POLICY_RANGES, POLICY_TEXT_RULES, ROW_RANGES, tf_problems
 from .rows import Inventory, LoopRow, Problem, printable, tag_key
 
 # --------------------------------------------------------------------------------------
@@ -1338,7 +1338,11 @@ def _read_policy(table: _Table) -> tuple[Policy, list[Problem]]:
             problems.append(Problem(table.sheet, cell_v, key, "blank value; the default "
                                     f"{d if isinstance(d, str) else format(d, 'g')} applies", "warning"))
             continue
-        if isinstance(defaults[key], str):              # word lists (mode words)
+        if isinstance(defaults[key], str):              # words, column names, patterns (ranges.POLICY_TEXT_RULES)
+            why = POLICY_TEXT_RULES[key].problem(str(v))
+            if why:
+                problems.append(Problem(table.sheet, cell_v, key, f"must be {why}"))
+                continue
             values[key] = str(v).strip()
             continue
         rng = POLICY_RANGES[key]

@@ -40,6 +40,9 @@ MAX_RECORD_LINES = 2_000_000
 MAX_RECORD_BYTES = 256 * 1024 ** 2
 """Largest disturbance record file read. [bytes]"""
 
+MAX_EXPORT_FILES = 100_000
+"""Most files in one historian export folder (``run --data``). [-]"""
+
 
 @dataclass(frozen=True)
 class Limit:
@@ -80,6 +83,9 @@ LIMITS: tuple[Limit, ...] = (
     Limit("lines in one disturbance record", MAX_RECORD_LINES, "lines",
           "that record is refused on its row (or by `disturbance`, exit 2); decimate or split it"),
     Limit("disturbance record file size", MAX_RECORD_BYTES, "bytes", "as for too many lines"),
+    Limit("times in one loop's slice of a historian export (`run --data`)", MAX_RECORD_LINES, "times",
+          "the rest of that loop's data is not read, said in a note on its row"),
+    Limit("files in one historian export folder", MAX_EXPORT_FILES, "files", "the export is refused (exit 2); split it"),
 )
 """Every limit, in the order the README lists them."""
 

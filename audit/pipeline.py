@@ -36,6 +36,7 @@ class AuditOptions:
     quiet: bool = False
     history: str | None = None       # path or URL; None -> default beside the inventory
     record_history: bool = True
+    data: Any = None                 # historian export (--data): a path, or an opened plantdata.export.ExportSource
 
 
 @dataclass

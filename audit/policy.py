@@ -70,6 +70,20 @@ class Policy:
         Smallest oscillation amplitude of the control error that matters. [% of range]
     harris_min : float
         A Harris index below this puts the loop far from minimum variance. [-]
+    export_tag_column, export_signal_column, export_value_column : str
+        Column names of a historian export in long form (one row per tag, time and signal).
+    export_words_sp, export_words_pv, export_words_op, export_words_mode : str
+        Signal words of a long export that mean set point, process value, output and mode
+        (comma-separated, any case).
+    export_columns_sp, export_columns_pv, export_columns_op, export_columns_mode : str
+        Column-name patterns of a wide export (one column per tag and signal), ``{tag}`` standing
+        for the tag (comma-separated alternatives, any case), e.g. ``{tag}.pv, {tag}/pv``.
+    export_units : str
+        ``percent``: an export's sp and pv are in % of the PV range; ``eu``: in engineering units,
+        converted with the row's pv_lo and pv_hi.
+    export_timezone : str
+        IANA zone of an export's timestamps written without a zone; ``none``: read as wall-clock
+        time (said in a note).
     """
 
     ms_max: float = 2.0
@@ -101,6 +115,19 @@ class Policy:
     op_limit_band_pct: float = 0.5
     oscillation_min_amplitude_pct: float = 0.25
     harris_min: float = 0.3
+    export_tag_column: str = "tag"
+    export_signal_column: str = "signal"
+    export_value_column: str = "value"
+    export_words_sp: str = "sp, setpoint, set point"
+    export_words_pv: str = "pv, measurement, process value"
+    export_words_op: str = "op, output, out"
+    export_words_mode: str = "mode"
+    export_columns_sp: str = "{tag}.sp, {tag}/sp"
+    export_columns_pv: str = "{tag}.pv, {tag}/pv"
+    export_columns_op: str = "{tag}.op, {tag}/op"
+    export_columns_mode: str = "{tag}.mode, {tag}/mode"
+    export_units: str = "percent"
+    export_timezone: str = "none"
 
     def as_dict(self) -> dict[str, Any]:
         """The policy as a plain mapping (setting -> value), in declaration order."""
@@ -143,4 +170,19 @@ POLICY_HELP: dict[str, str] = {
     "oscillation_min_amplitude_pct": "Smallest oscillation amplitude of the control error that matters "
                                      "[% of range].",
     "harris_min": "Harris index below which a loop is far from minimum variance [-] (1 = minimum variance).",
+    "export_tag_column": "Historian export, long form: the column holding the tag.",
+    "export_signal_column": "Historian export, long form: the column holding the signal word.",
+    "export_value_column": "Historian export, long form: the column holding the value.",
+    "export_words_sp": "Signal words of a long export that mean the set point (comma-separated, any case).",
+    "export_words_pv": "Signal words that mean the process value (comma-separated, any case).",
+    "export_words_op": "Signal words that mean the controller output (comma-separated, any case).",
+    "export_words_mode": "Signal words that mean the controller mode (comma-separated, any case).",
+    "export_columns_sp": "Wide export: column names of a tag's set point, {tag} for the tag (comma-separated).",
+    "export_columns_pv": "Wide export: column names of a tag's process value, {tag} for the tag.",
+    "export_columns_op": "Wide export: column names of a tag's controller output, {tag} for the tag.",
+    "export_columns_mode": "Wide export: column names of a tag's mode, {tag} for the tag.",
+    "export_units": "percent: an export's sp and pv are in % of range; eu: engineering units, converted with "
+                    "the row's pv_lo and pv_hi.",
+    "export_timezone": "IANA time zone of an export's timestamps written without a zone (e.g. Europe/London); none: "
+                       "wall-clock time.",
 }

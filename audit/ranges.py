@@ -164,6 +164,79 @@ POLICY_RANGES: dict[str, Range] = {
 }
 
 
+@dataclass(frozen=True)
+class TextRule:
+    """What a text setting of the policy may hold.
+
+    Attributes
+    ----------
+    kind : str
+        ``words`` (comma-separated words, at least one), ``patterns`` (comma-separated column
+        names, each holding ``{tag}`` once), ``column`` (one column name), ``choice`` (one of
+        ``choices``) or ``zone`` (an IANA time zone, or ``none``).
+    choices : tuple of str
+        The accepted values of a ``choice``.
+    """
+
+    kind: str
+    choices: tuple[str, ...] = ()
+
+    def problem(self, text: str) -> str | None:
+        """Why ``text`` cannot be used, or None when it can.
+
+        Parameters
+        ----------
+        text : str
+            The value as written (stripped).
+        """
+        text = str(text).strip()
+        if len(text) > 500:
+            return "at most 500 characters"
+        if self.kind == "choice":
+            return None if text.lower() in self.choices else f"one of {', '.join(self.choices)}"
+        if self.kind == "zone":
+            if not text or text.lower() == "none":
+                return None
+            try:
+                import zoneinfo
+                zoneinfo.ZoneInfo(text)
+            except (ValueError, KeyError, OSError, ImportError):
+                return "an IANA time zone such as Europe/London, or none"
+            except Exception:                      # zoneinfo raises its own error types for odd names
+                return "an IANA time zone such as Europe/London, or none"
+            return None
+        if self.kind == "column":
+            return None if text and "," not in text else "one column name"
+        items = [w.strip() for w in text.split(",")]
+        if not any(items) or not all(items):
+            return "comma-separated words, none blank"
+        if self.kind == "patterns":
+            for it in items:
+                rest = it.replace("{tag}", "", 1)
+                if "{tag}" not in it or "{" in rest or "}" in rest or not rest:
+                    return f"column names each holding {{tag}} once besides other text (e.g. {{tag}}.pv), got {it!r}"
+        return None
+
+    def describe(self) -> str:
+        """The rule in words."""
+        return {"words": "comma-separated words", "patterns": "comma-separated column names, each with {tag} once",
+                "column": "a column name", "zone": "an IANA time zone, or none",
+                "choice": " or ".join(self.choices)}[self.kind]
+
+
+#: Rules of the text settings of the policy.
+POLICY_TEXT_RULES: dict[str, TextRule] = {
+    "mode_automatic": TextRule("words"), "mode_manual": TextRule("words"), "mode_cascade": TextRule("words"),
+    "export_tag_column": TextRule("column"), "export_signal_column": TextRule("column"),
+    "export_value_column": TextRule("column"),
+    "export_words_sp": TextRule("words"), "export_words_pv": TextRule("words"), "export_words_op": TextRule("words"),
+    "export_words_mode": TextRule("words"),
+    "export_columns_sp": TextRule("patterns"), "export_columns_pv": TextRule("patterns"),
+    "export_columns_op": TextRule("patterns"), "export_columns_mode": TextRule("patterns"),
+    "export_units": TextRule("choice", ("percent", "eu")), "export_timezone": TextRule("zone"),
+}
+
+
 def tf_problems(num: tuple[float, ...], den: tuple[float, ...]) -> list[tuple[str, str]]:
     """What keeps a tf model num(s)/den(s) from being evaluated, as (column, message) pairs.
 
@@ -229,4 +302,6 @@ def ranges_markdown() -> str:
     lines.append("|---|---|")
     for name, r in POLICY_RANGES.items():
         lines.append(f"| `{name}` | {r.describe()} |")
+    for name, t in POLICY_TEXT_RULES.items():
+        lines.append(f"| `{name}` | {t.describe()} |")
     return "\n".join(lines)

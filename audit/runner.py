@@ -300,6 +300,17 @@ def run_audit(inventory_path: str, options: AuditOptions, force: bool = False) -
         t0 = time.perf_counter()
         inv = read_inventory(inventory_path)
         audit = new_audit(inv, options)
+        from .plantdata.sources import EXPORT_KEY
+        if options.data is not None and not hasattr(options.data, "read"):
+            from .plantdata.export import ExportError, open_for_audit
+            try:
+                src, summary = open_for_audit(str(options.data), inv)
+            except ExportError as exc:
+                raise UserError(str(exc)) from None
+            audit.extras["export"] = summary
+            audit.extras[EXPORT_KEY] = src
+        elif options.data is not None:
+            audit.extras[EXPORT_KEY] = options.data
         audit.timings["read"] = time.perf_counter() - t0
         run_stages(audit, progress)
         progress("write")

@@ -377,6 +377,8 @@ class _Chunk:
     lines: np.ndarray                    # int64 line (CSV) or row (Parquet) numbers
     cols: dict[str, pd.Series]           # source column (lower-case) -> raw values
     bad: tuple[tuple[int, str], ...] = ()  # (line, why) of lines that are no readable CSV
+    t: np.ndarray | None = None          # times already parsed by _times (a long export's pivot)
+    col_lines: dict[str, np.ndarray] | None = None  # per column: the line each value came from
 
 
 def _csv_header(fh) -> tuple[int, list[str]] | None:
@@ -675,7 +677,6 @@ def read_record(path: str | Path, signals: Sequence[str] = SIGNALS, pv_lo: float
     p = Path(path)
     unit = "row" if p.suffix.lower() in (".parquet", ".pq") else "line"
     notes = _Notes(shown, unit)
-    present = tuple(signals)
 
     def empty(tname: str = "", sigs: tuple[str, ...] = ()) -> Record:
         return Record(shown, sigs, (), notes.done(), float("nan"), tname)
@@ -695,7 +696,55 @@ def read_record(path: str | Path, signals: Sequence[str] = SIGNALS, pv_lo: float
     if opened is None:
         return empty()
     tname, found, chunks, close = opened
+    return assemble_record(shown, unit, notes, tname, found, chunks, close, signals, pv_lo, pv_hi, policy,
+                           timezone)
+
+
+def assemble_record(shown: str, unit: str, notes: "_Notes", tname: str, found: Mapping[str, tuple[str, bool]],
+                    chunks: Iterator["_Chunk"], close, signals: Sequence[str] = SIGNALS,
+                    pv_lo: float | None = None, pv_hi: float | None = None, policy: ReadPolicy = ReadPolicy(),
+                    timezone: str | None = None, state: dict | None = None) -> Record:
+    """The reader's one rule: raw chunks of a record -> checked, uniform segments and notes.
+
+    :func:`read_record` feeds it the chunks of one file; :mod:`.export` feeds it one tag's
+    slice of a historian export. Nothing is validated anywhere else.
+
+    Parameters
+    ----------
+    shown : str
+        How notes name the record.
+    unit : str
+        ``"line"`` or ``"row"`` (how notes count).
+    notes : _Notes
+        Where notes go (its ``file`` may change while chunks are read).
+    tname : str
+        The time column (one of :data:`TIME_COLUMNS`).
+    found : mapping
+        Signal -> (chunk column key, in engineering units).
+    chunks : iterator of _Chunk
+        Raw values; a chunk's ``t`` holds times already parsed (by :func:`_times`) when set.
+    close : callable
+        Called once the chunks are read (closes the file).
+    signals : sequence of str
+        Signals looked for, in order.
+    pv_lo, pv_hi : float, optional
+        PV range for ``*_eu`` signals. [engineering units]
+    policy : ReadPolicy
+        Quality words, gap and resampling limits, size cap.
+    timezone : str, optional
+        IANA zone of timestamps written without a zone.
+    state : dict, optional
+        The time parser's state (zone seen, first time as written) when times were parsed before.
+
+    Returns
+    -------
+    Record
+    """
     present = tuple(s for s in signals if s in found)
+
+    def empty(tname: str = "", sigs: tuple[str, ...] = ()) -> Record:
+        return Record(shown, sigs, (), notes.done(), float("nan"), tname)
+
     for sig, (col, eu) in found.items():
         if eu and (pv_lo is None or pv_hi is None or not pv_hi > pv_lo):
             close()
@@ -708,7 +757,7 @@ def read_record(path: str | Path, signals: Sequence[str] = SIGNALS, pv_lo: float
     parts_v: dict[str, list[np.ndarray]] = {s: [] for s in present if s not in TEXT_SIGNALS}
     parts_m: list[np.ndarray] = []
     labels: dict[str, int] = {}
-    state: dict = {}
+    state = {} if state is None else state
     n_rows = 0
     truncated = False
     try:
@@ -716,7 +765,9 @@ def read_record(path: str | Path, signals: Sequence[str] = SIGNALS, pv_lo: float
             if n_rows + len(ch.lines) > policy.max_rows:
                 keep = policy.max_rows - n_rows
                 last = int(ch.lines[keep - 1]) if keep > 0 else None
-                ch = _Chunk(ch.lines[:keep], {k: v.iloc[:keep] for k, v in ch.cols.items()})
+                ch = _Chunk(ch.lines[:keep], {k: v.iloc[:keep] for k, v in ch.cols.items()}, ch.bad,
+                            None if ch.t is None else ch.t[:keep],
+                            None if ch.col_lines is None else {k: v[:keep] for k, v in ch.col_lines.items()})
                 truncated = True
                 notes.add("cap", f"more than {policy.max_rows} data {unit}s; nothing after "
                                  f"{unit} {last} read (ReadPolicy.max_rows)")
@@ -724,7 +775,7 @@ def read_record(path: str | Path, signals: Sequence[str] = SIGNALS, pv_lo: float
                 notes.add("cell", why, ln)
             n_rows += len(ch.lines)
             parts_l.append(ch.lines)
-            parts_t.append(_times(ch.cols[tname], ch.lines, tname, notes, state))
+            parts_t.append(ch.t if ch.t is not None else _times(ch.cols[tname], ch.lines, tname, notes, state))
             for sig in present:
                 col = found[sig][0]
                 if sig in TEXT_SIGNALS:
@@ -737,7 +788,8 @@ def read_record(path: str | Path, signals: Sequence[str] = SIGNALS, pv_lo: float
                     counts[sig][0] += int((m < 0).sum())
                     parts_m.append(m.astype(np.int16))
                 else:
-                    parts_v[sig].append(_numbers(ch.cols[col], ch.lines, sig, quality, notes, counts))
+                    cl = ch.lines if ch.col_lines is None else ch.col_lines.get(col, ch.lines)
+                    parts_v[sig].append(_numbers(ch.cols[col], cl, sig, quality, notes, counts))
             if truncated:
                 break
     finally:
