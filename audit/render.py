@@ -381,7 +381,7 @@ def _mapper(jobs: int) -> Iterator[Callable]:
         yield map
         return
     with ProcessPoolExecutor(max_workers=jobs) as ex:
-        yield functools.partial(ex.map, chunksize=2)
+        yield functools.partial(ex.map, chunksize=1)   # one task per item: the two step batches run side by side
 
 
 def write_outputs(audit) -> dict[str, Path]:
