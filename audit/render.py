@@ -164,6 +164,8 @@ def fmt_breakable(text: Any) -> Any:
     """
     if isinstance(text, Markup) or not isinstance(text, str):
         return text
+    if _LONG_RUN_RE.search(text) is None:   # the common case: nothing to cut
+        return escape(text)
 
     def cut(m: re.Match) -> str:
         run = m.group(0)
@@ -205,6 +207,7 @@ def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
         trim_blocks=True,
         lstrip_blocks=True,
         keep_trailing_newline=True,
+        auto_reload=False,   # templates are read once per process, not checked on every include
     )
     env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class, px=fmt_px,
                        pts=fmt_points, change=fmt_change, brk=fmt_breakable)
