@@ -386,10 +386,11 @@ class _Results:
     def __init__(self, frame: pd.DataFrame):
         self.frame = frame.reset_index(drop=True)
         self.columns = set(self.frame.columns)
+        self.n = len(self.frame)
         self._arrays: dict[str, np.ndarray | None] = {}   # column -> its values (plain numpy dtypes only)
 
     def get(self, i: int, name: str) -> Any:
-        if name not in self.columns or i >= len(self.frame):
+        if name not in self.columns or i >= self.n:
             return None
         arr = self._arrays.get(name, False)
         if arr is False:   # first use: the column's numpy array, read by position like .at (same scalars)
@@ -899,16 +900,23 @@ def _detail_order(rows, statuses, work: WorkList, mode: str, also: frozenset = f
     return [i for i in by_tag_order if (statuses[i] not in ("passes", "invalid") or i in also) and rows[i].valid]
 
 
-def _inner_row(rows, row: LoopRow) -> LoopRow | None:
+def _first_by_tag(rows) -> dict[str, LoopRow]:
+    """The first row of each tag (an inner loop is found by its tag)."""
+    out: dict[str, LoopRow] = {}
+    for r in rows:
+        if r.tag:
+            out.setdefault(r.tag, r)
+    return out
+
+
+def _inner_row(by_tag: dict[str, LoopRow], row: LoopRow) -> LoopRow | None:
     if not row.inner_loop:
         return None
-    for r in rows:
-        if r.tag == row.inner_loop:
-            return r
-    return None
+    return by_tag.get(row.inner_loop)
 
 
-def _detail(audit, i: int, res: _Results, status: str, with_plots: bool) -> tuple[LoopDetail, PlotJob | None]:
+def _detail(audit, i: int, res: _Results, status: str, with_plots: bool,
+            by_tag: dict[str, LoopRow]) -> tuple[LoopDetail, PlotJob | None]:
     rows, model = audit.inventory.rows, audit.models[i]
     row = rows[i]
     notes: list[str] = []
@@ -917,7 +925,7 @@ def _detail(audit, i: int, res: _Results, status: str, with_plots: bool) -> tupl
     cascade = None
     inner_tag = ""
     if model is not None and model.inner is not None:
-        inner = _inner_row(rows, row)
+        inner = _inner_row(by_tag, row)
         inner_tag = inner.tag if inner is not None and inner.tag else model.inner.tag
         cascade = CascadeInfo(inner_tag, loop_anchor(inner) if inner is not None else "",
                               row_anchor(inner) if inner is not None else "", res.get(i, "cascade_ratio"),
@@ -1030,7 +1038,9 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     mode = audit.options.detail if audit.options.detail in ("failing", "all") else "failing"
     order = _detail_order(rows, statuses, work, mode, frozenset(audit.extras.get("health") or ()))
     anchors = {loop_anchor(rows[i]) for i in order}
-    pairs = [_detail(audit, i, res, statuses[i], plot_limit is None or k < plot_limit) for k, i in enumerate(order)]
+    by_tag = _first_by_tag(rows)
+    pairs = [_detail(audit, i, res, statuses[i], plot_limit is None or k < plot_limit, by_tag)
+             for k, i in enumerate(order)]
     jobs = [job for _, job in pairs if job is not None]
     # one vectorised simulation per kind for all loops, in the pool's workers when there is a pool,
     # while this process computes the frequency responses and the rest of the report
