@@ -25,7 +25,6 @@ References
 from __future__ import annotations
 
 import datetime as _dt
-import math
 import re
 import zipfile
 from dataclasses import dataclass, field

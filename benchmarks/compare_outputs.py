@@ -26,7 +26,6 @@ import argparse
 import html.parser
 import math
 import re
-import sys
 from pathlib import Path
 
 FLOAT_REL = 1e-15
