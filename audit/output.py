@@ -127,6 +127,43 @@ def csv_cell(value: Any) -> str:
     return neutralise_formula(str(v))
 
 
+def plain_column(series: pd.Series) -> list[Any]:
+    """:func:`plain` of every value of a column, float and boolean columns converted in one go.
+
+    Parameters
+    ----------
+    series : pandas.Series
+        One results column.
+
+    Returns
+    -------
+    list
+        The same values :func:`plain` gives one by one.
+    """
+    if series.dtype == np.float64:
+        arr = series.to_numpy()
+        out = arr.tolist()
+        bad = np.flatnonzero(~np.isfinite(arr))
+        for i in bad.tolist():
+            v = out[i]
+            out[i] = None if v != v else ("inf" if v > 0 else "-inf")
+        return out
+    if series.dtype == np.bool_ or series.dtype == np.int64:
+        return series.to_numpy().tolist()
+    return [plain(v) for v in series.tolist()]
+
+
+def _csv_column(series: pd.Series) -> list[str]:
+    """:func:`csv_cell` of every value of a column (float columns without a call per value)."""
+    if series.dtype == np.float64:
+        arr = series.to_numpy()
+        out = [repr(v) for v in arr.tolist()]
+        for i in np.flatnonzero(np.isnan(arr)).tolist():
+            out[i] = ""
+        return out
+    return [csv_cell(v) for v in series.tolist()]
+
+
 def write_csv(path: Path, results: pd.DataFrame, columns: list[str]) -> None:
     """Write results.csv.
 
@@ -144,8 +181,8 @@ def write_csv(path: Path, results: pd.DataFrame, columns: list[str]) -> None:
     with open(path, "w", newline="", encoding="utf-8") as fh:
         wr = csv.writer(fh)
         wr.writerow([neutralise_formula(str(c)) for c in columns])
-        for rec in results[columns].itertuples(index=False, name=None):
-            wr.writerow([csv_cell(v) for v in rec])
+        cells = [_csv_column(results.iloc[:, j]) for j in _positions(results, columns)]
+        wr.writerows(zip(*cells) if cells else ([] for _ in range(len(results))))
 
 
 def write_json(path: Path, results: pd.DataFrame, columns: list[str], meta: dict[str, Any]) -> None:
@@ -162,12 +199,65 @@ def write_json(path: Path, results: pd.DataFrame, columns: list[str], meta: dict
     meta : dict
         What identifies the run (``Audit.meta``); its keys go at the top level.
     """
-    rows = [{c: plain(v) for c, v in zip(columns, rec)}
-            for rec in results[columns].itertuples(index=False, name=None)]
-    doc = {**plain(meta), "columns": columns, "loops": rows}
+    values = [plain_column(results.iloc[:, j]) for j in _positions(results, columns)]
+    head = {**plain(meta), "columns": columns}
     with open(path, "w", encoding="utf-8") as fh:
-        json.dump(doc, fh, indent=1, allow_nan=False, ensure_ascii=False)
+        if (all(type(c) is str for c in columns) and len(set(columns)) == len(columns)
+                and all(type(v) in _SCALARS for col in values for v in col)):
+            _dump_loops(fh, head, columns, values, len(results))
+        else:   # a list or mapping in some cell: the general encoder (same layout)
+            rows = [dict(zip(columns, rec)) for rec in zip(*values)] if columns else [{} for _ in range(len(results))]
+            json.dump({**head, "loops": rows}, fh, indent=1, allow_nan=False, ensure_ascii=False)
         fh.write("\n")
+
+
+_SCALARS = frozenset({type(None), bool, int, float, str})
+
+
+def _positions(results: pd.DataFrame, columns: list[str]) -> list[int]:
+    """Positions of ``columns`` in ``results`` (the first of a repeated name, as ``results[columns]`` reads)."""
+    first: dict[str, int] = {}
+    for j, c in enumerate(results.columns):
+        first.setdefault(c, j)
+    return [first[c] for c in columns]
+
+
+def _dump_loops(fh, head: dict[str, Any], columns: list[str], values: list[list[Any]], n: int) -> None:
+    """results.json as ``json.dump(..., indent=1)`` writes it, the loops (scalars only) encoded a cell at a time.
+
+    The head (run identity, columns) goes through the json module; each loop is an object at depth 2 whose
+    members are ``"name": value`` lines indented by three spaces, encoded by the json module's own
+    scalar encoders, so the bytes are those of the general encoder.
+    """
+    enc_str = json.encoder.encode_basestring          # ensure_ascii=False
+    float_repr = float.__repr__
+    keys = [enc_str(c) + ": " for c in columns]
+    text = json.dumps({**head, "loops": []}, indent=1, allow_nan=False, ensure_ascii=False)
+    fh.write(text[:-len("[]\n}")])
+    if n == 0:
+        fh.write("[]\n}")
+        return
+    cols = []
+    for key, col in zip(keys, values):
+        cells = []
+        for v in col:
+            t = type(v)
+            if t is str:
+                cells.append(key + enc_str(v))
+            elif t is float:
+                cells.append(key + float_repr(v))
+            elif v is None:
+                cells.append(key + "null")
+            elif t is bool:
+                cells.append(key + ("true" if v else "false"))
+            else:
+                cells.append(key + int.__repr__(v))
+        cols.append(cells)
+    if cols:
+        rows = ["{\n   " + ",\n   ".join(cells) + "\n  }" for cells in zip(*cols)]
+    else:
+        rows = ["{}"] * n
+    fh.write("[\n  " + ",\n  ".join(rows) + "\n ]\n}")
 
 
 class FileRefused(Exception):

@@ -238,6 +238,10 @@ def clip_polyline(p: np.ndarray, x0: float, y0: float, x1: float, y1: float) -> 
         return []
     a, b = p[:-1], p[1:]
     d = b - a
+    if (np.isfinite(p).all() and p[:, 0].min() >= x0 and p[:, 0].max() <= x1 and p[:, 1].min() >= y0
+            and p[:, 1].max() <= y1):
+        # wholly inside: every segment keeps t0 = 0, t1 = 1, so the one piece is the same arithmetic below
+        return [np.vstack([a[:1], a + d])]
     ok = np.isfinite(a).all(axis=1) & np.isfinite(b).all(axis=1)
     a = np.where(ok[:, None], a, 0.0)
     d = np.where(ok[:, None], d, 0.0)

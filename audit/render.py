@@ -164,6 +164,8 @@ def fmt_breakable(text: Any) -> Any:
     """
     if isinstance(text, Markup) or not isinstance(text, str):
         return text
+    if _LONG_RUN_RE.search(text) is None:   # the common case: nothing to cut
+        return escape(text)
 
     def cut(m: re.Match) -> str:
         run = m.group(0)
@@ -205,6 +207,7 @@ def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
         trim_blocks=True,
         lstrip_blocks=True,
         keep_trailing_newline=True,
+        auto_reload=False,   # templates are read once per process, not checked on every include
     )
     env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class, px=fmt_px,
                        pts=fmt_points, change=fmt_change, brk=fmt_breakable)
@@ -350,6 +353,26 @@ def _cycle_collector_paused() -> Iterator[None]:
         gc.collect()
 
 
+@contextlib.contextmanager
+def _cycle_collector_held() -> Iterator[None]:
+    """Hold off Python's cyclic garbage collector while the report is built and rendered (restored after).
+
+    Building the report of a large inventory allocates many small objects; each full collection would
+    walk every object of the run (models, results, records) again. The objects alive before are frozen
+    out of collection; unlike :func:`_cycle_collector_paused`, no collection is forced before or after
+    (the report makes little cyclic garbage, collected by the next ordinary collection).
+    """
+    was_enabled = gc.isenabled()
+    gc.freeze()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was_enabled:
+            gc.enable()
+        gc.unfreeze()
+
+
 def write_pdf(html: str, path: Path, out_dir: Path) -> Path:
     """Lay out ``html`` with WeasyPrint into ``path``.
 
@@ -381,7 +404,7 @@ def _mapper(jobs: int) -> Iterator[Callable]:
         yield map
         return
     with ProcessPoolExecutor(max_workers=jobs) as ex:
-        yield functools.partial(ex.map, chunksize=2)
+        yield functools.partial(ex.map, chunksize=1)   # one task per item: the two step batches run side by side
 
 
 def write_outputs(audit) -> dict[str, Path]:
@@ -403,11 +426,12 @@ def write_outputs(audit) -> dict[str, Path]:
     out.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
     limit = getattr(audit.options, "plot_limit", PLOT_LIMIT)
-    with _mapper(audit.options.jobs) as mapper:
-        report = build_report(audit, plot_limit=limit, mapper=mapper)
-        rendered = draw(report, mapper=mapper)
+    with _cycle_collector_held():
+        with _mapper(audit.options.jobs) as mapper:
+            report = build_report(audit, plot_limit=limit, mapper=mapper)
+            rendered = draw(report, mapper=mapper)
+        html = render_html(report, rendered, paper=audit.options.paper)
     written: dict[str, Path] = {}
-    html = render_html(report, rendered, paper=audit.options.paper)
     (out / "report.html").write_text(html, encoding="utf-8")
     written["report.html"] = out / "report.html"
     audit.timings["report.html"] = time.perf_counter() - t0

@@ -386,11 +386,18 @@ class _Results:
     def __init__(self, frame: pd.DataFrame):
         self.frame = frame.reset_index(drop=True)
         self.columns = set(self.frame.columns)
+        self.n = len(self.frame)
+        self._arrays: dict[str, np.ndarray | None] = {}   # column -> its values (plain numpy dtypes only)
 
     def get(self, i: int, name: str) -> Any:
-        if name not in self.columns or i >= len(self.frame):
+        if name not in self.columns or i >= self.n:
             return None
-        return _plain(self.frame.at[i, name])
+        arr = self._arrays.get(name, False)
+        if arr is False:   # first use: the column's numpy array, read by position like .at (same scalars)
+            col = self.frame[name]
+            arr = self._arrays[name] = (col.to_numpy() if isinstance(col.dtype, np.dtype)
+                                        and col.dtype.kind in "biufcO" else None)
+        return _plain(self.frame.at[i, name] if arr is None else arr[i])
 
     def has(self, name: str) -> bool:
         return name in self.columns and bool(self.frame[name].notna().any())
@@ -733,8 +740,52 @@ def _step_data(kind: str, tr: Any, ptr: Any, notes: list[str]) -> StepData | Non
     return StepData(kind, t2, y2, u2, pt, py)
 
 
-def _batched_steps(jobs: list["PlotJob"]) -> dict[str, tuple[tuple[StepData, ...], tuple[str, ...]]]:
-    """Step responses of every loop with plots, present and proposed tuning, in one simulation per kind.
+def _traces_of_kind(task: tuple[list[LoopModel], str]) -> tuple[list[Any] | None, str]:
+    """Step traces of one kind for many models, one batched simulation (a task a process pool can run).
+
+    Parameters
+    ----------
+    task : tuple
+        (models, ``load`` or ``setpoint``).
+
+    Returns
+    -------
+    tuple
+        (traces in model order, '') or (None, why the simulation failed).
+    """
+    models, kind = task
+    try:
+        return list(_step_source()(models, kind)), ""
+    except Exception as exc:  # a failing simulation leaves the rest of the report intact
+        return None, f"{exc}"
+
+
+def _start_steps(jobs: list["PlotJob"], mapper: Callable = map) -> Any:
+    """Start the step simulations of the loops with plots: one batch per kind, present and proposed tuning.
+
+    With a process pool's ``map`` both kinds run in the workers at once while the caller goes on; with
+    ``map`` they run when :func:`_collect_steps` reads them. Either way the traces are the same.
+
+    Parameters
+    ----------
+    jobs : list of PlotJob
+        The loops with plots.
+    mapper : callable
+        ``map`` or a process pool's ``map``.
+
+    Returns
+    -------
+    iterator or None
+        (traces, error) per kind, in the order load, set point; None when there is nothing to simulate.
+    """
+    if _step_source() is None or not jobs:
+        return None
+    models = [j.model for j in jobs] + [j.proposed for j in jobs if j.proposed is not None]
+    return mapper(_traces_of_kind, [(models, "load"), (models, "setpoint")])
+
+
+def _collect_steps(jobs: list["PlotJob"], pending: Any) -> dict[str, tuple[tuple[StepData, ...], tuple[str, ...]]]:
+    """The step data of every loop with plots from :func:`_start_steps`.
 
     Returns
     -------
@@ -743,20 +794,15 @@ def _batched_steps(jobs: list["PlotJob"]) -> dict[str, tuple[tuple[StepData, ...
     """
     notes: dict[str, list[str]] = {j.key: [] for j in jobs}
     steps: dict[str, list[StepData]] = {j.key: [] for j in jobs}
-    source = _step_source()
-    if source is None:
+    if _step_source() is None:
         for j in jobs:
             notes[j.key].append("Step responses are not shown: the time-domain stage is not available in this build.")
-    elif jobs:
-        models = [j.model for j in jobs]
+    elif pending is not None:
         with_prop = [k for k, j in enumerate(jobs) if j.proposed is not None]
-        models += [jobs[k].proposed for k in with_prop]
-        for kind in ("load", "setpoint"):
-            try:
-                traces = list(source(models, kind))
-            except Exception as exc:  # a failing simulation leaves the rest of the report intact
+        for kind, (traces, error) in zip(("load", "setpoint"), pending):
+            if traces is None:
                 for j in jobs:
-                    notes[j.key].append(f"The {kind} step response could not be computed: {exc}.")
+                    notes[j.key].append(f"The {kind} step response could not be computed: {error}.")
                 continue
             prop = dict(zip(with_prop, traces[len(jobs):]))
             for k, j in enumerate(jobs):
@@ -764,6 +810,17 @@ def _batched_steps(jobs: list["PlotJob"]) -> dict[str, tuple[tuple[StepData, ...
                 if st is not None:
                     steps[j.key].append(st)
     return {k: (tuple(steps[k]), tuple(notes[k])) for k in notes}
+
+
+def _batched_steps(jobs: list["PlotJob"]) -> dict[str, tuple[tuple[StepData, ...], tuple[str, ...]]]:
+    """Step responses of every loop with plots, present and proposed tuning, in one simulation per kind.
+
+    Returns
+    -------
+    dict
+        Plot key -> (step data, notes about what could not be computed).
+    """
+    return _collect_steps(jobs, _start_steps(jobs))
 
 
 def _residual(audit, index: int) -> ResidualData | None:
@@ -843,16 +900,23 @@ def _detail_order(rows, statuses, work: WorkList, mode: str, also: frozenset = f
     return [i for i in by_tag_order if (statuses[i] not in ("passes", "invalid") or i in also) and rows[i].valid]
 
 
-def _inner_row(rows, row: LoopRow) -> LoopRow | None:
+def _first_by_tag(rows) -> dict[str, LoopRow]:
+    """The first row of each tag (an inner loop is found by its tag)."""
+    out: dict[str, LoopRow] = {}
+    for r in rows:
+        if r.tag:
+            out.setdefault(r.tag, r)
+    return out
+
+
+def _inner_row(by_tag: dict[str, LoopRow], row: LoopRow) -> LoopRow | None:
     if not row.inner_loop:
         return None
-    for r in rows:
-        if r.tag == row.inner_loop:
-            return r
-    return None
+    return by_tag.get(row.inner_loop)
 
 
-def _detail(audit, i: int, res: _Results, status: str, with_plots: bool) -> tuple[LoopDetail, PlotJob | None]:
+def _detail(audit, i: int, res: _Results, status: str, with_plots: bool,
+            by_tag: dict[str, LoopRow]) -> tuple[LoopDetail, PlotJob | None]:
     rows, model = audit.inventory.rows, audit.models[i]
     row = rows[i]
     notes: list[str] = []
@@ -861,7 +925,7 @@ def _detail(audit, i: int, res: _Results, status: str, with_plots: bool) -> tupl
     cascade = None
     inner_tag = ""
     if model is not None and model.inner is not None:
-        inner = _inner_row(rows, row)
+        inner = _inner_row(by_tag, row)
         inner_tag = inner.tag if inner is not None and inner.tag else model.inner.tag
         cascade = CascadeInfo(inner_tag, loop_anchor(inner) if inner is not None else "",
                               row_anchor(inner) if inner is not None else "", res.get(i, "cascade_ratio"),
@@ -958,8 +1022,9 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     plot_limit : int | None
         Detail sections, in work-list order, that carry plot data; None for all.
     mapper : callable
-        ``map`` or a process pool's ``map``: applied to :func:`plot_data` over the loops with plots
-        (the step responses of all of them are simulated together first, in this process).
+        ``map`` or a process pool's ``map``: runs the step simulations of the loops with plots (one batch
+        per kind; with a pool, in its workers while this process computes the frequency responses and
+        the rest of the report).
 
     Returns
     -------
@@ -973,15 +1038,16 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     mode = audit.options.detail if audit.options.detail in ("failing", "all") else "failing"
     order = _detail_order(rows, statuses, work, mode, frozenset(audit.extras.get("health") or ()))
     anchors = {loop_anchor(rows[i]) for i in order}
-    pairs = [_detail(audit, i, res, statuses[i], plot_limit is None or k < plot_limit) for k, i in enumerate(order)]
+    by_tag = _first_by_tag(rows)
+    pairs = [_detail(audit, i, res, statuses[i], plot_limit is None or k < plot_limit, by_tag)
+             for k, i in enumerate(order)]
     jobs = [job for _, job in pairs if job is not None]
-    batched = _batched_steps(jobs)                  # one vectorised simulation per kind for all loops
-    jobs = [replace(j, steps=batched[j.key][0], notes=batched[j.key][1]) for j in jobs]
-    drawn = dict(zip([j.key for j in jobs], mapper(plot_data, jobs)))
-    details = tuple(d if d.anchor not in drawn else
-                    replace(d, plots=drawn[d.anchor][0], notes=drawn[d.anchor][1] + d.notes) for d, _ in pairs)
+    # one vectorised simulation per kind for all loops, in the pool's workers when there is a pool,
+    # while this process computes the frequency responses and the rest of the report
+    pending = _start_steps(jobs, mapper)
+    freq = {j.key: plot_data(j)[0] for j in jobs}
     plant_data, data = data_views(audit)
-    details = tuple(replace(d, data=data[d.index]) if d.index in data else d for d in details)
+    details = tuple(replace(d, data=data[d.index]) if d.index in data else d for d, _ in pairs)
     present = [s for s in STATUS_ORDER if s in statuses] + sorted({s for s in statuses if s not in STATUS_ORDER})
     crit_order = [c for c in ("high", "medium", "low")] + sorted(
         {r.criticality for r in rows} - {"high", "medium", "low"})
@@ -989,6 +1055,14 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     if not work.ranked:
         notes.append("The ranking stage did not run: the work list is ordered by status (most severe first), "
                      "then by tag.")
+    loops = tuple(_loop_line(rows[i], res, i, statuses[i], anchors) for i in range(len(rows)))
+    invalid = tuple(_invalid_line(r, res, i) for i, r in enumerate(rows) if statuses[i] == "invalid")
+    health = health_summary(audit, {d.index: d.anchor for d in details})
+    groups = _group_sections(audit)
+    batched = _collect_steps(jobs, pending)
+    details = tuple(d if d.anchor not in freq else
+                    replace(d, plots=replace(freq[d.anchor], steps=batched[d.anchor][0]),
+                            notes=batched[d.anchor][1] + d.notes) for d in details)
     return Report(
         cover=_cover(audit),
         total=_tally("all loops", statuses),
@@ -999,15 +1073,15 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
         details=details,
         needing_detail=len(order),
         plot_limit=plot_limit,
-        loops=tuple(_loop_line(rows[i], res, i, statuses[i], anchors) for i in range(len(rows))),
-        invalid=tuple(_invalid_line(r, res, i) for i, r in enumerate(rows) if statuses[i] == "invalid"),
+        loops=loops,
+        invalid=invalid,
         file_problems=tuple(str(p) for p in audit.inventory.problems),
         history=_history(audit.extras.get("history")),
         glossary=tuple(GlossaryEntry(c.name, c.unit, c.meaning) for c in RESULT_COLUMNS),
         detail_mode=mode,
         notes=tuple(notes),
-        health=health_summary(audit, {d.index: d.anchor for d in details}),
-        groups=_group_sections(audit),
+        health=health,
+        groups=groups,
         plant_data=plant_data,
     )
 

@@ -15,13 +15,16 @@ process runs the pipeline stages, then times the report apart, stage by stage:
 * with ``--traces``: the step traces of the detail loops simulated loop by loop
   (:func:`audit.timedomain.step_traces`) against one batch (:func:`step_traces_many`).
 
-Printed: a Markdown table, one row per inventory, times in seconds; pages of the PDF.
+Printed: a Markdown table, one row per inventory, times in seconds (wall; ``html_cpu``: CPU time of
+build + draw + HTML, ``xlsx_cpu`` of the workbook, user + sys of this process); pages of the PDF; the
+1-minute load average after the workbook (the machine is shared).
 A benchmark that prints figures, not a timed test.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import tempfile
 import time
@@ -79,6 +82,7 @@ def measure(inventory: Path, out: Path, pdf: bool, traces: bool) -> dict:
     run_stages(audit)
     row["stages"] = sum(audit.timings.values())
     row["proposals"] = audit.timings.get("proposals", 0.0)
+    c0 = time.process_time()
     t0 = time.perf_counter()
     report = build_report(audit, plot_limit=PLOT_LIMIT)
     row["build"] = time.perf_counter() - t0
@@ -89,6 +93,7 @@ def measure(inventory: Path, out: Path, pdf: bool, traces: bool) -> dict:
     html = render_html(report, rendered)
     (out / "report.html").write_text(html, encoding="utf-8")
     row["HTML"] = time.perf_counter() - t0
+    row["html_cpu"] = time.process_time() - c0
     row["html_mb"] = len(html.encode()) / 1e6
     if pdf:
         from pypdf import PdfReader
@@ -97,9 +102,12 @@ def measure(inventory: Path, out: Path, pdf: bool, traces: bool) -> dict:
         write_pdf(render_html(report, rendered, for_print=True), out / "report.pdf", out)
         row["PDF"] = time.perf_counter() - t0
         row["pages"] = len(PdfReader(out / "report.pdf").pages)
+    c0 = time.process_time()
     t0 = time.perf_counter()
     write_results_xlsx(audit, report, out / "results.xlsx")
     row["xlsx"] = time.perf_counter() - t0
+    row["xlsx_cpu"] = time.process_time() - c0
+    row["load"] = os.getloadavg()[0]
     row["loops"] = len(audit.results)
     row["details"] = len(report.details)
     row["charts"] = sum(len(v) for v in rendered.loops.values())
@@ -111,8 +119,8 @@ def measure(inventory: Path, out: Path, pdf: bool, traces: bool) -> dict:
 
 COLUMNS = (("inventory", "{}"), ("loops", "{:,}"), ("details", "{:,}"), ("charts", "{:,}"), ("read", "{:.2f}"),
            ("stages", "{:.1f}"), ("proposals", "{:.1f}"), ("build", "{:.2f}"), ("draw", "{:.2f}"),
-           ("HTML", "{:.2f}"), ("html_mb", "{:.2f}"), ("html_total", "{:.1f}"), ("PDF", "{:.1f}"),
-           ("pages", "{}"), ("xlsx", "{:.2f}"), ("traces_one", "{:.1f}"), ("traces_batch", "{:.2f}"),
+           ("HTML", "{:.2f}"), ("html_cpu", "{:.2f}"), ("html_mb", "{:.2f}"), ("html_total", "{:.1f}"), ("PDF", "{:.1f}"),
+           ("pages", "{}"), ("xlsx", "{:.2f}"), ("xlsx_cpu", "{:.2f}"), ("load", "{:.1f}"), ("traces_one", "{:.1f}"), ("traces_batch", "{:.2f}"),
            ("trace_models", "{}"))
 
 

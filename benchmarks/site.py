@@ -11,13 +11,16 @@ results.xlsx) and no history. Stage times come from ``Audit.timings``; peak memo
 process's maximum resident set size (``resource.getrusage``), worker processes listed
 apart. Printed: one table row per size with the time of each stage, the total, the time
 per loop (constant when cost grows linearly with loops), proposals per failing loop and
-peak memory. A benchmark that prints figures, not a timed test.
+peak memory, the CPU time (user + sys) of the audit process and of its worker processes, and the
+1-minute load average at the end of the run (the machine is shared: wall times are only as good as
+the load beside them). A benchmark that prints figures, not a timed test.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import subprocess
 import sys
@@ -60,8 +63,11 @@ def child(inventory: str, out_dir: str, jobs: int, pdf: bool) -> dict:
     render = sum(tm.get(k, 0.0) for k in ("report.html", "report.pdf", "results.xlsx"))
     tm["csv+json"] = max(tm.get("write", 0.0) - render, 0.0)
     status = audit.results["status"].value_counts().to_dict()
+    own, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
     return {
         "loops": len(audit.results), "wall": wall, "timings": tm, "status": status,
+        "cpu": own.ru_utime + own.ru_stime, "workers_cpu": kids.ru_utime + kids.ru_stime,
+        "load": os.getloadavg(),
         "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
         "workers_peak_mib": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024,
     }
@@ -88,8 +94,8 @@ def run_size(n: int, seed: int, jobs: int, pdf: bool, tmp: Path) -> dict:
 
 def table(results: list[dict]) -> str:
     """The figures as a Markdown table."""
-    head = ["loops"] + [c for c, _ in COLUMNS] + ["total", "ms/loop", "ms/failing loop (proposals)",
-                                                  "peak MiB"]
+    head = ["loops"] + [c for c, _ in COLUMNS] + ["total", "CPU s (+workers)", "load avg", "ms/loop",
+                                                  "ms/failing loop (proposals)", "peak MiB"]
     lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
     for r in results:
         tm = r["timings"]
@@ -99,7 +105,8 @@ def table(results: list[dict]) -> str:
             cells.append(f"{sum(got):.2f}" if got else "-")
         failing = sum(v for k, v in r["status"].items() if k in ("fails", "unstable"))
         prop = tm.get("proposals")
-        cells += [f"{r['wall']:.1f}", f"{1000 * r['wall'] / r['loops']:.2f}",
+        cells += [f"{r['wall']:.1f}", f"{r['cpu']:.1f} (+{r['workers_cpu']:.1f})", f"{r['load'][0]:.1f}",
+                  f"{1000 * r['wall'] / r['loops']:.2f}",
                   f"{1000 * prop / failing:.1f} ({failing:,})" if prop is not None and failing else "-",
                   f"{r['peak_mib']:.0f}" + (f" (+workers {r['workers_peak_mib']:.0f})" if r["workers_peak_mib"] else "")]
         lines.append("| " + " | ".join(cells) + " |")
