@@ -72,6 +72,18 @@ HORIZON_FACTOR = 4.0     # first horizon = HORIZON_FACTOR * Tc
 RERUNS = 2               # horizon x4 at most this many times
 RERUN_CAP = 8 * N_TARGET  # most steps of a rerun (a longer one is cut and reported as not settled)
 SETTLED_FRACTION = 0.75  # a response must settle before this fraction of the horizon
+#: Longest delay line (steps, one more with a fractional delay) of a loop simulated through powers of its
+#: one-step map (:func:`simulate_lifted`); longer ones step by step (:func:`simulate`). [-]
+LIFT_DEPTH = 12
+#: Fewest and most steps of a block of :func:`simulate_lifted` for loops with long delay channels (a
+#: channel at least BLOCK_MIN steps long is read from outside the lifted state). [-]
+BLOCK_MIN = 4
+BLOCK_MAX = 32
+#: Loops with long delay channels are lifted only when fewer than this many would otherwise be simulated
+#: step by step, and none has to be: past it the step-by-step run costs less per loop. [-]
+BLOCK_LOOPS = 256
+#: Products per block of :func:`simulate_lifted` aimed at with long delay channels (sets the block length). [-]
+BLOCK_WORK = 20000
 
 STEP_COLUMNS = ("load_iae_s", "load_ie_s", "load_peak", "load_t_peak_s", "load_settle_s", "load_offset",
                 "sp_overshoot_pct", "sp_rise_s", "sp_settle_s", "sp_offset", "step_horizon_s", "step_note")
@@ -784,6 +796,349 @@ def simulate(batch: Batch, h: np.ndarray, n_steps: int, ext: Callable[[int], np.
     return SimResult(h, YM, YP)
 
 
+def _delay_steps(batch: Batch, h: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Whole steps ``n`` (m, L) and fraction ``frac`` (m, L) of every delay channel, as :func:`simulate` reads them."""
+    steps = np.where(np.isnan(batch.delays), 1.0, batch.delays / h[:, None]).T      # (m, L)
+    n = np.floor(steps + 1e-9).astype(int)
+    frac = steps - n
+    frac[frac < 1e-9] = 0.0
+    return n, frac
+
+
+@dataclass
+class _Lifted:
+    """One step of a group of loops as an affine map of an augmented state, S_{k+1} = M S_k + N u_{k+1}.
+
+    The state holds x, the right limit of w, the last ``depth`` values of both limits of every
+    short delay channel's input q, the stored outputs' right and left limits, both limits of the
+    long channels' inputs q at t_k and a constant 1 (the unit step input); ``start`` is S_0.
+    ``u`` holds the long channels' delayed values (left limits, then right limits), read from
+    outside the state (they are at least one block old).
+    """
+
+    M: np.ndarray          # (L, na, na)
+    N: np.ndarray          # (L, na, 2 ml)
+    start: np.ndarray      # (L, na)
+    outs: np.ndarray       # indices of [yp (ny); ym (ny); qp long (ml); qm long (ml)] in the state
+
+
+def _lift(batch: Batch, h: np.ndarray, sel: Sequence[int], jumps: bool, long: np.ndarray) -> _Lifted:
+    """The augmented one-step map of :func:`simulate` (unit step input) for every loop of ``batch``.
+
+    ``long`` (m,) marks the channels read from outside the state. The map is built by applying
+    the operations of one step of :func:`simulate` to the columns of an identity matrix, so it is
+    the same recurrence (without the overflow guard).
+    """
+    L = len(batch)
+    Phi, G0, G1 = _discretise(batch.A, batch.B, h)
+    ns, m = batch.A.shape[1], batch.Cq.shape[1]
+    H = np.concatenate([np.concatenate([batch.Cq, batch.Dq], axis=2),
+                        np.concatenate([batch.Cy[:, sel], batch.Dy[:, sel]], axis=2)], axis=1)   # (L, m+ny, ns+r)
+    ny = len(sel)
+    n, frac = _delay_steps(batch, h)
+    if (n < 1).any():
+        raise ValueError("a delay is shorter than one step")
+    sh = np.flatnonzero(~long)
+    lg = np.flatnonzero(long)
+    ms, ml = len(sh), len(lg)
+    use_frac = bool((frac[sh] > 0.0).any())
+    depth = int(n[sh].max()) + 1 + int(use_frac) if ms else 0
+    iwp = ns
+    iqp = ns + m
+    iqm = iqp + ms * depth
+    iyp = iqm + ms * depth
+    iym = iyp + ny
+    ilp = iym + ny
+    ilm = ilp + ml
+    na = ilm + ml + 1
+    S = np.broadcast_to(np.eye(na + 2 * ml), (L, na + 2 * ml, na + 2 * ml))
+    x = S[:, :ns]
+    wp = S[:, iwp:iwp + m]
+    QP = S[:, iqp:iqm].reshape(L, ms, depth, na + 2 * ml)
+    QM = S[:, iqm:iyp].reshape(L, ms, depth, na + 2 * ml)
+    one = S[:, na - 1:na]
+    wm1 = np.empty((L, m, na + 2 * ml))
+    wp1 = np.empty((L, m, na + 2 * ml))
+    wm1[:, lg] = S[:, na:na + ml]
+    wp1[:, lg] = S[:, na + ml:]
+    if ms:
+        li = np.arange(L)[:, None]
+        ci = np.arange(ms)[None, :]
+        pos = (depth - n[sh]).T                              # read position of w(t_{k+1}), (L, ms)
+        a = QM[li, ci, pos]
+        b = QP[li, ci, pos]
+        if use_frac:
+            fr = frac[sh].T[:, :, None]
+            prev = QP[li, ci, pos - 1]
+            wf = (1.0 - fr) * a + fr * prev
+            a = np.where(fr > 0.0, wf, a)
+            b = np.where(fr > 0.0, wf, b)
+        wm1[:, sh] = a
+        wp1[:, sh] = b
+    V = np.concatenate([x, wp, one, wm1, one], axis=1)        # [x; U+(t_k); U-(t_k+1)]
+    G = np.concatenate([Phi, G0, G1], axis=2)
+    x1 = G @ V
+    Op = H @ np.concatenate([x1, wp1, one], axis=1)
+    Om = Op + H[:, :, ns:ns + m] @ (wm1 - wp1) if jumps else Op
+    T = np.empty((L, na, na + 2 * ml))
+    T[:, :ns] = x1
+    T[:, iwp:iwp + m] = wp1
+    if ms:
+        T[:, iqp:iqm] = np.concatenate([QP[:, :, 1:], Op[:, sh, None]], axis=2).reshape(L, ms * depth, na + 2 * ml)
+        T[:, iqm:iyp] = np.concatenate([QM[:, :, 1:], Om[:, sh, None]], axis=2).reshape(L, ms * depth, na + 2 * ml)
+    T[:, iyp:iym] = Op[:, m:]
+    T[:, iym:ilp] = Om[:, m:]
+    T[:, ilp:ilm] = Op[:, lg]
+    T[:, ilm:na - 1] = Om[:, lg]
+    T[:, na - 1] = 0.0
+    T[:, na - 1, na - 1] = 1.0
+    # t = 0: the left limit is rest; the right limit has e = 1
+    start = np.zeros((L, na))
+    Op0 = H[:, :, ns + m]
+    if ms:
+        start[:, iqp + depth - 1:iqm:depth] = Op0[:, sh]
+    start[:, iyp:iym] = Op0[:, m:]
+    start[:, iym:ilp] = 0.0 if jumps else Op0[:, m:]
+    start[:, ilp:ilm] = Op0[:, lg]
+    start[:, na - 1] = 1.0
+    return _Lifted(np.ascontiguousarray(T[:, :, :na]), np.ascontiguousarray(T[:, :, na:]), start,
+                   np.arange(iyp, na - 1))
+
+
+def _powers_rows(E: np.ndarray, M: np.ndarray, count: int) -> tuple[np.ndarray, np.ndarray]:
+    """Rows E M^i for i < ``count`` (a power of two), by doubling, and M^count.
+
+    Parameters
+    ----------
+    E : ndarray, shape (L, k, na)
+    M : ndarray, shape (L, na, na)
+    count : int
+
+    Returns
+    -------
+    tuple of ndarray
+        (L, count, k, na) and (L, na, na).
+    """
+    P = E[:, None]
+    Mp = M
+    while P.shape[1] < count:
+        P = np.concatenate([P, P @ Mp[:, None]], axis=1)
+        Mp = Mp @ Mp
+    return P, Mp
+
+
+def simulate_lifted(batch: Batch, h: np.ndarray, n_steps: int, outputs: Sequence[int] = (0,),
+                    jumps: bool | None = None, long: Sequence[bool] | None = None) -> SimResult:
+    """:func:`simulate` of a unit step, evaluated through powers of the one-step map.
+
+    Every step of :func:`simulate` is linear in an augmented state (x, the short delay lines,
+    the outputs and a constant), S_{k+1} = M S_k + N u_{k+1}, where u holds the delayed values of
+    the ``long`` channels. Without long channels the grid is cut into blocks of ``b`` steps
+    (``b`` a power of two near sqrt(N)): the output rows E M^i (i < b) are formed by doubling,
+    the block starts S_{jb} by ``b``-th powers of M, and all outputs in one product
+    y_{jb+i} = (E M^i) S_{jb}. With long channels the blocks are at most as long as the
+    shortest long delay, so every u of a block is already known when it starts; each block is
+    then one product with E M^i and one with the block Toeplitz matrix of E M^d N. Either way
+    it takes a few array operations per block instead of a few per step, at a cost that grows
+    with the square of the state size: it suits loops whose short delays are few steps long.
+    Same grid, same recurrence: the values differ from :func:`simulate` by rounding only (about
+    1e-12 relative for a stable loop); a loop whose response leaves the float range gives
+    non-finite values here, where :func:`simulate` holds it at :data:`STATE_LIMIT`.
+
+    Parameters
+    ----------
+    batch : Batch
+        Loops broken at their delays.
+    h : ndarray
+        Step of each loop; every delay must be at least one step. [s]
+    n_steps : int
+        Number of steps. [-]
+    outputs : sequence of int
+        Outputs to store (0 PV, 1 controller output).
+    jumps : bool or None
+        Keep left and right limits apart (as :func:`simulate` does when any signal reaches an
+        output without a lag); decided from the batch when None.
+    long : sequence of bool or None
+        Channels read from outside the state, each at least :data:`BLOCK_MIN` steps long in
+        every loop; none when None.
+
+    Returns
+    -------
+    SimResult
+        As :func:`simulate` returns it.
+    """
+    L = len(batch)
+    h = np.asarray(h, float)
+    sel = list(outputs)
+    ny = len(sel)
+    m = batch.Cq.shape[1]
+    long = np.zeros(m, bool) if long is None else np.asarray(long, bool)
+    if jumps is None:
+        jumps = bool(np.any(batch.Dq != 0.0) or np.any(batch.Dy[:, sel] != 0.0))
+    lf = _lift(batch, h, sel, jumps, long)
+    na = lf.M.shape[1]
+    E = np.broadcast_to(np.eye(na)[lf.outs], (L, len(lf.outs), na))
+    K = n_steps + 1
+    lg = np.flatnonzero(long)
+    ml = len(lg)
+    if not ml:
+        b = 1 << max(0, int(math.ceil(0.5 * math.log2(K))))
+        P, Mb = _powers_rows(E, lf.M, b)
+        J = -(-K // b)
+        starts = np.empty((L, na, J))
+        s = lf.start
+        for j in range(J):
+            starts[:, :, j] = s
+            if j + 1 < J:
+                s = np.einsum("lij,lj->li", Mb, s)
+        Y = np.einsum("lkn,lnj->jkl", P.reshape(L, -1, na), starts)         # (J, b 2ny, L)
+        Y = Y.reshape(J * b, 2 * ny, L)[:K]
+    else:
+        n, frac = _delay_steps(batch, h)
+        n, frac = n[lg], frac[lg]                                          # (ml, L)
+        outs, N = lf.outs, lf.N
+        if not jumps:
+            # left and right limits agree: one output per signal, one input per long channel
+            outs = np.concatenate([outs[:ny], outs[2 * ny:2 * ny + ml]])
+            N = N[:, :, :ml] + N[:, :, ml:]
+        nout, nin = len(outs), N.shape[2]
+        E = np.broadcast_to(np.eye(na)[outs], (L, nout, na))
+        # block length: at most the shortest long delay; near the length that balances the work per
+        # block (L nout nin b^2 products) against the fixed cost of the few array operations per block
+        b_work = math.sqrt(BLOCK_WORK / (L * nout * nin))
+        b = 1 << max(0, min(int(math.floor(math.log2(min(int(n.min()), BLOCK_MAX)))), int(round(math.log2(b_work)))))
+        P, Mb = _powers_rows(E, lf.M, b)                                   # E M^i, i < b
+        F = P @ N[:, None]                                                 # E M^d N, d < b
+        Pb = np.concatenate([P[:, 1:], (E @ Mb)[:, None]], axis=1).reshape(L, b * nout, na)   # E M^i, i = 1..b
+        T = np.zeros((L, b, nout, b, nin))                                 # block Toeplitz of F
+        for d in range(b):
+            T[:, np.arange(d, b), :, np.arange(0, b - d), :] = F[:, d][None]
+        T = T.reshape(L, b * nout, b * nin)
+        # end of a block: M^b S + sum_l M^{b-l} N u_l
+        W = np.empty((L, na, b, nin))
+        W[:, :, b - 1] = N
+        cur = N
+        for i in range(b - 2, -1, -1):
+            cur = lf.M @ cur
+            W[:, :, i] = cur
+        W = W.reshape(L, na, b * nin)
+        G = np.concatenate([np.concatenate([Pb, T], axis=2), np.concatenate([Mb, W], axis=2)], axis=1)
+        # outputs z_t (t = 0..J b) of every loop in one buffer, after ``pad`` zeros (rest before t = 0)
+        pad = int(n.max()) + 2
+        J = -(-(K - 1) // b)
+        width = pad + J * b + 1
+        Z = np.zeros((L, width, nout))
+        Z[:, pad] = lf.start[:, outs]
+        # flat read positions of u at the first block: q of every long channel at t - n (left limit,
+        # right limit) and the right limit at t - n - 1 (fractional delays)
+        t = pad + np.arange(1, b + 1)[None, :, None] - n.T[:, None, :]                # (L, b, ml)
+        row = (np.arange(L)[:, None, None] * width + t) * nout
+        qp = (2 * ny if jumps else ny) + np.arange(ml)   # columns of the long channels' right limits
+        qm = qp + ml if jumps else qp
+        at = np.concatenate([row + qm, row + qp, row - nout + qp], axis=2)            # (L, b, 3 ml)
+        fr = frac.T[:, None, :]
+        use_frac = bool((frac > 0.0).any())
+        flat = Z.reshape(-1)
+        s = lf.start
+        for j in range(J):
+            got = np.take(flat, at + j * b * nout)
+            wm, wp = got[:, :, :ml], got[:, :, ml:2 * ml]
+            if use_frac:
+                wf = (1.0 - fr) * wm + fr * got[:, :, 2 * ml:]
+                wm = np.where(fr > 0.0, wf, wm)
+                wp = np.where(fr > 0.0, wf, wp)
+            u = np.concatenate([wm, wp], axis=2) if jumps else wp
+            out = G @ np.concatenate([s[:, :, None], u.reshape(L, b * nin, 1)], axis=1)
+            Z[:, pad + 1 + j * b:pad + 1 + (j + 1) * b] = out[:, :b * nout, 0].reshape(L, b, nout)
+            s = out[:, b * nout:, 0]
+        Z = Z[:, pad:, :2 * ny] if jumps else Z[:, pad:, :ny][:, :, [*range(ny), *range(ny)]]
+        Y = Z.transpose(1, 2, 0)
+        Y = Y[:K]
+    YP = np.ascontiguousarray(Y[:, :ny])
+    YM = np.ascontiguousarray(Y[:, ny:]) if jumps else YP
+    return SimResult(h, YM, YP)
+
+
+def _narrow(batch: Batch, mu: int) -> Batch:
+    """The batch with only its first ``mu`` delay channels (the others unused: NaN delay, zero paths)."""
+    m = batch.Cq.shape[1]
+    if mu == m:
+        return batch
+    cols = list(range(mu)) + [m]
+    return Batch(batch.A, batch.B[:, :, cols], batch.Cq[:, :mu], batch.Dq[:, :mu][:, :, cols], batch.Cy,
+                 batch.Dy[:, :, cols], batch.delays[:, :mu], batch.y_shift, batch.u_shift, batch.soft)
+
+
+def simulate_steps(batch: Batch, h: np.ndarray, n_steps: int, outputs: Sequence[int] = (0,)) -> SimResult:
+    """:func:`simulate` of a unit step, each loop by the cheaper of two evaluations of the same recurrence.
+
+    Loops whose delay lines are at most :data:`LIFT_DEPTH` steps long go to
+    :func:`simulate_lifted` (grouped by delay-line length and channel count), the others to
+    :func:`simulate`; so does a lifted loop whose response leaves +-1e90 (an unstable loop,
+    held at :data:`STATE_LIMIT` there). Left and right limits are kept apart for the whole batch
+    when :func:`simulate` would keep them apart for it, so the result has the same layout.
+
+    Parameters
+    ----------
+    batch : Batch
+        Loops broken at their delays.
+    h : ndarray
+        Step of each loop; every delay must be at least one step. [s]
+    n_steps : int
+        Number of steps. [-]
+    outputs : sequence of int
+        Outputs to store (0 PV, 1 controller output).
+
+    Returns
+    -------
+    SimResult
+        As :func:`simulate` returns it.
+    """
+    L = len(batch)
+    h = np.asarray(h, float)
+    sel = list(outputs)
+    jumps = bool(np.any(batch.Dq != 0.0) or np.any(batch.Dy[:, sel] != 0.0))
+    n, frac = _delay_steps(batch, h)
+    used = ~np.isnan(batch.delays.T)                                   # (m, L)
+    mu = np.maximum(used.sum(axis=0), 1)
+    whole = np.where(used, n, 1).max(axis=0) + 1 + (used & (frac > 0.0)).any(axis=0)
+    long = used & (n >= BLOCK_MIN) & (whole > LIFT_DEPTH)[None, :]
+    short = ~long
+    depth = np.where(short, n, 1).max(axis=0) + 1 + (short & (frac > 0.0)).any(axis=0)
+    block = 1 << np.floor(np.log2(np.minimum(np.where(long, n, BLOCK_MAX).min(axis=0), BLOCK_MAX))).astype(int)
+    full = ~long.any(axis=0) & (depth <= LIFT_DEPTH)
+    lift = (depth <= LIFT_DEPTH) & (n >= 1).all(axis=0)
+    if (~full).sum() >= BLOCK_LOOPS or not lift[~full].all():
+        lift = full     # the step-by-step run is needed anyway: loops with long channels join it (cheaper)
+    ny = len(sel)
+    YP = np.empty((n_steps + 1, ny, L))
+    YM = np.empty((n_steps + 1, ny, L)) if jumps else YP
+    seq = list(np.flatnonzero(~lift))
+    # groups: channel count, which channels are long, block length (loops with long channels) or
+    # delay-line length (the others: the state grows with it)
+    group = np.where(long.any(axis=0), block, -depth)
+    keys = {(int(mu[i]), tuple(long[:mu[i], i].tolist()), int(group[i])) for i in np.flatnonzero(lift)}
+    for key in sorted(keys):
+        km, kl, kg = key
+        idx = np.flatnonzero(lift & (mu == km) & (long[:km] == np.array(kl)[:, None]).all(axis=0) & (group == kg))
+        res = simulate_lifted(_narrow(batch.take(idx), km), h[idx], n_steps, sel, jumps, kl)
+        big = ~(np.abs(res.yp) <= 1e90).all(axis=(0, 1)) | ~(np.abs(res.ym) <= 1e90).all(axis=(0, 1))
+        good = ~big
+        YP[:, :, idx[good]] = res.yp[:, :, good]
+        if jumps:
+            YM[:, :, idx[good]] = res.ym[:, :, good]
+        seq.extend(idx[big].tolist())
+    if seq:
+        idx = np.array(sorted(seq), int)
+        res = simulate(batch.take(idx), h[idx], n_steps, outputs=sel)
+        YP[:, :, idx] = res.yp
+        if jumps:
+            YM[:, :, idx] = res.ym
+            if res.ym is res.yp:      # no jump in these loops: the left limit at t = 0 is rest
+                YM[0, :, idx] = 0.0
+    return SimResult(h, YM, YP)
+
+
 def final_values(batch: Batch) -> np.ndarray:
     """Steady outputs after a unit step (every delay is 1 at s = 0), shape (outputs, loops); NaN when none.
 
@@ -983,7 +1338,7 @@ def _run_kind(batch: Batch, kind: str, pct: float, horizons: np.ndarray, n_cap: 
             sel = idx[a:a + chunk]
             h = np.array([plans[i].h for i in sel])
             sub = batch.take(sel)
-            res = simulate(sub, h, int(nb))
+            res = simulate_steps(sub, h, int(nb))
             for b0 in range(0, len(sel), FIGURE_CHUNK):
                 cs = slice(b0, b0 + FIGURE_CHUNK)
                 ss = sel[cs]
@@ -1211,7 +1566,7 @@ def step_traces_many(models: Sequence[LoopModel], kind: str,
             sel = idx[a:a + chunk]
             sub = batch.take(sel)
             steps = int(nreq[sel].max())
-            res = simulate(sub, np.array([plans[j].h for j in sel]), steps, outputs=(0, 1))
+            res = simulate_steps(sub, np.array([plans[j].h for j in sel]), steps, outputs=(0, 1))
             for c, j in enumerate(sel):
                 p = plans[j]
                 t = np.arange(p.n_steps + 1) * p.h
