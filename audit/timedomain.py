@@ -22,8 +22,11 @@ exponential) for inputs that are linear between grid points (first-order hold);
 the delay line stores the left and right limits of its input at every grid point,
 so jumps (proportional kicks, pure-gain processes) pass through the delay exactly.
 Delays that are not whole numbers of steps (incommensurate cascade delays) are read
-from the delay line by linear interpolation at the exact delayed time. All loops of
-a batch advance together: one Python iteration per time step, arrays across loops.
+from the delay line by linear interpolation at the exact delayed time. The engine is
+:mod:`audit.stepsim`: loops of a batch advance together, arrays across loops, either
+step by step or, for loops with short delay lines (short dead times over long horizons)
+and cascades with long outer delays, in blocks of steps through powers of the one-step
+map (the same recurrence, evaluated in another order).
 
 Horizon
 -------

@@ -9,7 +9,8 @@ For each size a seeded inventory is generated (audit.generate, .xlsx) and audite
 every output written (results.csv/json, report.html, report.pdf unless --no-pdf,
 results.xlsx) and no history. Stage times come from ``Audit.timings``; peak memory is the
 process's maximum resident set size (``resource.getrusage``), worker processes listed
-apart. Printed: one table row per size with the time of each stage, the total, the time
+apart; so is the CPU time (user + system) of the audit process and of its workers, and the load
+average after each size (the machine may be shared: wall times are only as good as it is idle). Printed: one table row per size with the time of each stage, the total, the time
 per loop (constant when cost grows linearly with loops), proposals per failing loop and
 peak memory. A benchmark that prints figures, not a timed test.
 """
@@ -18,6 +19,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import subprocess
 import sys
@@ -60,7 +62,9 @@ def child(inventory: str, out_dir: str, jobs: int, pdf: bool) -> dict:
     render = sum(tm.get(k, 0.0) for k in ("report.html", "report.pdf", "results.xlsx"))
     tm["csv+json"] = max(tm.get("write", 0.0) - render, 0.0)
     status = audit.results["status"].value_counts().to_dict()
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
     return {
+        "cpu": me.ru_utime + me.ru_stime, "workers_cpu": kids.ru_utime + kids.ru_stime,
         "loops": len(audit.results), "wall": wall, "timings": tm, "status": status,
         "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
         "workers_peak_mib": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024,
@@ -88,8 +92,8 @@ def run_size(n: int, seed: int, jobs: int, pdf: bool, tmp: Path) -> dict:
 
 def table(results: list[dict]) -> str:
     """The figures as a Markdown table."""
-    head = ["loops"] + [c for c, _ in COLUMNS] + ["total", "ms/loop", "ms/failing loop (proposals)",
-                                                  "peak MiB"]
+    head = ["loops"] + [c for c, _ in COLUMNS] + ["total", "CPU s (+workers)", "ms/loop",
+                                                  "ms/failing loop (proposals)", "peak MiB"]
     lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
     for r in results:
         tm = r["timings"]
@@ -99,7 +103,8 @@ def table(results: list[dict]) -> str:
             cells.append(f"{sum(got):.2f}" if got else "-")
         failing = sum(v for k, v in r["status"].items() if k in ("fails", "unstable"))
         prop = tm.get("proposals")
-        cells += [f"{r['wall']:.1f}", f"{1000 * r['wall'] / r['loops']:.2f}",
+        cells += [f"{r['wall']:.1f}", f"{r['cpu']:.1f} (+{r['workers_cpu']:.1f})",
+                  f"{1000 * r['wall'] / r['loops']:.2f}",
                   f"{1000 * prop / failing:.1f} ({failing:,})" if prop is not None and failing else "-",
                   f"{r['peak_mib']:.0f}" + (f" (+workers {r['workers_peak_mib']:.0f})" if r["workers_peak_mib"] else "")]
         lines.append("| " + " | ".join(cells) + " |")
@@ -119,7 +124,7 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     from engine import machine
 
-    print(f"machine: {machine()}")
+    print(f"machine: {machine()}; load average before: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
     print(f"jobs {args.jobs}, pdf {not args.no_pdf}, seed {args.seed}")
     results = []
     with tempfile.TemporaryDirectory() as tmp:
@@ -127,7 +132,10 @@ def main(argv: list[str] | None = None) -> int:
             r = run_size(n, args.seed, args.jobs, not args.no_pdf, Path(tmp))
             results.append(r)
             st = ", ".join(f"{v} {k}" for k, v in sorted(r["status"].items()))
-            print(f"{n} loops: generated in {r['generate']:.1f} s; audited in {r['wall']:.1f} s; {st}", flush=True)
+            load = " ".join(f"{x:.2f}" for x in os.getloadavg())
+            print(f"{n} loops: generated in {r['generate']:.1f} s; audited in {r['wall']:.1f} s "
+                  f"(CPU {r['cpu']:.1f} s + workers {r['workers_cpu']:.1f} s; load average after: {load}); {st}",
+                  flush=True)
     print()
     print(table(results))
     return 0
