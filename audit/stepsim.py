@@ -1048,8 +1048,10 @@ def simulate_steps(batch: Batch, h: np.ndarray, n_steps: int, outputs: Sequence[
     for key in sorted(keys):
         km, kl, kg = key
         idx = np.flatnonzero(lift & (mu == km) & (long[:km] == np.array(kl)[:, None]).all(axis=0) & (group == kg))
-        res = simulate_lifted(_narrow(batch.take(idx), km), h[idx], n_steps, sel, jumps, kl)
-        big = ~(np.abs(res.yp) <= 1e90).all(axis=(0, 1)) | ~(np.abs(res.ym) <= 1e90).all(axis=(0, 1))
+        # an unstable loop's powers may overflow: its values are then not finite, and it runs step by step
+        with np.errstate(over="ignore", invalid="ignore"):
+            res = simulate_lifted(_narrow(batch.take(idx), km), h[idx], n_steps, sel, jumps, kl)
+            big = ~(np.abs(res.yp) <= 1e90).all(axis=(0, 1)) | ~(np.abs(res.ym) <= 1e90).all(axis=(0, 1))
         good = ~big
         YP[:, :, idx[good]] = res.yp[:, :, good]
         if jumps:
