@@ -43,7 +43,6 @@ from typing import Sequence
 
 import numpy as np
 import pandas as pd
-from scipy.signal import fftconvolve, welch
 
 from .limits import MAX_RECORD_BYTES, MAX_RECORD_LINES, NotARegularFile, open_regular
 from .loop import LoopModel
@@ -316,6 +315,7 @@ def analyse_record(record: Record, allowed_amplitude: float | None, policy: Poli
                               allowed_amplitude, np.zeros(0), record.dt, tuple(record.notes) + (bad,), bad)
     d, slope = detrend(record.t, record.values)
     n = len(d)
+    from scipy.signal import welch   # here, not at import: a run without records need not load scipy.signal
     seg = welch_segment(n)
     f, p = welch(d, fs=1.0 / record.dt, window="hann", nperseg=seg, noverlap=seg // 2,
                  detrend=False, scaling="density", return_onesided=True)
@@ -437,6 +437,7 @@ def _kernels(models: Sequence[LoopModel], dts: np.ndarray, lengths: np.ndarray
 
 def _residual_from(t: np.ndarray, d: np.ndarray, kern: np.ndarray, s0: float, model: LoopModel,
                    an: RecordAnalysis | None, allowed: float | None, note: str) -> Residual:
+    from scipy.signal import fftconvolve
     x = d - d[0]
     y = s0 * d[0] + fftconvolve(x, kern)[:len(d)] if len(kern) else np.full(len(d), s0 * d[0])
     amp = amplitude_of(y)

@@ -1,29 +1,46 @@
-"""Compare two results.csv files column by column (a change that must not change results).
+"""Regression check of a run's results: every column of two results files must agree.
 
 Usage::
 
-    python benchmarks/compare_results.py BEFORE.csv AFTER.csv [--columns proposal] [--rtol 1e-9]
+    python benchmarks/compare_results.py BEFORE.csv AFTER.csv [--rtol 1e-9]
+    python benchmarks/compare_results.py BEFORE.json AFTER.json [--rtol 1e-9] [--atol 0]
+    python benchmarks/compare_results.py BEFORE.csv AFTER.csv --columns proposal
 
-Rows are matched by position and must carry the same ``row`` and ``tag``. A text column (verdict,
-method, settings text, notes, findings, ...) must be identical. A numeric column must be identical
-or equal to ``--rtol`` relative (absolute ``--rtol`` near zero), NaN matching NaN. Printed: per
-column, the rows identical, the rows equal within the tolerance and the largest relative
-difference, and the rows that differ beyond it (first few shown). Exit status 0 when every
-compared column agrees, 1 otherwise. A check that prints figures, not a timed test.
+Both files come from ``plant-audit run`` on the same inventory with the same ``--date`` (one
+before a change, one after). Rows are matched by position (the results keep inventory order)
+and must be as many. A column holding numbers in both files agrees where both values are
+missing, or equal, or differ by at most ``atol + rtol`` times the larger magnitude (floating-point
+order may change the last bits; ``atol``, none by default, admits the rounding noise of a figure
+that is a small difference of large numbers, such as an overshoot of 1e-11 %); every other column (verdicts, findings, notes, ranks given as text) must be
+equal as text. For ``results.json`` the run's other entries (meta, policy, columns) must be
+equal too. Printed: one line per column that differs (how many rows, the largest relative
+difference, the first row), then a summary; exit status 0 when everything agrees, 1 otherwise.
 
-``--columns proposal`` compares the columns the proposals stages write (the verdict, the
+``--columns proposal`` compares only the columns the proposals stages write (the verdict, the
 ``proposal_*`` and ``group_*proposal*`` columns, ``best_band_s_db``, ``limiting_factor``) and the
-ranking that reads them (``priority_score``, ``rank``); ``--columns all`` compares every column
-the two files share.
+ranking that reads them (``priority_score``, ``rank``); ``all`` (the default) every column.
 """
 
 from __future__ import annotations
 
 import argparse
+import json
 import math
 import sys
+from pathlib import Path
 
+import numpy as np
 import pandas as pd
+
+
+def _table(path: Path) -> tuple[pd.DataFrame, dict]:
+    """The results rows (every cell as read, text kept) and, for JSON, the other top-level entries."""
+    if path.suffix.lower() == ".json":
+        doc = json.loads(path.read_text(encoding="utf-8"))
+        rows = doc.pop("loops")
+        return pd.DataFrame.from_records(rows), doc
+    return pd.read_csv(path, dtype=str, keep_default_na=False), {}
+
 
 PROPOSAL_COLUMNS = ("verdict", "best_band_s_db", "limiting_factor", "priority_score", "rank")
 
@@ -34,86 +51,118 @@ def proposal_columns(cols) -> list[str]:
             or (c.startswith("group_") and ("proposal" in c or "detuning" in c))]
 
 
-def _num(v) -> float | None:
-    """The value as a float when it is one (blank is NaN), else None."""
-    if v is None or (isinstance(v, float) and math.isnan(v)) or v == "":
-        return math.nan
-    try:
-        return float(v)
-    except (TypeError, ValueError):
-        return None
-
-
-def compare(before: pd.DataFrame, after: pd.DataFrame, columns: list[str], rtol: float) -> dict[str, dict]:
-    """Per column: counts of identical, tolerated and differing rows, and the largest relative difference.
-
-    Parameters
-    ----------
-    before, after : pandas.DataFrame
-        The two results tables, read as text (``dtype=str``, blanks kept as NaN).
-    columns : list of str
-        Columns to compare.
-    rtol : float
-        Relative tolerance for numbers. [-]
-
-    Returns
-    -------
-    dict
-        Column -> ``{"same": int, "close": int, "max_rel": float, "differ": [(row, before, after), ...]}``.
-    """
-    out: dict[str, dict] = {}
-    for c in columns:
-        same = close = 0
-        max_rel = 0.0
-        differ = []
-        for k, (a, b) in enumerate(zip(before[c].tolist(), after[c].tolist())):
-            if (a == b) or (pd.isna(a) and pd.isna(b)):
-                same += 1
-                continue
-            x, y = _num(a), _num(b)
-            if x is not None and y is not None and not (math.isnan(x) or math.isnan(y)):
-                scale = max(abs(x), abs(y))
-                rel = abs(x - y) / scale if scale > 1.0 else abs(x - y)
-                if rel <= rtol:
-                    close += 1
-                    max_rel = max(max_rel, rel)
-                    continue
-            differ.append((before["row"].iloc[k], a, b))
-        out[c] = {"same": same, "close": close, "max_rel": max_rel, "differ": differ}
+def _numbers(col: pd.Series) -> np.ndarray | None:
+    """The column as floats (blank and NaN-like cells as NaN), or None when a cell is not a number."""
+    out = np.empty(len(col))
+    for i, v in enumerate(col.tolist()):
+        if v is None or v == "" or (isinstance(v, float) and math.isnan(v)):
+            out[i] = np.nan
+        elif isinstance(v, bool):
+            return None
+        else:
+            try:
+                out[i] = float(v)
+            except (TypeError, ValueError):
+                return None
     return out
 
 
+def compare(before: Path, after: Path, rtol: float = 1e-9, atol: float = 0.0, columns: str = "all") -> list[str]:
+    """Differences between two results files, one text line each (empty when they agree).
+
+    Parameters
+    ----------
+    before, after : Path
+        ``results.csv`` or ``results.json`` of two runs (the same kind).
+    rtol : float
+        Largest relative difference of two numbers taken as equal. [-]
+    atol : float
+        Absolute difference allowed besides ``rtol`` (in each column's own unit).
+    columns : str
+        ``all``, or ``proposal`` for the proposals' columns and the ranking only.
+
+    Returns
+    -------
+    list of str
+        What differs.
+    """
+    a, meta_a = _table(before)
+    b, meta_b = _table(after)
+    out: list[str] = []
+    for k in sorted(set(meta_a) | set(meta_b)):
+        if meta_a.get(k) != meta_b.get(k):
+            out.append(f"entry {k!r}: {meta_a.get(k)!r} != {meta_b.get(k)!r}")
+    if columns == "proposal":
+        a, b = a[proposal_columns(a.columns)], b[proposal_columns(b.columns)]
+    if list(a.columns) != list(b.columns):
+        out.append(f"columns differ: only before {sorted(set(a.columns) - set(b.columns))}, "
+                   f"only after {sorted(set(b.columns) - set(a.columns))}, or in another order")
+    if len(a) != len(b):
+        out.append(f"rows: {len(a)} before, {len(b)} after")
+        return out
+    for c in [c for c in a.columns if c in b.columns]:
+        x, y = _numbers(a[c]), _numbers(b[c])
+        if x is not None and y is not None:
+            both_nan = np.isnan(x) & np.isnan(y)
+            with np.errstate(invalid="ignore"):
+                scale = np.maximum(np.abs(x), np.abs(y))
+                diff = np.abs(x - y)
+                same = both_nan | (x == y) | (diff <= atol + rtol * scale)
+                rel = np.where(scale > 0, diff / np.where(scale > 0, scale, 1.0), diff)
+            bad = np.flatnonzero(~same)
+            if len(bad):
+                worst = np.nanmax(np.where(same, 0.0, np.where(np.isnan(rel), np.inf, rel)))
+                i = bad[0]
+                out.append(f"{c}: {len(bad)} rows differ, largest relative difference {worst:.3g}; "
+                           f"first at row {i}: {x[i]!r} -> {y[i]!r}")
+        else:
+            sa, sb = a[c].astype(str).tolist(), b[c].astype(str).tolist()
+            bad = [i for i, (p, q) in enumerate(zip(sa, sb)) if p != q]
+            if bad:
+                i = bad[0]
+                out.append(f"{c}: {len(bad)} rows differ as text; first at row {i}: {sa[i][:80]!r} -> {sb[i][:80]!r}")
+    return out
+
+
+def largest_difference(before: Path, after: Path, atol: float = 0.0) -> float:
+    """Largest relative difference over the numeric cells of two results files that differ by more than ``atol``. [-]"""
+    a, _ = _table(before)
+    b, _ = _table(after)
+    worst = 0.0
+    for c in [c for c in a.columns if c in b.columns]:
+        x, y = _numbers(a[c]), _numbers(b[c])
+        if x is None or y is None or len(x) != len(y):
+            continue
+        with np.errstate(invalid="ignore", divide="ignore"):
+            scale = np.maximum(np.abs(x), np.abs(y))
+            rel = np.where(np.abs(x - y) > atol, np.abs(x - y) / scale, 0.0)
+        rel = rel[np.isfinite(rel)]
+        if len(rel):
+            worst = max(worst, float(rel.max()))
+    return worst
+
+
 def main(argv: list[str] | None = None) -> int:
-    """Compare the files named in ``argv``; 0 when they agree, 1 when they do not."""
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("before")
-    ap.add_argument("after")
-    ap.add_argument("--columns", choices=("proposal", "all"), default="proposal")
+    ap = argparse.ArgumentParser(description="Compare two plant-audit results files column by column.")
+    ap.add_argument("before", type=Path)
+    ap.add_argument("after", type=Path)
     ap.add_argument("--rtol", type=float, default=1e-9)
-    a = ap.parse_args(argv)
-    before = pd.read_csv(a.before, dtype=str, keep_default_na=False, na_values=[""])
-    after = pd.read_csv(a.after, dtype=str, keep_default_na=False, na_values=[""])
-    if len(before) != len(after) or before["row"].tolist() != after["row"].tolist() \
-            or before["tag"].fillna("").tolist() != after["tag"].fillna("").tolist():
-        print(f"the files hold different rows ({len(before)} and {len(after)})")
+    ap.add_argument("--atol", type=float, default=0.0)
+    ap.add_argument("--columns", choices=("all", "proposal"), default="all")
+    args = ap.parse_args(argv)
+    diffs = compare(args.before, args.after, args.rtol, args.atol, args.columns)
+    for line in diffs:
+        print(line)
+    worst = largest_difference(args.before, args.after, args.atol)
+    n = len(_table(args.before)[0])
+    if diffs:
+        print(f"DIFFERENT: {len(diffs)} columns or entries differ beyond rtol {args.rtol:g}, atol {args.atol:g} "
+              f"({n} rows)")
         return 1
-    shared = [c for c in before.columns if c in after.columns]
-    cols = proposal_columns(shared) if a.columns == "proposal" else shared
-    missing = sorted(set(proposal_columns(before.columns)) ^ set(proposal_columns(after.columns)))
-    got = compare(before, after, cols, a.rtol)
-    print(f"{len(before)} rows, {len(cols)} columns compared (relative tolerance {a.rtol:g})")
-    print(f"{'column':28s} {'identical':>9s} {'close':>6s} {'max rel':>9s} {'differ':>6s}")
-    bad = 0
-    for c, r in got.items():
-        print(f"{c:28s} {r['same']:9d} {r['close']:6d} {r['max_rel']:9.2g} {len(r['differ']):6d}")
-        bad += len(r["differ"])
-        for row, x, y in r["differ"][:3]:
-            print(f"    row {row}: {x!r} -> {y!r}")
-    if missing:
-        print("columns in only one file:", ", ".join(missing))
-    print("AGREE" if not bad and not missing else f"DIFFER: {bad} values")
-    return 0 if not bad and not missing else 1
+    print(f"same: {n} rows, every column equal; largest relative difference of a number beyond atol {worst:.3g} "
+          f"(rtol {args.rtol:g}, atol {args.atol:g})")
+    return 0
 
 
 if __name__ == "__main__":
-    sys.exit(main())
+    raise SystemExit(main())

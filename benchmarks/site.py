@@ -126,7 +126,7 @@ def main(argv: list[str] | None = None) -> int:
         return 0
     from engine import machine
 
-    print(f"machine: {machine()}")
+    print(f"machine: {machine()}; load average before: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
     print(f"jobs {args.jobs}, pdf {not args.no_pdf}, seed {args.seed}")
     results = []
     with tempfile.TemporaryDirectory() as tmp:
@@ -134,7 +134,10 @@ def main(argv: list[str] | None = None) -> int:
             r = run_size(n, args.seed, args.jobs, not args.no_pdf, Path(tmp))
             results.append(r)
             st = ", ".join(f"{v} {k}" for k, v in sorted(r["status"].items()))
-            print(f"{n} loops: generated in {r['generate']:.1f} s; audited in {r['wall']:.1f} s; {st}", flush=True)
+            load = " ".join(f"{x:.2f}" for x in os.getloadavg())
+            print(f"{n} loops: generated in {r['generate']:.1f} s; audited in {r['wall']:.1f} s "
+                  f"(CPU {r['cpu']:.1f} s + workers {r['workers_cpu']:.1f} s; load average after: {load}); {st}",
+                  flush=True)
     print()
     print(table(results))
     return 0
