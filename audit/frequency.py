@@ -32,7 +32,7 @@ import numpy as np
 import pandas as pd
 
 from .loop import LoopModel, Rational
-from .timedomain import controller_poly
+from .stepsim import controller_poly
 
 #: |L| below which the tail of the frequency axis is not sampled densely. [-]
 TAIL_LEVEL = 1e-2

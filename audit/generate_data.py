@@ -343,7 +343,6 @@ class _Writer:
                 data[f"{tag}.mode"] = words[manual[i].astype(int)]
             df = pd.DataFrame(data)
         else:
-            T = len(times_us)
             parts = []
             for i, tag in enumerate(self.tags):
                 for name, v in (("sp", sp[i]), ("pv", pv[i]), ("op", op[i])):
@@ -352,7 +351,6 @@ class _Writer:
                 parts.append(pd.DataFrame({"tag": tag, "timestamp": stamps, "signal": "mode",
                                            "value": words[manual[i].astype(int)]}))
             df = pd.concat(parts, ignore_index=True)
-            del T
         df.to_csv(path, mode="w" if self.first else "a", header=self.first, index=False, float_format="%.6g")
         self.first = False
 

@@ -1066,8 +1066,6 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
 
     # ---- the controller
     settings = {"kc": kc, "ti": ti, "td": td, "kp": kp, "ki": ki, "kd": kd}
-    conv_of = {"kc": kc_conv, "ti": ti_conv, "td": conventions.get("td"), "kp": "kp" if kp is not None else None,
-               "ki": ki_conv, "kd": conventions.get("kd")}
     for q, used_by in (("kc", FORMS[:2]), ("ti", FORMS[:2]), ("td", FORMS[:2]), ("kp", ("parallel",)),
                        ("ki", ("parallel",)), ("kd", ("parallel",))):
         cols = [c for c in (alternatives(q) or [q]) if chk.present(c)]

@@ -19,9 +19,8 @@ tau_c has no natural floor; tau_c is then floored at :data:`TAU_C_FLOOR` times t
 time constant (an ipdt model without lag, dead time, sample period or filter gets no tight
 SIMC candidate: only the requirement sets its speed).
 
-The search and the choice used to live here; their names are still importable from this
-module (``from audit.tuning import propose_many`` works), but new code imports them from
-:mod:`audit.candidates` and :mod:`audit.proposals`.
+The search for candidates is in :mod:`audit.candidates`, the choice and the stage in
+:mod:`audit.proposals`.
 
 References
 ----------
@@ -688,26 +687,3 @@ def current_settings(row: LoopRow, model: LoopModel) -> Settings:
                         c.alpha)
     return Settings("current", c.form, c.kc, c.ti or None, c.td or 0.0, c.alpha)
 
-
-# ----------------------------------------------------------------------------------------------
-# names that moved to the search and choice modules, still importable from here
-
-_MOVED = {
-    "candidates": ("GRID_POINTS", "PID_TD_FACTORS", "PID_GAIN_MIN", "BEST_BAND_KI_MIN", "Screen", "Frontier",
-                   "characteristic_w", "max_ki", "candidate_settings", "candidate_settings_many"),
-    "proposals": ("MS_TOL", "GM_TOL_DB", "PM_TOL_DEG", "STAGE_FACTOR", "VERDICTS", "ActionCheck", "judge_candidate",
-                  "action_is_wrong", "decide_action", "check_actions", "limiting_factor", "limits_for",
-                  "requirement_for", "propose_many", "propose", "PROPOSAL_COLUMNS", "proposal_record",
-                  "add_proposals"),
-}
-
-
-def __getattr__(name: str):
-    """The search and choice names that moved to :mod:`audit.candidates` and :mod:`audit.proposals`."""
-    if name in _MOVED["candidates"]:
-        from . import candidates
-        return getattr(candidates, name)
-    if name in _MOVED["proposals"]:
-        from . import proposals
-        return getattr(proposals, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

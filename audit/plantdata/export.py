@@ -51,7 +51,6 @@ record).
 
 from __future__ import annotations
 
-import functools
 import os
 import re
 import stat
@@ -63,8 +62,8 @@ import numpy as np
 import pandas as pd
 
 from ..limits import MAX_EXPORT_FILES, MAX_RECORD_LINES
-from .records import (SIGNALS, TIME_COLUMNS, PathError, ReadPolicy, Record, _Chunk, _csv_chunks, _csv_header,
-                      _Notes, _parquet_chunks, _times, assemble_record, confine, read_record)
+from .records import (SIGNALS, TIME_COLUMNS, ReadPolicy, Record, _Chunk, _csv_chunks, _csv_header, _Notes,
+                      _parquet_chunks, _times, assemble_record)
 
 PARQUET_SUFFIXES = (".parquet", ".pq")
 CSV_SUFFIXES = (".csv",)
@@ -781,30 +780,7 @@ def _unstride(rec: Record, files: Sequence[ExportFile], tag: str) -> Record:
     return replace(rec, notes=tuple(notes), segments=segs)
 
 
-# --------------------------------------------------------------------------- a row's record
-
-def export_source(path: str, naming: ExportNaming) -> ExportSource:
-    """The export at ``path``, scanned once per process while it is unchanged (see :meth:`ExportSource.open`).
-
-    Parameters
-    ----------
-    path : str
-        File or folder.
-    naming : ExportNaming
-        How it names tags and signals.
-    """
-    try:
-        st = os.stat(path)
-        mark = (st.st_mtime_ns, st.st_size, st.st_ino)
-    except OSError:
-        mark = None
-    return _scanned(str(path), naming, mark)
-
-
-@functools.lru_cache(maxsize=4)
-def _scanned(path: str, naming: ExportNaming, mark) -> ExportSource:
-    return ExportSource.open(path, naming)
-
+# --------------------------------------------------------------------------- the export against the inventory
 
 @dataclass(frozen=True)
 class ExportSummary:
@@ -863,7 +839,7 @@ def open_for_audit(path: str, inventory) -> tuple[ExportSource, ExportSummary]:
     ExportError
         The export cannot be used (see :meth:`ExportSource.open`).
     """
-    src = export_source(str(path), ExportNaming.from_policy(inventory.policy))
+    src = ExportSource.open(str(path), ExportNaming.from_policy(inventory.policy))
     inv_tags = {tag_key(r.tag): r for r in inventory.rows if r.tag}
     have = src.tags
     matched = sum(1 for k in inv_tags if k in have)

@@ -39,14 +39,12 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, replace
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from .identify import Identification, IdentifyPolicy, _run, identify_record, nrmse_fit
-from .records import ReadPolicy
-from .sources import RowRecord, has_source, record_for_row
+from .sources import RowRecord, has_source
 
 MODELCHECK_COLUMNS = ("model_check", "model_fit_pct", "id_model", "id_gain", "id_gain_ci95", "id_tau1_s",
                       "id_tau1_ci95_s", "id_tau2_s", "id_lead_s", "id_dead_time_s", "id_dead_time_ci95_s",
@@ -239,32 +237,6 @@ def _fit_offsets(row, y: np.ndarray, s: np.ndarray, dt: float) -> np.ndarray:
     X = np.column_stack(cols)
     coef = np.linalg.lstsq(X, y - s, rcond=None)[0]
     return s + X @ coef
-
-
-def check_row(row, folder: Path, policy, id_policy: IdentifyPolicy = IdentifyPolicy(),
-              read_policy: ReadPolicy = ReadPolicy(), export=None) -> ModelCheck:
-    """Check one row's model against its record (read here; see :func:`check_record`).
-
-    Parameters
-    ----------
-    row : LoopRow
-        With ``data_file`` set (or a tag in ``export``).
-    folder : Path
-        The inventory's folder (the record must lie inside it).
-    policy : Policy
-        ``model_*`` thresholds.
-    id_policy : IdentifyPolicy
-        Identification settings.
-    read_policy : ReadPolicy
-        The reader's settings.
-    export : object or None
-        The site's export source (:mod:`audit.plantdata.sources`).
-
-    Returns
-    -------
-    ModelCheck
-    """
-    return check_record(row, record_for_row(row, folder, read_policy, export), policy, id_policy)
 
 
 def check_record(row, found: RowRecord, policy, id_policy: IdentifyPolicy = IdentifyPolicy()) -> ModelCheck:

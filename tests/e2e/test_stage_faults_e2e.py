@@ -141,7 +141,7 @@ def test_one_row_that_raises_in_each_row_wise_stage(baseline, tmp_path, monkeypa
     import audit.cascade as cascade
     import audit.disturbance as disturbance
     import audit.timedomain as timedomain
-    import audit.proposals as tuning
+    import audit.proposals as proposals
 
     rows = read_inventory(str(SAMPLE)).rows
     tags = [r["tag"] for r in baseline]
@@ -154,7 +154,7 @@ def test_one_row_that_raises_in_each_row_wise_stage(baseline, tmp_path, monkeypa
     record_file = rows[tags.index(rec_tag)].disturbance_file
 
     real_record, real_pair = disturbance.analyse_record, cascade.check_pair
-    real_steps, real_propose = timedomain.step_figures, tuning.propose_many
+    real_steps, real_propose = timedomain.step_figures, proposals.propose_many
 
     def record(rec, *a, **k):
         if Path(record_file).name in rec.name:
@@ -179,7 +179,7 @@ def test_one_row_that_raises_in_each_row_wise_stage(baseline, tmp_path, monkeypa
     monkeypatch.setattr(disturbance, "analyse_record", record)
     monkeypatch.setattr(cascade, "check_pair", pair)
     monkeypatch.setattr(timedomain, "step_figures", steps)
-    monkeypatch.setattr(tuning, "propose_many", propose)
+    monkeypatch.setattr(proposals, "propose_many", propose)
     out, hist = tmp_path / "out", tmp_path / "h.sqlite"
     capsys.readouterr()
     assert run(SAMPLE, out, hist) == 3

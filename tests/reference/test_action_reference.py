@@ -18,7 +18,7 @@ from audit.frequency import evaluate
 from audit.loop import model_from_row
 from audit.policy import Policy
 from audit.rows import LoopRow
-from audit.tuning import check_actions, decide_action, propose_many
+from audit.proposals import check_actions, decide_action, propose_many
 
 
 def _row(i, **kw) -> LoopRow:

@@ -12,7 +12,8 @@ import pytest
 
 from audit.frequency import evaluate
 from audit.loop import Controller, LoopModel, make_process
-from audit.tuning import Limits, amigo_pi, amigo_pid, max_ki, simc_pi, simc_pid_series
+from audit.candidates import max_ki
+from audit.tuning import Limits, amigo_pi, amigo_pid, simc_pi, simc_pid_series
 
 
 def _loop(process, settings=None, sign=1.0):

@@ -15,9 +15,8 @@ from audit.frequency import evaluate
 from audit.loop import model_from_row
 from audit.policy import Policy
 from audit.rows import LoopRow
-from audit.tuning import (
-    Settings, from_row_terms, propose, propose_many, round_sig, row_terms, rounded, simc_tau_c_min, to_form,
-)
+from audit.proposals import propose, propose_many
+from audit.tuning import Settings, from_row_terms, round_sig, row_terms, rounded, simc_tau_c_min, to_form
 from audit.loop import make_process
 
 POLICY = Policy()

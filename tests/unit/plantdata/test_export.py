@@ -238,6 +238,7 @@ def test_source_pickles_and_reads_alike(tmp_path):
     pq.write_table(pa.Table.from_pandas(_long(["A-1", "A-2"]), preserve_index=False), tmp_path / "e.parquet")
     src = ExportSource.open(tmp_path / "e.parquet")
     again = pickle.loads(pickle.dumps(src))
+    assert src.read("A-2").segments and src.read("A-2").segments[0].n == N   # a real record, not two empty ones
     _same_record(src.read("A-2"), again.read("A-2"))
     _same_record(src.read("A-2"), ExportSource(str(tmp_path / "e.parquet"), ExportNaming()).read("A-2"))
 
