@@ -52,6 +52,10 @@ LOCAL = "local"
 SCHEMES = ("tcp://", "tls://")
 
 
+#: Dask settings for the local cluster: its HTTP servers serve no pages. [-]
+NO_HTTP_ROUTES = {"distributed.scheduler.http.routes": [], "distributed.worker.http.routes": [],
+                  "distributed.nanny.http.routes": []}
+
 class SchedulerError(UserError):
     """``--scheduler`` cannot be used (Dask missing, a bad address, no answer). Exit code 2."""
 
@@ -269,9 +273,15 @@ class DaskExecutor:
             # afresh, which doubled the CPU time of the loop-health analysis (benchmarks/README.md)
             environ = {k: v for k, v in dict(dask.config.get("distributed.nanny.pre-spawn-environ", {})).items()
                        if k != "MALLOC_TRIM_THRESHOLD_"}
-            with dask.config.set({"distributed.nanny.pre-spawn-environ": environ}):
+            # Dask's scheduler and workers always start an HTTP server (the dashboard, health and
+            # metrics pages; without an address, the scheduler's takes port 8787). Here they listen
+            # on the loopback at a free port and serve no pages (no routes): nothing about the run
+            # can be read from them
+            with dask.config.set({"distributed.nanny.pre-spawn-environ": environ, **NO_HTTP_ROUTES}):
                 self._cluster = LocalCluster(n_workers=self.workers, threads_per_worker=1, processes=True,
-                                             host="127.0.0.1", dashboard_address=None, silence_logs=logging.ERROR)
+                                             host="127.0.0.1", dashboard_address="127.0.0.1:0",
+                                             worker_dashboard_address="127.0.0.1:0", scheduler_kwargs={"dashboard": False},
+                                             silence_logs=logging.ERROR)
             self._client = Client(self._cluster, set_as_default=False)
         else:
             try:

@@ -21,8 +21,10 @@ import datetime as _dt
 import hashlib
 import json
 import os
+import re
 import secrets
 import shutil
+import socket
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -141,12 +143,52 @@ def plan_output(out_dir: str | Path, inventory_path: str | Path, force: bool = F
             previous = tuple(e for e in entries if e in ours)
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
-        stage = out.parent / f".{out.name}.partial-{os.getpid()}-{secrets.token_hex(3)}"
+        _sweep_stale_stages(out)
+        stage = out.parent / f".{out.name}.partial-{_HOST}-{os.getpid()}-{secrets.token_hex(3)}"
         stage.mkdir()
     except OSError as exc:
         raise OutputError(f"--out {out_dir}: cannot write in {out.parent} ({_os_message(exc)}); "
                           "nothing was changed") from None
     return OutputPlan(out, mode, stage, previous)
+
+
+#: This machine's name as it appears in a staging folder's name (letters, digits and dots only).
+_HOST = re.sub(r"[^A-Za-z0-9.]", "", socket.gethostname())[:40] or "host"
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # another user's process: alive
+        return True
+    return True
+
+
+def _sweep_stale_stages(out: Path) -> list[Path]:
+    """Remove staging folders of ``out`` left by runs on this machine that were killed (SIGKILL, power loss).
+
+    A staging folder is named ``.<out>.partial-<host>-<pid>-<6 hex>``; it is stale when it was
+    made on this machine (same host name) by a process that no longer runs. Folders of runs
+    on other machines sharing the folder, of a live process, or of any other name are left
+    alone, as are the previous outputs a run keeps aside (``.<out>.previous-...``), which may
+    be the user's only copy after a kill in the middle of installing. Returns what was removed.
+    """
+    pattern = re.compile(r"\." + re.escape(out.name) + r"\.partial-(.+)-(\d+)-[0-9a-f]{6}")
+    removed = []
+    try:
+        entries = list(out.parent.iterdir())
+    except OSError:
+        return removed
+    for entry in entries:
+        m = pattern.fullmatch(entry.name)
+        if m is None or m.group(1) != _HOST or int(m.group(2)) == os.getpid() or _pid_alive(int(m.group(2))):
+            continue
+        if entry.is_dir() and not entry.is_symlink():
+            shutil.rmtree(entry, ignore_errors=True)
+            removed.append(entry)
+    return removed
 
 
 def _sha256(path: Path) -> str:

@@ -217,7 +217,12 @@ def test_killed_while_writing(site):
     assert folder_state(out) == before
     assert history_state(hist) == hist_before
     # the staging folder of the killed run is left beside, marked as partial; the folder itself is whole
-    assert all(".partial-" in n for n in leftovers(out.parent))
+    stale = leftovers(out.parent)
+    assert stale and all(".partial-" in n for n in stale)
+    # the next run on this machine removes it (its process is gone), and leaves nothing of its own
+    (out.parent / f".{out.name}.partial-otherhost-{proc.pid}-abcdef").mkdir()  # another machine's: kept
+    assert subprocess.run([sys.executable, "-m", "audit.cli", *args], cwd=ROOT, capture_output=True).returncode in (0, 1)
+    assert leftovers(out.parent) == [f".{out.name}.partial-otherhost-{proc.pid}-abcdef"]
 
 
 def test_out_holding_the_inventory_needs_force(tmp_path, capsys):

@@ -10,7 +10,7 @@ import time
 import pytest
 
 from audit.cli import main
-from audit.executors import (DaskExecutor, ProcessExecutor, SchedulerError, SerialExecutor, check_scheduler,
+from audit.executors import (LOCAL, DaskExecutor, ProcessExecutor, SchedulerError, SerialExecutor, check_scheduler,
                              chunk_bounds, open_executor)
 
 
@@ -101,5 +101,32 @@ def test_dask_gives_the_serial_result_in_item_order(cluster):
         assert d.workers == 2          # the cluster's own count, not --jobs
         assert got == SerialExecutor().map_chunks(slow_first, items, shared)
         assert d.map_chunks(slow_first, [], shared) == []
+    finally:
+        d.close()
+
+
+def test_local_cluster_serves_no_pages():
+    """`--scheduler local`: Dask's HTTP servers listen on the loopback at a free port and serve no page
+    (dashboard, health, metrics and identity pages all answer 404). Common practice: an audit run opens
+    no service that shows its data."""
+    pytest.importorskip("distributed")
+    import urllib.error
+    import urllib.request
+
+    d = DaskExecutor(LOCAL, 2)
+    try:
+        assert d.map_chunks(slow_first, [1, 2], {"pause_s": 0.0, "add": 1}) == \
+            SerialExecutor().map_chunks(slow_first, [1, 2], {"pause_s": 0.0, "add": 1})
+        # the scheduler's server (in this process) and each worker's (in its own process, by address)
+        addresses = [s.getsockname()[:2] for s in d._cluster.scheduler.http_server._sockets.values()]
+        info = d._client.scheduler_info()["workers"]
+        addresses += [(v["host"], v["services"]["dashboard"]) for v in info.values() if "dashboard" in v.get("services", {})]
+        assert addresses
+        for host, port in addresses:
+            assert host == "127.0.0.1"
+            for page in ("/", "/status", "/health", "/metrics", "/json/identity.json", "/info/main/workers.html"):
+                with pytest.raises(urllib.error.HTTPError) as err:
+                    urllib.request.urlopen(f"http://{host}:{port}{page}", timeout=5)
+                assert err.value.code == 404
     finally:
         d.close()
