@@ -53,6 +53,7 @@ sys.path.insert(0, str(ROOT))
 import control  # noqa: E402
 from scipy.optimize import minimize_scalar  # noqa: E402
 
+import baseline  # noqa: E402  (benchmarks/baseline.py, beside this script)
 from audit.frequency import evaluate  # noqa: E402
 from audit.generate import synthetic_rows, GENERATED_COLUMNS  # noqa: E402
 from audit.loop import LoopModel  # noqa: E402
@@ -200,6 +201,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--jobs", type=int, default=2, help="processes for the parallel engine figure")
     ap.add_argument("--no-reference", action="store_true", help="time the engine only (large --loops)")
+    baseline.add_arguments(ap)
     args = ap.parse_args(argv)
     warnings.simplefilter("ignore", RuntimeWarning)
     print(f"machine: {machine()}")
@@ -230,9 +232,12 @@ def main(argv: list[str] | None = None) -> int:
         same_par += (f"; fewer than {2 * parallel.MIN_LOOPS_PER_EVALUATE_JOB} loops: no worker was started, "
                      "this is a second call in this process")
 
+    case = f"loops={n} seed={args.seed} jobs={args.jobs}"
+    saved = {"engine 1 process s": t_eng, "engine 1 process CPU s": c_eng, f"engine {args.jobs} processes s": t_par}
     if args.no_reference:
         print(f"(a) engine, 1 process : {n / t_eng:9.0f} loops/s  ({t_eng:.3f} s wall, {c_eng:.3f} s CPU)")
         print(f"    engine, {args.jobs} processes: {n / t_par:9.0f} loops/s  ({t_par:.3f} s wall; against 1 process: {same_par})")
+        baseline.report("engine", {case: saved}, args)
         return 0
     refs = []
     t0, c0 = time.perf_counter(), time.process_time()
@@ -284,6 +289,9 @@ def main(argv: list[str] | None = None) -> int:
                   f"99th percentile {np.percentile(rel, 99):.2e}, median {np.median(rel):.2e}")
         else:
             print(f"  {name:<22} no loop met the criterion")
+    saved.update({"reference CPU s": c_ref, "reference CPU / engine CPU": c_ref / c_eng,
+                  "stability disagreements": int((eng_stable != ref_stable).sum())})
+    baseline.report("engine", {case: saved}, args, higher=("reference CPU / engine CPU",))
     return 0
 
 

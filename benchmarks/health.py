@@ -30,6 +30,7 @@ from scipy.signal import lfilter
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
+import baseline  # noqa: E402  (benchmarks/baseline.py, beside this script)
 from audit.plantdata.health import HealthSettings, loop_health  # noqa: E402
 from audit.plantdata.oscillation import detect_oscillation  # noqa: E402
 from audit.plantdata.use import loop_use  # noqa: E402
@@ -89,6 +90,7 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--days", type=float, default=7.0)
     ap.add_argument("--ts", type=float, default=1.0, help="sample interval [s]")
     ap.add_argument("--seed", type=int, default=1)
+    baseline.add_arguments(ap)
     a = ap.parse_args(argv)
     n = int(round(a.days * 86400 / a.ts))
     rng = np.random.default_rng(a.seed)
@@ -119,6 +121,9 @@ def main(argv: list[str] | None = None) -> None:
           f"(by construction {sum(1 for i in range(a.loops) if KINDS[i % 4] in ('external', 'triangle'))} "
           f"oscillate, {sum(1 for i in range(a.loops) if KINDS[i % 4] == 'triangle')} have a triangular op)")
     print(f"peak resident memory {peak:.0f} MiB (one record at a time)")
+    baseline.report("health", {f"loops={a.loops} days={a.days:g} ts={a.ts:g} seed={a.seed}":
+                               {"analysis s per loop": total / a.loops, "M samples/s": a.loops * n / total / 1e6,
+                                "peak MiB": peak}}, a, higher=("M samples/s",))
 
 
 if __name__ == "__main__":

@@ -34,6 +34,8 @@ from pathlib import Path
 
 import numpy as np
 
+import baseline  # benchmarks/baseline.py, beside this script
+
 HERE = Path(__file__).resolve().parents[1]
 
 
@@ -135,6 +137,7 @@ def main() -> None:
     ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--stages", type=int, default=100, help="records for the stage split (0: none)")
     ap.add_argument("--tree", default=str(HERE), help="checkout whose audit package is measured")
+    baseline.add_arguments(ap)
     a = ap.parse_args()
     sys.path.insert(0, str(HERE))
     sys.path.insert(0, str(Path(a.tree).resolve()))
@@ -175,6 +178,12 @@ def main() -> None:
             print(f"stage split, one process, first {min(a.stages, a.records)} records: {1e3 * tot / min(a.stages, a.records):.1f} ms CPU per record")
             for k, v in sorted(split.items(), key=lambda kv: -kv[1]):
                 print(f"  {k:<58} {1e3 * v / min(a.stages, a.records):6.1f} ms  ({100 * v / tot:4.1f} %)")
+    figures = {"wall s": wall, "CPU s": cpu, "ms CPU per record": 1e3 * cpu / a.records,
+               "true structure %": 100 * same, "identified": len(ident)}
+    if ident:
+        figures.update({"median gain error %": 100 * np.median(ge), "median dead-time error %": 100 * np.median(te)})
+    baseline.report("identify", {f"records={a.records} samples={a.samples} jobs={a.jobs}": figures}, a,
+                    higher=("true structure %", "identified"))
 
 
 if __name__ == "__main__":

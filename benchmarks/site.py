@@ -13,7 +13,8 @@ apart. Printed: one table row per size with the time of each stage, the total, t
 per loop (constant when cost grows linearly with loops), proposals per failing loop and
 peak memory, the CPU time (user + sys) of the audit process and of its worker processes, and the
 1-minute load average at the end of the run (the machine is shared: wall times are only as good as
-the load beside them). A benchmark that prints figures, not a timed test.
+the load beside them), then the figures saved by an earlier run beside these (``--save`` stores
+these: benchmarks/baseline.py). A benchmark that prints figures, not a timed test.
 """
 
 from __future__ import annotations
@@ -30,6 +31,8 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+
+import baseline  # noqa: E402  (benchmarks/baseline.py, beside this script)
 
 #: Stage columns of the table: (heading, keys of Audit.timings added together).
 COLUMNS = (
@@ -120,6 +123,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--no-pdf", action="store_true")
     ap.add_argument("--child", nargs=2, metavar=("INVENTORY", "OUT"), help=argparse.SUPPRESS)
+    baseline.add_arguments(ap)
     args = ap.parse_args(argv)
     if args.child:
         print(json.dumps(child(args.child[0], args.child[1], args.jobs, not args.no_pdf)))
@@ -140,7 +144,27 @@ def main(argv: list[str] | None = None) -> int:
                   flush=True)
     print()
     print(table(results))
+    baseline.report("site", {case_name(r["loops"], args): figures(r) for r in results}, args)
     return 0
+
+
+def case_name(loops: int, args) -> str:
+    """The saved-figures key of one size: what makes two runs comparable."""
+    return f"loops={loops} jobs={args.jobs} pdf={'no' if args.no_pdf else 'yes'} seed={args.seed}"
+
+
+def figures(r: dict) -> dict[str, float]:
+    """Figures of one size to compare with a saved run: stage times [s], total, CPU [s], peak [MiB]."""
+    out = {}
+    for name, keys in COLUMNS:
+        got = [r["timings"][k] for k in keys if k in r["timings"]]
+        if got:
+            out[f"{name} s"] = sum(got)
+    out["total s"] = r["wall"]
+    out["CPU s"] = r["cpu"]
+    out["workers CPU s"] = r["workers_cpu"]
+    out["peak MiB"] = r["peak_mib"]
+    return out
 
 
 if __name__ == "__main__":
