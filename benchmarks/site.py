@@ -3,11 +3,14 @@
 Usage::
 
     python benchmarks/site.py [--sizes 100 1000 10000] [--jobs 1] [--no-pdf] [--seed 1]
+    python benchmarks/site.py --inventory INV.xlsx --data EXPORT [--jobs 2] [--scheduler local] [--no-pdf]
 
 For each size a seeded inventory is generated (audit.generate, .xlsx) and audited by
 :func:`audit.runner.run_audit` in a fresh process (so each peak memory is its own), with
 every output written (results.csv/json, report.html, report.pdf unless --no-pdf,
-results.xlsx) and no history. Stage times come from ``Audit.timings``; peak memory is the
+results.xlsx) and no history. With ``--inventory`` and ``--data`` one given inventory is audited
+with its historian export (``run --data``; e.g. from ``plant-audit generate --data``): the
+"plant data" column is loop health and the model check of every loop with data. Stage times come from ``Audit.timings``; peak memory is the
 process's maximum resident set size (``resource.getrusage``), worker processes listed
 apart. Printed: one table row per size with the time of each stage, the total, the time
 per loop (constant when cost grows linearly with loops), proposals per failing loop and
@@ -42,6 +45,7 @@ COLUMNS = (
     ("steps", ("steps",)),
     ("proposals", ("proposals",)),
     ("priority", ("residuals", "priority")),
+    ("plant data", ("health", "modelcheck")),
     ("csv+json", ("csv+json",)),
     ("HTML", ("report.html",)),
     ("PDF", ("report.pdf",)),
@@ -49,7 +53,8 @@ COLUMNS = (
 )
 
 
-def child(inventory: str, out_dir: str, jobs: int, pdf: bool) -> dict:
+def child(inventory: str, out_dir: str, jobs: int, pdf: bool, data: str | None = None,
+          scheduler: str | None = None) -> dict:
     """Audit one inventory in this process; stage times [s], peak memory [MiB] and counts."""
     import warnings
 
@@ -58,7 +63,7 @@ def child(inventory: str, out_dir: str, jobs: int, pdf: bool) -> dict:
 
     warnings.simplefilter("ignore", RuntimeWarning)
     opts = AuditOptions(out_dir=out_dir, date="2026-01-05", site="Benchmark plant", pdf=pdf, jobs=jobs,
-                        quiet=True, record_history=False)
+                        quiet=True, record_history=False, data=data, scheduler=scheduler)
     t0 = time.perf_counter()
     audit, _ = run_audit(inventory, opts)
     wall = time.perf_counter() - t0
@@ -66,6 +71,12 @@ def child(inventory: str, out_dir: str, jobs: int, pdf: bool) -> dict:
     render = sum(tm.get(k, 0.0) for k in ("report.html", "report.pdf", "results.xlsx"))
     tm["csv+json"] = max(tm.get("write", 0.0) - render, 0.0)
     status = audit.results["status"].value_counts().to_dict()
+    # --jobs workers are children of multiprocessing's fork server, not of this process: their CPU time
+    # reaches RUSAGE_CHILDREN only once the fork server has exited and been waited for (a private
+    # call of the standard library; a benchmark may use it)
+    from multiprocessing import forkserver
+    if getattr(forkserver._forkserver, "_forkserver_pid", None):
+        forkserver._forkserver._stop()
     own, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
     return {
         "loops": len(audit.results), "wall": wall, "timings": tm, "status": status,
@@ -76,17 +87,23 @@ def child(inventory: str, out_dir: str, jobs: int, pdf: bool) -> dict:
     }
 
 
-def run_size(n: int, seed: int, jobs: int, pdf: bool, tmp: Path) -> dict:
-    """Generate an inventory of ``n`` loops and audit it in a fresh process."""
+def run_size(n: int, seed: int, jobs: int, pdf: bool, tmp: Path, inventory: str | None = None,
+             data: str | None = None, scheduler: str | None = None) -> dict:
+    """Generate an inventory of ``n`` loops (or take ``inventory``) and audit it in a fresh process."""
     from audit.generate import write_synthetic_inventory
 
-    inv = tmp / f"site_{n}.xlsx"
+    inv = Path(inventory) if inventory else tmp / f"site_{n}.xlsx"
     t0 = time.perf_counter()
-    write_synthetic_inventory(inv, n, seed)
+    if not inventory:
+        write_synthetic_inventory(inv, n, seed)
     gen = time.perf_counter() - t0
     cmd = [sys.executable, __file__, "--child", str(inv), str(tmp / f"out_{n}"), "--jobs", str(jobs)]
     if not pdf:
         cmd.append("--no-pdf")
+    if data:
+        cmd += ["--data", data]
+    if scheduler:
+        cmd += ["--scheduler", scheduler]
     proc = subprocess.run(cmd, capture_output=True, text=True, check=False)
     if proc.returncode != 0:
         raise SystemExit(f"audit of {n} loops failed:\n{proc.stderr[-3000:]}")
@@ -122,24 +139,29 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--jobs", type=int, default=1)
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--no-pdf", action="store_true")
+    ap.add_argument("--inventory", default=None, help="audit this inventory (once) instead of generated ones")
+    ap.add_argument("--data", default=None, help="with --inventory: the site's historian export (run --data)")
+    ap.add_argument("--scheduler", default=None, help="run --scheduler (local or tcp://HOST:PORT)")
     ap.add_argument("--child", nargs=2, metavar=("INVENTORY", "OUT"), help=argparse.SUPPRESS)
     baseline.add_arguments(ap)
     args = ap.parse_args(argv)
     if args.child:
-        print(json.dumps(child(args.child[0], args.child[1], args.jobs, not args.no_pdf)))
+        print(json.dumps(child(args.child[0], args.child[1], args.jobs, not args.no_pdf, args.data, args.scheduler)))
         return 0
+    if args.data and not args.inventory:
+        ap.error("--data needs --inventory (the export's own inventory)")
     from engine import machine
 
     print(f"machine: {machine()}; load average before: {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
     print(f"jobs {args.jobs}, pdf {not args.no_pdf}, seed {args.seed}")
     results = []
     with tempfile.TemporaryDirectory() as tmp:
-        for n in args.sizes:
-            r = run_size(n, args.seed, args.jobs, not args.no_pdf, Path(tmp))
+        for n in ([0] if args.inventory else args.sizes):
+            r = run_size(n, args.seed, args.jobs, not args.no_pdf, Path(tmp), args.inventory, args.data, args.scheduler)
             results.append(r)
             st = ", ".join(f"{v} {k}" for k, v in sorted(r["status"].items()))
             load = " ".join(f"{x:.2f}" for x in os.getloadavg())
-            print(f"{n} loops: generated in {r['generate']:.1f} s; audited in {r['wall']:.1f} s "
+            print(f"{r['loops']} loops: generated in {r['generate']:.1f} s; audited in {r['wall']:.1f} s "
                   f"(CPU {r['cpu']:.1f} s + workers {r['workers_cpu']:.1f} s; load average after: {load}); {st}",
                   flush=True)
     print()
@@ -150,7 +172,11 @@ def main(argv: list[str] | None = None) -> int:
 
 def case_name(loops: int, args) -> str:
     """The saved-figures key of one size: what makes two runs comparable."""
-    return f"loops={loops} jobs={args.jobs} pdf={'no' if args.no_pdf else 'yes'} seed={args.seed}"
+    where = f" scheduler={args.scheduler}" if args.scheduler else ""
+    if args.inventory:
+        return (f"inventory={Path(args.inventory).name} data={Path(args.data).name if args.data else '-'} "
+                f"jobs={args.jobs}{where} pdf={'no' if args.no_pdf else 'yes'}")
+    return f"loops={loops} jobs={args.jobs}{where} pdf={'no' if args.no_pdf else 'yes'} seed={args.seed}"
 
 
 def figures(r: dict) -> dict[str, float]:
@@ -164,6 +190,7 @@ def figures(r: dict) -> dict[str, float]:
     out["CPU s"] = r["cpu"]
     out["workers CPU s"] = r["workers_cpu"]
     out["peak MiB"] = r["peak_mib"]
+    out["workers peak MiB"] = r["workers_peak_mib"]
     return out
 
 
