@@ -222,8 +222,10 @@ def identify(record, pv_lo, pv_hi, timezone, as_json, write_to, jobs):
 @click.option("--layout", type=click.Choice(["long", "wide"]), default="long", show_default=True)
 @click.option("--format", "fmt", type=click.Choice(["parquet", "csv"]), default="parquet", show_default=True,
               help="File format of a folder export (a file's ending decides for a file).")
+@click.option("--jobs", type=click.IntRange(1, 64), default=1, show_default=True,
+              help="Processes that simulate --data (a folder export; the same export whatever N).")
 @click.argument("path", type=click.Path(dir_okay=False))
-def generate(loops, seed, force, data, days, ts, layout, fmt, path):
+def generate(loops, seed, force, data, days, ts, layout, fmt, jobs, path):
     """Write a seeded synthetic inventory of --loops loops to PATH (.xlsx or .csv),
     and with --data a synthetic historian export of their operation."""
     from .generate import write_synthetic_inventory
@@ -240,7 +242,8 @@ def generate(loops, seed, force, data, days, ts, layout, fmt, path):
         from .generate_data import write_synthetic_export
 
         t0 = time.perf_counter()
-        w = write_synthetic_export(path, data, days=days, ts=ts, seed=seed, layout=layout, fmt=fmt, force=force)
+        w = write_synthetic_export(path, data, days=days, ts=ts, seed=seed, layout=layout, fmt=fmt, force=force,
+                                   jobs=jobs)
         counts = {k: list(w.planted.values()).count(k) for k in ("normal", "manual", "pinned", "sticking", "cycling",
                                                                   "stale")}
         click.echo(f"export written: {w.path} ({w.loops} loops x {w.samples:,} samples in "

@@ -22,11 +22,22 @@ entry mistake has no data in the export, which ``run`` reports). Planted faults 
 that are stable with Ms <= 2 as tuned and fast against the record; the outer loop of a cascade
 is simulated on its own process (its inner loop taken as perfect) and never given a fault.
 
-Memory is bounded whatever the size: loops are simulated in batches of at most
-:data:`BATCH_LOOPS`, time in chunks of at most :data:`CHUNK_VALUES` values per batch, each chunk
-written at once (one Parquet row group per tag and chunk in the long layout, one per chunk in
-the wide layout). A folder export holds :data:`FILE_LOOPS` loops per file. The same seed gives
-the same export.
+Speed and memory: the loops are ordered by the simulator's steps per sample
+(:mod:`audit.plantdata.plantsim`) and filed :data:`FILE_LOOPS` to a file; all the loops of a job
+(every loop with ``jobs=1``; with ``--jobs N`` the files are shared out among N processes, runs of
+files of about equal cost) are simulated in one lockstep batch, so the fixed Python cost of a
+step is paid once for all of them. Time is simulated in chunks of at most :data:`CHUNK_VALUES`
+loop-samples of inputs and written in blocks of :data:`BLOCK_VALUES` loop-samples (at least
+:data:`MIN_BLOCK` samples): one Parquet row group per tag and block in the long layout, one per
+block in the wide layout. Memory is so bounded whatever the size (blocks about 0.4 GB and chunks
+of inputs some 50 MB in all; 635 MiB peak in the larger process at 2,000 loops with two jobs). Values are written as 32-bit floats (a historian's usual resolution, about 7
+significant digits; byte-split and zstd-compressed in Parquet).
+
+The same seed gives the same export, whatever the number of jobs: each file group of loops draws
+its inputs from its own generator (seeded by the seed and the file's number), and a loop's
+simulation does not depend on which other loops share its batch. (Exports written before this
+scheme, with one generator per batch of 500 loops, float64 values and every loop of a batch at the
+batch's fastest rate, differ from today's for the same seed.)
 """
 
 from __future__ import annotations
@@ -43,12 +54,14 @@ import numpy as np
 
 from .output import FileRefused
 
-#: Most loops simulated together (vectorised across loops). [-]
-BATCH_LOOPS = 500
 #: Loops per file of a folder export. [-]
 FILE_LOOPS = 100
-#: Most values (loops x samples) held per chunk of a batch. [-]
-CHUNK_VALUES = 4_000_000
+#: Most values (loops x samples) of the simulator's inputs per chunk. [-]
+CHUNK_VALUES = 500_000
+#: Loop-samples held before they are written (13 bytes each: sp, pv, op as float32, mode). [-]
+BLOCK_VALUES = 32_000_000
+#: Fewest samples a loop of a block (one Parquet row group per tag and block in the long layout). [-]
+MIN_BLOCK = 1024
 #: When the generated record starts (UTC).
 START = "2026-11-02T00:00:00+00:00"
 #: Share of the simulated loops given each planted fault (at least one each where a loop qualifies). [-]
@@ -138,7 +151,8 @@ def plan_loops(rows, duration_s: float, ts: float, seed: int) -> tuple[list[Loop
     inners = {r.inner_loop for r in rows if r.inner_loop}
     sim = [r for r in rows if r.valid and r.model in SIMULATED and r.gain is not None and r.tag
            and (r.kc or r.kp)]
-    skipped = [r.tag or f"row {r.excel_row}" for r in rows if r not in sim]
+    kept = {id(r) for r in sim}
+    skipped = [r.tag or f"row {r.excel_row}" for r in rows if id(r) not in kept]
     if not sim:
         return [], skipped
     as_run = [replace(r, pv_filter=None, inner_loop=None) for r in sim]
@@ -202,75 +216,111 @@ def plan_loops(rows, duration_s: float, ts: float, seed: int) -> tuple[list[Loop
 # --------------------------------------------------------------------------- inputs of a chunk
 
 class _Inputs:
-    """Seeded inputs of one batch, chunk after chunk (state carried between chunks)."""
+    """Seeded inputs of the loops of one job, chunk after chunk (state carried between chunks).
 
-    def __init__(self, plans: list[LoopPlan], n_total: int, ts: float, seed: int, batch: int):
+    Arrays are samples x loops (time first). Each file group of loops draws from its own
+    generator (seeded by the seed and the group's number), so the export is the same whatever the
+    number of jobs.
+    """
+
+    def __init__(self, plans: list[LoopPlan], groups: list[tuple[int, int, int]], n_total: int, ts: float,
+                 seed: int):
         self.p, self.ts, self.n_total = plans, ts, n_total
-        self.rng = np.random.default_rng([seed, 11, batch])
+        self.groups = [(a, b, np.random.default_rng([seed, 11, g])) for a, b, g in groups]
         n = len(plans)
         f = lambda name: np.array([getattr(q, name) for q in plans], dtype=float)  # noqa: E731
         self.op0, self.sp0, self.noise = f("op0"), f("sp0"), f("noise_sd")
         self.load_sd, self.load_tau, self.bias = f("load_sd"), f("load_tau"), f("load_bias")
         self.step, self.every = f("sp_step"), f("sp_every")
         self.amp, self.period = f("sin_amp"), f("sin_period")
-        self.phase = self.rng.uniform(0, 2 * np.pi, n)
+        self.phase = np.zeros(n)
+        for a, b, rng in self.groups:
+            self.phase[a:b] = rng.uniform(0, 2 * np.pi, b - a)
         self.al = np.exp(-ts / self.load_tau)
+        self.w_sd = self.load_sd * np.sqrt(1 - self.al ** 2)
+        self.p_sp = ts / self.every
         self.load = np.zeros(n)
         self.parity = np.zeros(n)
-        self.hand = self.op0.copy()
-        self.is_manual = np.array([q.scenario == "manual" for q in plans])
-        self.bump = np.array([q.bump for q in plans])
+        self.is_manual = np.array([q.scenario == "manual" for q in plans], dtype=bool)
+        self.man = np.flatnonzero(self.is_manual)
+        self.hand = self.op0[self.man].copy()
+        self.cyc = np.flatnonzero(np.isfinite(self.period))
         settle = np.array([_settle(q.row) for q in plans])
         self.nb = np.minimum(0.1 * n_total, np.maximum(600.0, 12 * settle) / ts).astype(np.int64)
-        self.nb = np.where(self.bump, self.nb, 0)
+        self.nb = np.where(np.array([q.bump for q in plans], dtype=bool), self.nb, 0)
         self.k0 = 0
 
     def chunk(self, T: int) -> dict[str, np.ndarray]:
-        n = len(self.p)
-        rng, ts = self.rng, self.ts
+        n, ts = len(self.p), self.ts
         k = self.k0 + np.arange(T)
+        ev, w, noise = np.empty((T, n)), np.empty((T, n)), np.empty((T, n))
+        moves = np.zeros((T, len(self.man)))
+        for a, b, rng in self.groups:
+            ev[:, a:b] = rng.random((T, b - a))
+            w[:, a:b] = rng.standard_normal((T, b - a))
+            noise[:, a:b] = rng.standard_normal((T, b - a))
+            ma, mb = np.searchsorted(self.man, [a, b])
+            if mb > ma:
+                x = rng.random((T, mb - ma))
+                pm = ts / 900.0
+                moves[:, ma:mb] = np.where(x < pm, np.where(x < pm / 2, -2.0, 2.0), 0.0)
         # set point: toggles between sp0 and sp0 + step at random times
-        ev = rng.random((n, T)) < (ts / self.every)[:, None]
-        par = (self.parity[:, None] + np.cumsum(ev, axis=1)) % 2
-        self.parity = par[:, -1].copy()
-        sp = self.sp0[:, None] + self.step[:, None] * par
-        # load: first-order filtered noise, plus the constant load
-        w = rng.standard_normal((n, T)) * (self.load_sd * np.sqrt(1 - self.al ** 2))[:, None]
-        from scipy.signal import lfilter
-        load = np.empty((n, T))
-        for i in range(n):                       # one filter per loop (its own time constant)
-            load[i], zf = lfilter([1.0], [1.0, -self.al[i]], w[i], zi=[self.al[i] * self.load[i]])
-        self.load = load[:, -1].copy()
-        load += self.bias[:, None]
-        # measurement: noise and the outside sinusoid
-        t = k * ts
-        with np.errstate(invalid="ignore"):
-            sinus = np.where(np.isfinite(self.period)[:, None],
-                             self.amp[:, None] * np.sin(2 * np.pi * t[None, :] / np.where(
-                                 np.isfinite(self.period), self.period, 1.0)[:, None] + self.phase[:, None]), 0.0)
-        noise = rng.standard_normal((n, T)) * self.noise[:, None] + sinus
+        ev = ev < self.p_sp
+        par = (self.parity + np.cumsum(ev, axis=0)) % 2
+        self.parity = par[-1].copy()
+        sp = self.sp0 + self.step * par
+        # load: first-order filtered noise (each loop its own time constant), plus the constant load
+        w *= self.w_sd
+        load = w
+        prev, tmp = self.load, np.empty(n)
+        for t in range(T):
+            np.multiply(self.al, prev, out=tmp)
+            prev = load[t]
+            prev += tmp
+        self.load = load[-1].copy()
+        lj = load + (self.bias - self.op0)
+        # measurement: operating point, noise and the outside sinusoid (cycling loops only)
+        noise *= self.noise
+        base = noise + self.sp0
+        if len(self.cyc):
+            c = self.cyc
+            base[:, c] += self.amp[c] * np.sin(2 * np.pi * (k * ts)[:, None] / self.period[c] + self.phase[c])
         # manual: bump tests at the start; manual loops for 85 % of the record, the operator moving by hand
-        bump_pos = k[None, :] - 0 * self.nb[:, None]
-        nb = np.maximum(self.nb, 1)[:, None]
-        frac = bump_pos / nb
-        bump_op = self.op0[:, None] + np.where((frac >= 0.2) & (frac < 0.45), 4.0,
-                                               np.where((frac >= 0.45) & (frac < 0.7), -4.0, 0.0))
-        in_bump = k[None, :] < self.nb[:, None]
-        moves = (rng.random((n, T)) < ts / 900.0) * rng.choice([-2.0, 2.0], (n, T))
-        hand = np.clip(self.hand[:, None] + np.cumsum(moves, axis=1), 5.0, 95.0)
-        self.hand = hand[:, -1].copy()
-        man_loop = self.is_manual[:, None] & (k[None, :] < int(0.85 * self.n_total))
-        manual = in_bump | man_loop
-        op_hand = np.where(in_bump, bump_op, hand)
-        sp = np.where(in_bump | ~np.isfinite(self.every)[:, None], np.where(in_bump, self.sp0[:, None], sp), sp)
+        manual = np.zeros((T, n), dtype=bool)
+        op_hand = np.broadcast_to(self.op0, (T, n)).copy()
+        if len(self.man):
+            hand = np.clip(self.hand + np.cumsum(moves, axis=0), 5.0, 95.0)
+            self.hand = hand[-1].copy()
+            op_hand[:, self.man] = hand
+            manual[:, self.man] = (k < int(0.85 * self.n_total))[:, None]
+        if k[0] < self.nb.max(initial=0):
+            nb = np.maximum(self.nb, 1)
+            frac = k[:, None] / nb
+            bump_op = self.op0 + np.where((frac >= 0.2) & (frac < 0.45), 4.0,
+                                          np.where((frac >= 0.45) & (frac < 0.7), -4.0, 0.0))
+            in_bump = k[:, None] < self.nb
+            manual |= in_bump
+            op_hand = np.where(in_bump, bump_op, op_hand)
+            sp = np.where(in_bump, self.sp0, sp)
         self.k0 += T
-        return dict(sp=sp, noise=noise, load=load, manual=manual, op_hand=op_hand)
+        return dict(sp=sp, base=base, lj=lj, manual=manual, op_hand=op_hand)
 
 
 # --------------------------------------------------------------------------- writers
 
+#: How a Parquet export is compressed (values are float32, a historian's usual resolution of about
+#: 7 significant digits, split by byte; time stamps as deltas).
+_PARQUET = dict(compression="zstd", write_statistics=["tag", "timestamp"])
+
+
 class _Writer:
-    """Appends chunks of a group of loops to the export's file(s) in one layout and format."""
+    """Appends blocks of a group of loops to the export's file(s) in one layout and format.
+
+    A block holds ``vals`` (loops x 3 x samples: sp, pv, op, float32) and ``manual`` (loops x
+    samples). In the long Parquet layout each block of each tag is one row group (so a reader
+    keeps only the row groups of its tag by their statistics); in the wide layout each block is
+    one row group, a tag's signals its own columns (a reader takes its tag's columns only).
+    """
 
     def __init__(self, base: Path, tags: list[str], layout: str, fmt: str, text: bool = False):
         self.base, self.tags, self.layout, self.fmt = base, tags, layout, fmt
@@ -278,15 +328,15 @@ class _Writer:
         self.w = self.wm = None
         self.first = True
 
-    def write(self, times_us: np.ndarray, sp, pv, op, manual) -> None:
+    def write(self, times_us: np.ndarray, vals: np.ndarray, manual: np.ndarray) -> None:
         if self.fmt == "csv":
-            self._csv(times_us, sp, pv, op, manual)
+            self._csv(times_us, vals[:, 0], vals[:, 1], vals[:, 2], manual)
         elif self.layout == "long":
-            self._long(times_us, sp, pv, op, manual)
+            self._long(times_us, vals, manual)
         else:
-            self._wide(times_us, sp, pv, op, manual)
+            self._wide(times_us, vals, manual)
 
-    def _long(self, times_us, sp, pv, op, manual) -> None:
+    def _long(self, times_us, vals, manual) -> None:
         import pyarrow as pa
         import pyarrow.parquet as pq
         T = len(times_us)
@@ -295,40 +345,53 @@ class _Writer:
                                              pa.array(["sp", "pv", "op"]))
         tm = pa.array(times_us, type=pa.timestamp("us", tz="UTC"))
         msig = pa.DictionaryArray.from_arrays(pa.array(np.zeros(T, np.int32)), pa.array(["mode"]))
+        zeros3, zeros1 = pa.array(np.zeros(3 * T, np.int32)), pa.array(np.zeros(T, np.int32))
+        words = pa.array(["AUTO", "MAN"])
         for i, tag in enumerate(self.tags):
-            tg = pa.DictionaryArray.from_arrays(pa.array(np.zeros(3 * T, np.int32)), pa.array([tag]))
-            vals = np.concatenate([sp[i], pv[i], op[i]])
-            mv = pa.DictionaryArray.from_arrays(pa.array(manual[i].astype(np.int32)), pa.array(["AUTO", "MAN"]))
-            mt = pa.table({"tag": pa.DictionaryArray.from_arrays(pa.array(np.zeros(T, np.int32)), pa.array([tag])),
-                           "timestamp": tm, "signal": msig, "value": mv})
+            name = pa.array([tag])
+            mv = pa.DictionaryArray.from_arrays(pa.array(manual[i].astype(np.int32)), words)
+            mt = pa.table({"tag": pa.DictionaryArray.from_arrays(zeros1, name), "timestamp": tm, "signal": msig,
+                           "value": mv})
+            v = np.ascontiguousarray(vals[i]).reshape(-1)
             if self.text:
-                tb = pa.table({"tag": tg, "timestamp": ts, "signal": sig,
-                               "value": pa.array(np.char.mod("%.10g", vals).astype(object), pa.string())})
+                tb = pa.table({"tag": pa.DictionaryArray.from_arrays(zeros3, name), "timestamp": ts, "signal": sig,
+                               "value": pa.array(np.char.mod("%.9g", v.astype(float)).astype(object), pa.string())})
                 both = pa.concat_tables([tb, mt.cast(tb.schema)])
                 if self.w is None:
-                    self.w = pq.ParquetWriter(self.base.with_name(self.base.name + ".parquet"), tb.schema)
+                    self.w = pq.ParquetWriter(self.base.with_name(self.base.name + ".parquet"), tb.schema,
+                                              **_PARQUET)
                 self.w.write_table(both, row_group_size=4 * T)
                 continue
-            tb = pa.table({"tag": tg, "timestamp": ts, "signal": sig, "value": pa.array(vals)})
+            tb = pa.table({"tag": pa.DictionaryArray.from_arrays(zeros3, name), "timestamp": ts, "signal": sig,
+                           "value": pa.array(v)})
             if self.w is None:
-                self.w = pq.ParquetWriter(self.base.with_name(self.base.name + ".parquet"), tb.schema)
-                self.wm = pq.ParquetWriter(self.base.with_name(self.base.name + "-mode.parquet"), mt.schema)
+                self.w = pq.ParquetWriter(self.base.with_name(self.base.name + ".parquet"), tb.schema,
+                                          use_dictionary=["tag", "signal"],
+                                          column_encoding={"value": "BYTE_STREAM_SPLIT",
+                                                           "timestamp": "DELTA_BINARY_PACKED"}, **_PARQUET)
+                self.wm = pq.ParquetWriter(self.base.with_name(self.base.name + "-mode.parquet"), mt.schema,
+                                           use_dictionary=["tag", "signal", "value"],
+                                           column_encoding={"timestamp": "DELTA_BINARY_PACKED"}, **_PARQUET)
             self.w.write_table(tb, row_group_size=3 * T)
             self.wm.write_table(mt, row_group_size=T)
 
-    def _wide(self, times_us, sp, pv, op, manual) -> None:
+    def _wide(self, times_us, vals, manual) -> None:
         import pyarrow as pa
         import pyarrow.parquet as pq
         cols = {"timestamp": pa.array(times_us, type=pa.timestamp("us", tz="UTC"))}
+        words = pa.array(["AUTO", "MAN"])
         for i, tag in enumerate(self.tags):
-            cols[f"{tag}.sp"] = pa.array(sp[i])
-            cols[f"{tag}.pv"] = pa.array(pv[i])
-            cols[f"{tag}.op"] = pa.array(op[i])
-            cols[f"{tag}.mode"] = pa.DictionaryArray.from_arrays(pa.array(manual[i].astype(np.int32)),
-                                                                 pa.array(["AUTO", "MAN"]))
+            cols[f"{tag}.sp"] = pa.array(vals[i, 0])
+            cols[f"{tag}.pv"] = pa.array(vals[i, 1])
+            cols[f"{tag}.op"] = pa.array(vals[i, 2])
+            cols[f"{tag}.mode"] = pa.DictionaryArray.from_arrays(pa.array(manual[i].astype(np.int32)), words)
         tb = pa.table(cols)
         if self.w is None:
-            self.w = pq.ParquetWriter(self.base.with_name(self.base.name + ".parquet"), tb.schema)
+            floats = [c for c in cols if not c.endswith(".mode") and c != "timestamp"]
+            self.w = pq.ParquetWriter(self.base.with_name(self.base.name + ".parquet"), tb.schema,
+                                      use_dictionary=[c for c in cols if c.endswith(".mode")],
+                                      column_encoding={**{c: "BYTE_STREAM_SPLIT" for c in floats},
+                                                       "timestamp": "DELTA_BINARY_PACKED"}, **_PARQUET)
         self.w.write_table(tb, row_group_size=len(times_us))
 
     def _csv(self, times_us, sp, pv, op, manual) -> None:
@@ -347,7 +410,7 @@ class _Writer:
             for i, tag in enumerate(self.tags):
                 for name, v in (("sp", sp[i]), ("pv", pv[i]), ("op", op[i])):
                     parts.append(pd.DataFrame({"tag": tag, "timestamp": stamps, "signal": name,
-                                               "value": np.char.mod("%.6g", v)}))
+                                               "value": np.char.mod("%.6g", v.astype(float))}))
                 parts.append(pd.DataFrame({"tag": tag, "timestamp": stamps, "signal": "mode",
                                            "value": words[manual[i].astype(int)]}))
             df = pd.concat(parts, ignore_index=True)
@@ -358,6 +421,101 @@ class _Writer:
         for w in (self.w, self.wm):
             if w is not None:
                 w.close()
+
+
+# --------------------------------------------------------------------------- the loops of one job
+
+def _order(plans: list[LoopPlan], ts: float) -> list[LoopPlan]:
+    """Loops in the order they are simulated and filed: by decreasing steps per sample (the
+    simulator's rule), then alike together (so that the simulator's per-step masks run in blocks)."""
+    from .plantdata.plantsim import ideal_settings, substeps_for
+
+    def key(i):
+        q = plans[i]
+        _, ti, td = ideal_settings(q.row)
+        return (-substeps_for([q.row], ts), float(q.row.sample or 0.0) > ts, math.isinf(ti), td > 0,
+                q.scenario, i)
+    return [plans[i] for i in sorted(range(len(plans)), key=key)]
+
+
+def _job_bounds(steps: np.ndarray, files: list[tuple[int, int]], jobs: int) -> list[tuple[int, int]]:
+    """Split the files (consecutive; loops by decreasing steps) into at most ``jobs`` runs of files
+    of about equal cost. A job's cost per sample is about a fixed cost per lockstep step (so many
+    steps as its deepest loop takes) plus a small cost per loop-step."""
+    if jobs <= 1 or len(files) <= 1:
+        return [(0, len(files))]
+    fixed = 1000.0                                           # loop-steps that cost as much as one lockstep step
+
+    def cost(a, b):
+        lo, hi = files[a][0], files[b - 1][1]
+        return fixed * float(steps[lo]) + float(steps[lo:hi].sum())
+
+    def split(bound):
+        out, a = [], 0
+        while a < len(files):
+            b = a + 1
+            while b < len(files) and cost(a, b + 1) <= bound:
+                b += 1
+            out.append((a, b))
+            a = b
+        return out
+    lo, hi = 0.0, cost(0, len(files))
+    for _ in range(50):
+        mid = (lo + hi) / 2
+        if len(split(mid)) <= jobs:
+            hi = mid
+        else:
+            lo = mid
+    return split(hi)
+
+
+def _run_job(plans: list[LoopPlan], groups: list[tuple[int, int, int]], tmp: str, single: bool, layout: str,
+             fmt: str, n_total: int, ts: float, seed: int, block: int) -> tuple[float, float]:
+    """Simulate the loops of one job (file groups ``groups``: start, stop, file number) and write their files.
+
+    Returns the CPU time [s] and peak resident memory [MiB] of the process that ran it.
+    """
+    import resource
+    import time
+    from .plantdata.plantsim import advance, discretise, start_state, substeps_for
+
+    tmp_p = Path(tmp)
+    steps = np.array([substeps_for([q.row], ts) for q in plans], dtype=np.int64)
+    p = discretise([q.row for q in plans], ts, [q.dead_time for q in plans], steps)
+    inputs = _Inputs(plans, groups, n_total, ts, seed)
+    st = start_state(p, inputs.op0, inputs.sp0)
+    S = np.array([q.stick_s for q in plans])
+    J = np.array([q.stick_j for q in plans])
+    writers = [(a, b, _Writer(tmp_p / ("export" if single else f"loops-{g + 1:04d}"),
+                              [q.row.tag for q in plans[a:b]], layout, fmt, text=single)) for a, b, g in groups]
+    n = len(plans)
+    t0_us = int(np.datetime64(START.replace("+00:00", ""), "us").astype(np.int64))
+    T = max(1, min(n_total, block, CHUNK_VALUES // max(n, 1)))
+    vals = np.empty((n, 3, block), dtype=np.float32)
+    man = np.empty((n, block), dtype=bool)
+    pv, op = np.empty((T, n)), np.empty((T, n))
+    done = 0
+    try:
+        while done < n_total:
+            nb = min(block, n_total - done)
+            at = 0
+            while at < nb:
+                m = min(T, nb - at)
+                x = inputs.chunk(m)
+                advance(p, st, x["base"], x["sp"], x["lj"], x["manual"], x["op_hand"], S, J, pv=pv[:m], op=op[:m])
+                vals[:, 0, at:at + m] = x["sp"].T
+                vals[:, 1, at:at + m] = pv[:m].T
+                vals[:, 2, at:at + m] = op[:m].T
+                man[:, at:at + m] = x["manual"].T
+                at += m
+            times = t0_us + np.round((done + np.arange(nb)) * ts * 1e6).astype(np.int64)
+            for a, b, w in writers:
+                w.write(times, vals[a:b, :, :nb], man[a:b, :nb])
+            done += nb
+    finally:
+        for _, _, w in writers:
+            w.close()
+    return time.process_time(), resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 @dataclass(frozen=True)
@@ -376,6 +534,8 @@ class ExportWritten:
         Tag -> scenario of every simulated loop.
     not_simulated : tuple of str
         Tags (or rows) with no data in the export.
+    worker_cpu_s, worker_peak_mib : float
+        CPU time of the worker processes (``jobs`` > 1; 0 otherwise) [s] and the largest one's peak memory [MiB].
     """
 
     path: Path
@@ -383,11 +543,13 @@ class ExportWritten:
     samples: int
     planted: dict
     not_simulated: tuple[str, ...]
+    worker_cpu_s: float = 0.0
+    worker_peak_mib: float = 0.0
 
 
 def write_synthetic_export(inventory_path: str | Path, path: str | Path, days: float = 1.0, ts: float = 1.0,
                            seed: int = 1, layout: str = "long", fmt: str = "parquet",
-                           force: bool = False) -> ExportWritten:
+                           force: bool = False, jobs: int = 1) -> ExportWritten:
     """Simulate every simulable loop of an inventory and write the export (see the module notes).
 
     Parameters
@@ -401,13 +563,15 @@ def write_synthetic_export(inventory_path: str | Path, path: str | Path, days: f
     ts : float
         Sample interval. [s]
     seed : int
-        Seed; the same seed gives the same export. [-]
+        Seed; the same seed gives the same export (whatever ``jobs``). [-]
     layout : str
         ``long`` or ``wide``.
     fmt : str
         ``parquet`` or ``csv`` (for a folder; a file's ending decides for a file).
     force : bool
         Replace an existing ``path``.
+    jobs : int
+        Processes that simulate (a folder export; its files are shared out among them). [-]
 
     Returns
     -------
@@ -419,7 +583,7 @@ def write_synthetic_export(inventory_path: str | Path, path: str | Path, days: f
         ``path`` exists (without ``force``), or is not a file or folder plant-audit may replace.
     """
     from .inventory import read_inventory
-    from .plantdata.plantsim import discretise, run_chunk, start_state, substeps_for
+    from .plantdata.plantsim import substeps_for
 
     out = Path(path)
     single = out.suffix.lower() in (".parquet", ".pq", ".csv")
@@ -436,40 +600,28 @@ def write_synthetic_export(inventory_path: str | Path, path: str | Path, days: f
     if tmp.exists():
         shutil.rmtree(tmp) if tmp.is_dir() else tmp.unlink()
     tmp.mkdir(parents=True)
-    t0_us = int(np.datetime64(START.replace("+00:00", ""), "us").astype(np.int64))
     try:
-        # loops of like speed together; a batch steps at its fastest controller's rate (per-step cost
-        # is mostly fixed, so one large batch beats many small ones)
-        order = sorted(plans, key=lambda q: substeps_for([q.row], ts))
-        size = max(len(order), 1) if single else BATCH_LOOPS
-        batches = [(b0, order[b0:b0 + size]) for b0 in range(0, len(order), size)]
-        for b0, batch in batches:
-            p = discretise([q.row for q in batch], ts, [q.dead_time for q in batch],
-                           substeps_for([q.row for q in batch], ts))
-            inputs = _Inputs(batch, n_total, ts, seed, b0)
-            st = start_state(p, inputs.op0, inputs.sp0)
-            S = np.array([q.stick_s for q in batch])
-            J = np.array([q.stick_j for q in batch])
-            if single:
-                groups = [(0, len(batch), tmp / "export")]
-            else:
-                groups = [(g, min(g + FILE_LOOPS, len(batch)), tmp / f"loops-{(b0 + g) // FILE_LOOPS + 1:04d}")
-                          for g in range(0, len(batch), FILE_LOOPS)]
-            writers = [(a, b, _Writer(base, [q.row.tag for q in batch[a:b]], layout, fmt, text=single))
-                       for a, b, base in groups]
-            T = max(1, min(n_total, CHUNK_VALUES // (4 * len(batch))))
-            done = 0
-            while done < n_total:
-                m = min(T, n_total - done)
-                x = inputs.chunk(m)
-                pv, op = run_chunk(p, st, x["sp"], x["noise"], x["load"], x["manual"], x["op_hand"], inputs.op0,
-                                   inputs.sp0, S, J)
-                times = t0_us + np.round((done + np.arange(m)) * ts * 1e6).astype(np.int64)
-                for a, b, w in writers:
-                    w.write(times, x["sp"][a:b], pv[a:b], op[a:b], x["manual"][a:b])
-                done += m
-            for _, _, w in writers:
-                w.close()
+        order = _order(plans, ts)
+        n = len(order)
+        size = max(n, 1) if single else FILE_LOOPS
+        files = [(a, min(a + size, n)) for a in range(0, n, size)]
+        steps = np.array([substeps_for([q.row], ts) for q in order], dtype=np.int64)
+        block = int(max(1, min(n_total, max(BLOCK_VALUES // max(n, 1), MIN_BLOCK))))
+        work = []
+        for fa, fb in _job_bounds(steps, files, 1 if single else max(1, int(jobs))):
+            lo, hi = files[fa][0], files[fb - 1][1]
+            groups = [(files[g][0] - lo, files[g][1] - lo, g) for g in range(fa, fb)]
+            work.append((order[lo:hi], groups, str(tmp), single, layout, fmt, n_total, ts, seed, block))
+        used = []
+        if len(work) == 1:
+            _run_job(*work[0])
+        elif work:
+            import multiprocessing
+            from concurrent.futures import ProcessPoolExecutor
+            methods = multiprocessing.get_all_start_methods()
+            ctx = multiprocessing.get_context("forkserver" if "forkserver" in methods else "spawn")
+            with ProcessPoolExecutor(max_workers=len(work), mp_context=ctx) as pool:
+                used = [f.result() for f in [pool.submit(_run_job, *w) for w in work]]
         planted = {q.row.tag: q.scenario for q in plans}
         _install(tmp, out, single, force)
         meta = {"seed": seed, "days": days, "ts_s": ts, "layout": layout, "format": fmt, "start": START,
@@ -479,7 +631,8 @@ def write_synthetic_export(inventory_path: str | Path, path: str | Path, days: f
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    return ExportWritten(out, len(plans), n_total, planted, tuple(skipped))
+    return ExportWritten(out, len(plans), n_total, planted, tuple(skipped), sum(u[0] for u in used),
+                         max((u[1] for u in used), default=0.0))
 
 
 def _install(tmp: Path, out: Path, single: bool, force: bool) -> None:

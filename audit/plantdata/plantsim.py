@@ -1,7 +1,12 @@
 """Closed-loop simulation of many loops side by side: each its own model and tuning, exact dead time.
 
-Used by :mod:`audit.generate_data` to write synthetic historian exports. Every loop is advanced
-one sample at a time, all loops of a batch together as numpy rows (vectorised across loops).
+Used by :mod:`audit.generate_data` to write synthetic historian exports. All loops of a batch
+are advanced together in lockstep, one logged sample at a time, as numpy rows (vectorised across
+loops; each step a fixed set of in-place numpy operations on preallocated arrays, so its Python
+cost is paid once for the whole batch). Each loop steps at its own rate: ``steps`` simulation
+steps per logged sample (its controller's rate, see below); the loops are held in order of
+decreasing ``steps``, so that the loops that take their q-th step within a sample are a leading
+slice of the batch (views, no copies).
 
 Process
 -------
@@ -18,12 +23,18 @@ part of a lead that passes at once) is held for one sample.
 Controller
 ----------
 The row's PID in ideal form (series and parallel settings converted), executing at the row's
-own sample time (rounded to the simulation step; every step when blank): proportional and
+own sample time (rounded to the loop's simulation step; every step when blank): proportional and
 integral on the error, derivative on the measurement through the row's filter alpha td, output
 limited to 0..100 % with back-calculation of the integral (and tracking in manual, so the return
-to automatic is bumpless), held between executions. The process is advanced in ``substeps``
-steps per logged sample so that a fast controller runs at its own rate; the PV filter is not
-simulated. Logged values are the measurement and output at each logged sample.
+to automatic is bumpless), held between executions. Each loop's process is advanced in its own
+``steps`` steps per logged sample (:func:`substeps_for` of the row alone) so that a fast
+controller runs at its own rate; the PV filter is not simulated. Logged values are the
+measurement and output at each logged sample. Inputs (set point, load, noise, manual) change
+at the logged samples only.
+
+The delay line is a ring buffer of d + 1 places per loop, all loops in one flat array (a few
+MB at most): at each step the valve position (plus load) goes in at the loop's slot and the
+value put in d steps earlier comes out; the one before it (u[k-d-1]) is the previous step's.
 
 Valve
 -----
@@ -63,7 +74,7 @@ class PlantArrays:
     ts : float
         Logged sample interval. [s]
     substeps : int
-        Simulation steps per logged sample (step h = ts / substeps). [-]
+        Most simulation steps per logged sample of any loop. [-]
     every : ndarray of int
         Steps between executions of each controller. [-]
     a, b1, b2, c : ndarray
@@ -75,6 +86,8 @@ class PlantArrays:
         Ideal-form PID: gain [-], integral time [s] (inf: none), derivative time [s], filter factor [-].
     sign : ndarray
         +1 for reverse action on a positive process gain, -1 otherwise. [-]
+    steps : ndarray of int
+        Simulation steps per logged sample of each loop (its step h = ts / steps). [-]
     """
 
     ts: float
@@ -90,6 +103,7 @@ class PlantArrays:
     td: np.ndarray
     alpha: np.ndarray
     sign: np.ndarray
+    steps: np.ndarray = None
 
 
 def ideal_settings(row) -> tuple[float, float, float]:
@@ -125,7 +139,7 @@ def substeps_for(rows, ts: float, most: int = 10) -> int:
     return int(min(max(math.ceil(ts / fastest - 1e-9), 1), most))
 
 
-def discretise(rows, ts: float, dead_times=None, substeps: int = 1) -> PlantArrays:
+def discretise(rows, ts: float, dead_times=None, substeps=1) -> PlantArrays:
     """Exact zero-order-hold discretisation of each row's model and its controller.
 
     Parameters
@@ -136,8 +150,8 @@ def discretise(rows, ts: float, dead_times=None, substeps: int = 1) -> PlantArra
         Sample interval. [s]
     dead_times : sequence of float, optional
         Dead time simulated per row (default: the row's own). [s]
-    substeps : int
-        Simulation steps per logged sample. [-]
+    substeps : int or sequence of int
+        Simulation steps per logged sample, for all rows or per row. [-]
 
     Returns
     -------
@@ -151,10 +165,10 @@ def discretise(rows, ts: float, dead_times=None, substeps: int = 1) -> PlantArra
     d = np.zeros(n, dtype=np.int64)
     kc, ti, td, alpha, sign = (np.zeros(n) for _ in range(5))
     every = np.ones(n, dtype=np.int64)
-    h = ts / substeps
+    steps = np.broadcast_to(np.asarray(substeps, dtype=np.int64), (n,)).copy()
     ts_log = ts
-    ts = h
     for i, row in enumerate(rows):
+        h = ts = ts_log / steps[i]
         every[i] = max(1, int(round(float(row.sample) / h))) if row.sample else 1
         theta = float(row.dead_time or 0.0) if dead_times is None else float(dead_times[i])
         d[i] = int(math.floor(theta / ts + 1e-9))
@@ -172,7 +186,7 @@ def discretise(rows, ts: float, dead_times=None, substeps: int = 1) -> PlantArra
         kc[i], ti[i], td[i] = ideal_settings(row)
         alpha[i] = float(row.d_filter or 0.1)
         sign[i] = 1.0 if float(row.gain) > 0 else -1.0
-    return PlantArrays(ts_log, substeps, every, a, b1, b2, c, d, kc, ti, td, alpha, sign)
+    return PlantArrays(ts_log, int(steps.max(initial=1)), every, a, b1, b2, c, d, kc, ti, td, alpha, sign, steps)
 
 
 @dataclass
@@ -182,9 +196,9 @@ class LoopState:
     Attributes
     ----------
     x : ndarray
-        Mode states, loops x modes.
+        Each mode's share of the measurement (the mode's state times its output weight), modes x loops. [% of range]
     line : ndarray
-        Delay line of the valve position (deviation), loops x (max dead time + 2 samples).
+        Delay lines of the valve position plus load (deviation), d + 1 places a loop, loop after loop. [%]
     k : int
         Samples simulated so far. [-]
     integ : ndarray
@@ -192,7 +206,7 @@ class LoopState:
     dfilt : ndarray
         Filtered derivative part. [%]
     meas_prev : ndarray
-        Previous measurement. [%]
+        Measurement at the controller's last execution (kept where td > 0). [%]
     valve : ndarray
         Valve position. [%]
     u_prev, v_old, u_stuck : ndarray
@@ -201,6 +215,9 @@ class LoopState:
         Valve stuck.
     u_out : ndarray
         Controller output held since its last execution. [%]
+    late : ndarray, optional
+        What the delay line's previous output u[k-d-1] adds at the next step, b2 u[k-d-1] times the
+        output weight, modes x loops. [% of range]
     """
 
     x: np.ndarray
@@ -215,6 +232,7 @@ class LoopState:
     u_stuck: np.ndarray
     stuck: np.ndarray
     u_out: np.ndarray
+    late: np.ndarray = None
 
 
 def start_state(p: PlantArrays, op0: np.ndarray, sp0: np.ndarray) -> LoopState:
@@ -230,10 +248,31 @@ def start_state(p: PlantArrays, op0: np.ndarray, sp0: np.ndarray) -> LoopState:
         Set point at rest (the measurement starts there). [% of range]
     """
     n = len(op0)
-    width = int(p.d.max(initial=0)) + 2
-    return LoopState(np.zeros((n, MAX_MODES)), np.zeros((n, width)), 0, op0.astype(float).copy(), np.zeros(n),
+    width = int(np.sum(p.d + 1))
+    return LoopState(np.zeros((MAX_MODES, n)), np.zeros(width), 0, op0.astype(float).copy(), np.zeros(n),
                      sp0.astype(float).copy(), op0.astype(float).copy(), op0.astype(float).copy(), np.zeros(n),
-                     op0.astype(float).copy(), np.ones(n, dtype=bool), op0.astype(float).copy())
+                     op0.astype(float).copy(), np.ones(n, dtype=bool), op0.astype(float).copy(),
+                     np.zeros((MAX_MODES, n)))
+
+
+def _stick(u, S, half, u_prev, v_old, u_stuck, stuck, valve) -> None:
+    """One step of the stiction model on arrays updated in place (``valve`` is the result).
+
+    ``half`` is (S - J) / 2. Every loop given here has S > 0. The valve sticks when the input
+    comes to rest or reverses (v v_old <= 0 for directions in {-1, 0, 1}).
+    """
+    v = np.sign(u - u_prev)
+    mv = v != 0
+    newly = np.less_equal(v * v_old, 0.0) > stuck             # comes to rest or reverses, not stuck yet
+    np.copyto(u_stuck, u_prev, where=newly)
+    stuck |= newly
+    slip = np.abs(u - u_stuck) > S
+    slip &= stuck
+    still = stuck > slip                                       # stuck and does not slip
+    np.copyto(valve, u - v * half, where=mv > still)           # moving (free or slipping) in a direction
+    np.copyto(stuck, still)
+    np.copyto(v_old, v, where=mv)
+    np.copyto(u_prev, u)
 
 
 def stiction(u: np.ndarray, st: LoopState, S: np.ndarray, J: np.ndarray) -> np.ndarray:
@@ -253,31 +292,184 @@ def stiction(u: np.ndarray, st: LoopState, S: np.ndarray, J: np.ndarray) -> np.n
     ndarray
         Valve position. [%]
     """
-    v = np.sign(u - st.u_prev)
-    stop = (v == 0) | (v != st.v_old)
-    newly = stop & ~st.stuck
-    st.u_stuck = np.where(newly, st.u_prev, st.u_stuck)
-    st.stuck = st.stuck | newly
-    slip = st.stuck & (np.abs(u - st.u_stuck) > S)
-    moving = ~st.stuck | slip
-    x = np.where(moving & (v != 0), u - v * (S - J) / 2, st.valve)
-    st.stuck = st.stuck & ~slip
-    x = np.where(S > 0, x, u)
-    st.v_old = np.where(v != 0, v, st.v_old)
-    st.u_prev = u
-    st.valve = x
-    return x
+    u = np.asarray(u, dtype=float)
+    st.u_prev, st.v_old, st.u_stuck = (np.array(v, dtype=float) for v in (st.u_prev, st.v_old, st.u_stuck))
+    st.stuck, st.valve = np.array(st.stuck, dtype=bool), np.array(st.valve, dtype=float)
+    _stick(u, S, (S - J) / 2, st.u_prev, st.v_old, st.u_stuck, st.stuck, st.valve)
+    st.valve = np.where(S > 0, st.valve, u)
+    return st.valve
 
 
-def run_chunk(p: PlantArrays, st: LoopState, sp: np.ndarray, noise: np.ndarray, load: np.ndarray,
-              manual: np.ndarray, op_hand: np.ndarray, op0: np.ndarray, sp0: np.ndarray, S: np.ndarray,
-              J: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Advance every loop over one chunk of samples (loops x samples inputs).
+def advance(p: PlantArrays, st: LoopState, base: np.ndarray, sp: np.ndarray, lj: np.ndarray, manual: np.ndarray,
+            op_hand: np.ndarray, S: np.ndarray, J: np.ndarray, pv: np.ndarray | None = None,
+            op: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Advance every loop over one chunk of logged samples (inputs samples x loops, time first).
+
+    The loops must be in order of decreasing ``p.steps``.
 
     Parameters
     ----------
     p : PlantArrays
         The batch.
+    st : LoopState
+        Its state, advanced in place.
+    base : ndarray
+        Operating point of the measurement plus what is added to it (noise, outside disturbances). [% of range]
+    sp : ndarray
+        Set points. [% of range]
+    lj : ndarray
+        Load at the process input less the operating output (deviation added to the valve position). [%]
+    manual : ndarray of bool
+        True where the loop is in manual.
+    op_hand : ndarray
+        The operator's output in manual. [%]
+    S, J : ndarray
+        Valve stiction per loop (0: none). [%]
+    pv, op : ndarray, optional
+        Where to write the logged measurement [% of range] and output [%] (samples x loops).
+
+    Returns
+    -------
+    (ndarray, ndarray)
+        Measurement [% of range] and controller output [%], samples x loops.
+    """
+    T, n = sp.shape
+    steps = p.steps if p.steps is not None else np.full(n, p.substeps, dtype=np.int64)
+    if np.any(np.diff(steps) > 0):
+        raise ValueError("loops must be in order of decreasing steps per sample")
+    pv = np.empty((T, n)) if pv is None else pv
+    op = np.empty((T, n)) if op is None else op
+    if n == 0 or T == 0:
+        return pv, op
+    smax = int(steps[0])
+    h = p.ts / steps
+    tc = p.every * h                                        # each controller's execution period [s]
+    fin = np.isfinite(p.ti)
+    ki = np.where(fin, p.kc * tc / np.where(fin, p.ti, 1.0), 0.0)
+    den = p.alpha * p.td + tc
+    dfa = np.where(p.td > 0, p.alpha * p.td / den, 0.0)
+    sdf = p.sign * np.where(p.td > 0, p.kc * p.td / den, 0.0)
+    ks, kis = p.sign * p.kc, p.sign * ki
+    gate = manual | (ki > 0)[None, :]                         # back-calculation (anti-windup) and tracking
+    used = np.flatnonzero(np.any(p.c != 0, axis=0))
+    m = int(used[-1]) + 1 if len(used) else 1
+    A = np.ascontiguousarray(p.a[:, :m].T)
+    B1 = np.ascontiguousarray((p.c * p.b1)[:, :m].T)
+    B2 = np.ascontiguousarray((p.c * p.b2)[:, :m].T)
+    X = np.ascontiguousarray(st.x[:m])
+    width = p.d + 1
+    off = np.concatenate([[0], np.cumsum(width)[:-1]]).astype(np.int64)
+    line = st.line
+    P = np.zeros((m, n)) if st.late is None else np.ascontiguousarray(st.late[:m])   # b2 u[k-d-1] (weighted)
+    lo, hi = np.zeros(n), np.full(n, 100.0)
+    sid = np.flatnonzero(S > 0)
+    s_S, s_half = S[sid], (S[sid] - J[sid]) / 2
+    s_prev, s_vold, s_ust = st.u_prev[sid].astype(float), st.v_old[sid].astype(float), st.u_stuck[sid].astype(float)
+    s_stuck, s_valve = st.stuck[sid].astype(bool), st.valve[sid].astype(float)
+    u, integ, dfilt, mprev = st.u_out, st.integ, st.dfilt, st.meas_prev
+    kk = st.k + np.arange(T, dtype=np.int64)[:, None]
+    views = []
+    for q in range(smax):
+        nq = int(np.count_nonzero(steps > q))
+        kq = kk * steps[:nq] + q                                # each loop's own step count
+        wq, rq = off[:nq] + kq % width[:nq], off[:nq] + (kq + 1) % width[:nq]
+        ev = p.every[:nq]
+        run = (kq % ev == 0) if np.any(ev > 1) else None
+        ms = int(np.count_nonzero(sid < nq))
+        used = np.flatnonzero(np.any(p.c[:nq] != 0, axis=0))
+        mq = int(used[-1]) + 1 if len(used) else 1
+        flags = (q == 0, mq, bool(np.any(p.td[:nq] > 0)), bool(manual[:, :nq].any()), not bool(gate[:, :nq].all()),
+                 run is not None, ms)
+        views.append((flags, wq, rq, run, X[:mq, :nq], A[:mq, :nq], B1[:mq, :nq], B2[:mq, :nq], np.empty((mq, nq)),
+                      np.empty((7, nq)), ks[:nq], kis[:nq], dfa[:nq], sdf[:nq], u[:nq], integ[:nq], dfilt[:nq],
+                      mprev[:nq], P[:mq, :nq], lo[:nq], hi[:nq], sid[:ms], slice(0, nq)))
+    for j in range(T):
+        bj, spj, ljj, mj, hj, gj = base[j], sp[j], lj[j], manual[j], op_hand[j], gate[j]
+        for ((first, mq, td_q, man_q, gate_q, gated, ms), wq, rq, run, Xq, Aq, B1q, B2q, TM, tmp, ksq, kisq, dfaq,
+             sdfq, uq, iq, dq, mpq, Pq, loq, hiq, sq, cut) in views:
+            if first:                                          # the logged sample: every loop takes this step
+                meas, bq, spq, lq = pv[j], bj, spj, ljj
+            else:
+                meas, bq, spq, lq = tmp[0], bj[cut], spj[cut], ljj[cut]
+            r, prop, t1 = tmp[1], tmp[2], tmp[3]
+            # measurement
+            if mq == 1:
+                np.add(bq, Xq[0], out=meas)
+            else:
+                np.add(Xq[0], Xq[1], out=meas)
+                for i in range(2, mq):
+                    np.add(meas, Xq[i], out=meas)
+                np.add(bq, meas, out=meas)
+            # controller
+            iN, dN, uN = (tmp[4], tmp[5], tmp[6]) if gated else (iq, dq, uq)
+            np.subtract(spq, meas, out=r)
+            np.multiply(ksq, r, out=prop)
+            np.multiply(kisq, r, out=t1)
+            np.add(iq, t1, out=iN)
+            np.add(prop, iN, out=uN)
+            if td_q:
+                np.subtract(meas, mpq, out=t1)
+                np.multiply(sdfq, t1, out=t1)
+                np.multiply(dfaq, dq, out=dN)
+                np.subtract(dN, t1, out=dN)
+                np.add(uN, dN, out=uN)
+            np.maximum(uN, loq, out=uN)
+            np.minimum(uN, hiq, out=uN)
+            if man_q:
+                np.copyto(uN, hj if first else hj[cut], where=mj if first else mj[cut])
+            # back-calculation of the integral (anti-windup), tracking in manual
+            if gate_q:
+                np.subtract(uN, prop, out=t1)
+                if td_q:
+                    np.subtract(t1, dN, out=t1)
+                np.copyto(iN, t1, where=gj if first else gj[cut])
+            else:
+                np.subtract(uN, prop, out=iN)
+                if td_q:
+                    np.subtract(iN, dN, out=iN)
+            if gated:
+                rj = run[j]
+                np.copyto(uq, uN, where=rj)
+                np.copyto(iq, iN, where=rj)
+                if td_q:
+                    np.copyto(dq, dN, where=rj)
+                    np.copyto(mpq, meas, where=rj)
+            elif td_q:
+                np.copyto(mpq, meas)
+            if first:
+                np.copyto(op[j], uq)
+            # the valve, then the delay line
+            np.add(uq, lq, out=t1)
+            if ms:
+                _stick(uq[sq], s_S[:ms], s_half[:ms], s_prev[:ms], s_vold[:ms], s_ust[:ms], s_stuck[:ms],
+                       s_valve[:ms])
+                t1[sq] = s_valve[:ms] + lq[sq]
+            line[wq[j]] = t1
+            u1 = line[rq[j]]                                   # u[k-d]
+            # process: x = a x + b2 u[k-d-1] + b1 u[k-d]
+            np.multiply(Aq, Xq, out=Xq)
+            np.add(Xq, Pq, out=Xq)
+            np.multiply(B1q, u1, out=TM)
+            np.add(Xq, TM, out=Xq)
+            np.multiply(B2q, u1, out=Pq)
+    st.x[:m] = X
+    st.k += T
+    st.late = np.zeros((MAX_MODES, n))
+    st.late[:m] = P
+    st.u_prev[sid], st.v_old[sid], st.u_stuck[sid], st.stuck[sid], st.valve[sid] = (s_prev, s_vold, s_ust, s_stuck,
+                                                                                      s_valve)
+    return pv, op
+
+
+def run_chunk(p: PlantArrays, st: LoopState, sp: np.ndarray, noise: np.ndarray, load: np.ndarray,
+              manual: np.ndarray, op_hand: np.ndarray, op0: np.ndarray, sp0: np.ndarray, S: np.ndarray,
+              J: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Advance every loop over one chunk of samples (loops x samples inputs; see :func:`advance`).
+
+    Parameters
+    ----------
+    p : PlantArrays
+        The batch (loops in order of decreasing steps per sample).
     st : LoopState
         Its state, advanced in place.
     sp : ndarray
@@ -300,72 +492,7 @@ def run_chunk(p: PlantArrays, st: LoopState, sp: np.ndarray, noise: np.ndarray, 
     (ndarray, ndarray)
         Measurement [% of range] and controller output [%], loops x samples.
     """
-    n, T = sp.shape
-    pv = np.empty((n, T))
-    op = np.empty((n, T))
-    rows = np.arange(n)
-    width = st.line.shape[1]
-    tc = p.every * (p.ts / p.substeps)                       # each controller's execution period [s]
-    fin = np.isfinite(p.ti)
-    ki = np.where(fin, p.kc * tc / np.where(fin, p.ti, 1.0), 0.0)
-    den = p.alpha * p.td + tc
-    df_a = np.where(p.td > 0, p.alpha * p.td / den, 0.0)
-    df_b = np.where(p.td > 0, p.kc * p.td / den, 0.0)
-    has_i = ki > 0
-    any_st = bool(np.any(S > 0))
-    any_d = bool(np.any(p.td > 0))
-    any_man = bool(manual.any())
-    all_run = bool(np.all(p.every == 1))
-    simple_i = bool(np.all(has_i)) and not any_man            # back-calculation alone
-    m = max(1, int(np.max(np.count_nonzero(p.c, axis=1), initial=1)))   # modes in use
-    x, line = st.x[:, :m], st.line
-    c, a, b1, b2 = p.c[:, :m], p.a[:, :m], p.b1[:, :m], p.b2[:, :m]
-    sdf = p.sign * df_b
-    sign, kc = p.sign, p.kc
-    u = st.u_out
-    dfilt = st.dfilt
-    for j in range(T):
-        man = manual[:, j]
-        hand = op_hand[:, j]
-        spj = sp[:, j]
-        base = sp0 + noise[:, j]
-        lj = load[:, j] - op0
-        for sub in range(p.substeps):
-            k = st.k
-            meas = base + (x[:, 0] * c[:, 0] if m == 1 else (x * c).sum(axis=1))
-            if sub == 0:
-                pv[:, j] = meas
-            e = sign * (spj - meas)
-            prop = kc * e
-            if any_d:
-                dfilt = df_a * st.dfilt - sdf * (meas - st.meas_prev)
-            integ = st.integ + ki * e
-            un = np.minimum(np.maximum(prop + integ + dfilt, 0.0), 100.0)
-            if any_man:
-                un = np.where(man, hand, un)
-            if simple_i:
-                integ = un - prop - dfilt
-            else:
-                integ = np.where(has_i | man, un - prop - dfilt, integ)   # back-calculation and tracking
-            if all_run:
-                u, st.integ, st.dfilt, st.meas_prev = un, integ, dfilt, meas
-            else:
-                run = (k % p.every) == 0
-                u = np.where(run, un, u)
-                st.integ = np.where(run, integ, st.integ)
-                st.dfilt = np.where(run, dfilt, st.dfilt)
-                st.meas_prev = np.where(run, meas, st.meas_prev)
-            if sub == 0:
-                op[:, j] = u
-            xv = stiction(u, st, S, J) if any_st else u
-            line[:, k % width] = xv + lj
-            u1 = line[rows, (k - p.d) % width]
-            u2 = line[rows, (k - p.d - 1) % width]
-            x = a * x + b1 * u1[:, None] + b2 * u2[:, None]
-            st.k = k + 1
-    full = np.zeros_like(st.x)
-    full[:, :m] = x
-    x = full
-    st.x = x
-    st.u_out = u
-    return pv, op
+    f = lambda v: np.ascontiguousarray(np.asarray(v).T)  # noqa: E731
+    pv, op = advance(p, st, f(sp0[:, None] + noise), f(sp), f(load - op0[:, None]), f(np.asarray(manual, bool)),
+                     f(op_hand), np.asarray(S, float), np.asarray(J, float))
+    return pv.T.copy(), op.T.copy()
