@@ -585,7 +585,10 @@ def _long_batches(f: ExportFile, key: str, rows: int, stats: dict) -> Iterator[t
                     idx = np.flatnonzero(mask.to_numpy(zero_copy_only=False))
                     sub = batch.take(pa.array(idx)) if len(idx) else None
                 if len(idx):
-                    cols = {"time": sub.column(1).to_pandas(), "signal": sub.column(2).to_pandas(),
+                    words = sub.column(2)
+                    if _is_text(words.type) and not pa.types.is_dictionary(words.type):
+                        words = pc.dictionary_encode(words)     # each word once: a categorical series
+                    cols = {"time": sub.column(1).to_pandas(), "signal": words.to_pandas(),
                             "value": sub.column(3).to_pandas()}
                     yield start + idx.astype(np.int64), cols
                 start += m
@@ -638,15 +641,24 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
         return iter(()), {}, {}
     lines = np.concatenate(parts_l)
     raw_t = pd.concat(parts_t, ignore_index=True)
-    codes, uniq = pd.factorize(pd.concat(parts_s, ignore_index=True))     # words normalised once each
-    norm = np.array([" ".join(str(u).lower().split()) for u in uniq] + [""], dtype=object)
+    sig_parts, word_parts = [], []
+    for part in parts_s:                                                # words normalised once each, part by part
+        if isinstance(part.dtype, pd.CategoricalDtype):
+            codes, uniq = part.cat.codes.to_numpy(), part.cat.categories
+        else:
+            codes, uniq = pd.factorize(part)
+        norm = np.array([" ".join(str(u).lower().split()) for u in uniq] + [""], dtype=object)
+        lut = np.array([SIGNALS.index(words[w]) if w in words else -1 for w in norm], dtype=np.int8)
+        sig_parts.append(lut[codes])                                    # index into SIGNALS, -1 unknown
+        word_parts.append((norm, codes))
+    sig = np.concatenate(sig_parts)
     starts = np.cumsum([0] + [len(v) for v in parts_v[:-1]])
-    del parts_t, parts_s
-    lut = np.array([SIGNALS.index(words[w]) if w in words else -1 for w in norm], dtype=np.int8)
-    sig = lut[codes]                                                    # index into SIGNALS, -1 unknown
+    del parts_t, parts_s, sig_parts
     unknown = sig < 0
     if unknown.any():
-        vc = pd.Series(norm[codes[unknown]]).value_counts()
+        bounds = np.cumsum([0] + [len(c) for _, c in word_parts])
+        vc = pd.Series(np.concatenate([norm[codes[unknown[a:b]]] for (norm, codes), a, b
+                                       in zip(word_parts, bounds[:-1], bounds[1:])])).value_counts()
         shown = ", ".join(f"{w!r} ({c})" for w, c in vc.head(6).items())
         notes.add("header", f"signal words not in the policy's export_words_* settings: {shown}"
                             f"{' ...' if len(vc) > 6 else ''}; those rows are not read", column="signal")
@@ -656,15 +668,13 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
     present = [s for j, s in enumerate(SIGNALS) if np.any(sig[ok] == j)]
     if not present:
         return iter(()), {}, state
-    grid = np.unique(t[ok])
-    rep = np.full(len(grid), np.iinfo(np.int64).max, dtype=np.int64)
-    cols: dict[str, pd.Series] = {}
-    col_lines: dict[str, np.ndarray] = {}
+    per: dict[str, tuple[np.ndarray, np.ndarray]] = {}
     for s in present:
         idx = np.flatnonzero(ok & (sig == SIGNALS.index(s)))
         ts = t[idx]
-        order = np.argsort(ts, kind="stable")
-        idx, ts = idx[order], ts[order]
+        if not np.all(ts[1:] > ts[:-1]):                    # not already in strictly ascending time
+            order = np.argsort(ts, kind="stable")
+            idx, ts = idx[order], ts[order]
         dup = np.flatnonzero(ts[1:] == ts[:-1]) + 1
         if len(dup):
             notes.add_lines("order", lines[idx[dup]], [f"a second {s} row at the same time as {files[0].unit} "
@@ -673,8 +683,20 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
             keep = np.ones(len(idx), bool)
             keep[dup] = False
             idx, ts = idx[keep], ts[keep]
-        pos = np.searchsorted(grid, ts)
-        vals, numeric = _take(parts_v, starts, idx, s != "mode")
+        per[s] = (idx, ts)
+    # the times of all rows read, once each: when every signal has the same times (the usual export),
+    # those are the grid, in order (a dropped duplicate repeats a time that is kept)
+    first_ts = per[present[0]][1]
+    same = all(np.array_equal(per[s][1], first_ts) for s in present[1:])
+    grid = first_ts if same else np.unique(t[ok])
+    rep = np.full(len(grid), np.iinfo(np.int64).max, dtype=np.int64)
+    cols: dict[str, pd.Series] = {}
+    col_lines: dict[str, np.ndarray] = {}
+    converted: dict[int, np.ndarray] = {}
+    for s in present:
+        idx, ts = per[s]
+        pos = np.arange(len(grid)) if same else np.searchsorted(grid, ts)
+        vals, numeric = _take(parts_v, starts, idx, s != "mode", converted)
         arr = np.full(len(grid), np.nan) if numeric else np.full(len(grid), None, dtype=object)
         arr[pos] = vals
         ln = np.zeros(len(grid), dtype=np.int64)
@@ -689,18 +711,31 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
     return iter((chunk,)), {s: (s, False) for s in present}, state
 
 
-def _take(parts: Sequence[pd.Series], starts: np.ndarray, idx: np.ndarray, numbers: bool
-          ) -> tuple[np.ndarray, bool]:
-    """Values at positions ``idx`` of the parts laid end to end; floats when every part holding them is numeric."""
+def _take(parts: Sequence[pd.Series], starts: np.ndarray, idx: np.ndarray, numbers: bool,
+          converted: dict[int, np.ndarray] | None = None) -> tuple[np.ndarray, bool]:
+    """Values at positions ``idx`` of the parts laid end to end; floats when every part holding them is numeric.
+
+    ``converted`` keeps each numeric part as floats between calls (the signals of one slice share parts).
+    """
     which = np.searchsorted(starts, idx, side="right") - 1
-    used = np.unique(which)
+    used = np.flatnonzero(np.bincount(which, minlength=len(parts)))
     numeric = numbers and all(pd.api.types.is_numeric_dtype(parts[w].dtype)
                               and not pd.api.types.is_bool_dtype(parts[w].dtype) for w in used)
     out = np.empty(len(idx), dtype=float if numeric else object)
+    cache = {} if converted is None else converted
+    one = len(used) == 1
     for w in used:
-        m = which == w
-        v = parts[w].iloc[idx[m] - starts[w]]
-        out[m] = v.to_numpy(dtype=float, na_value=np.nan) if numeric else v.to_numpy(dtype=object)
+        at = idx - starts[w] if one else idx[which == w] - starts[w]
+        if numeric:
+            if w not in cache:
+                cache[w] = parts[w].to_numpy(dtype=float, na_value=np.nan)
+            got = cache[w][at]
+        else:
+            got = parts[w].iloc[at].to_numpy(dtype=object)
+        if one:
+            out[:] = got
+        else:
+            out[which == w] = got
     return out, numeric
 
 
