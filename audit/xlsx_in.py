@@ -23,7 +23,7 @@ Cells are read as a spreadsheet program's last save left them (ECMA-376 Part 1, 
   (``uncomputed``), as a workbook written by a program and never opened would hold.
 
 The reading matches openpyxl's read-only, values-only reader cell for cell (checked by
-``tests/unit/test_xlsx_in.py`` on every workbook of the test corpus); dates are converted by
+``tests/unit/test_xlsx_in.py`` on workbooks of every cell kind and the sample site); dates are converted by
 openpyxl's own functions, imported only when a workbook holds a date.
 """
 
@@ -76,12 +76,24 @@ _ELAPSED = re.compile(r"\[hh?\](:mm(:ss(\.0*)?)?)?|\[mm?\](:ss(\.0*)?)?|\[ss?\](
 
 
 def is_date_format(fmt: str | None) -> bool:
-    """True when a cell of this number format shows a date or time."""
+    """True when a cell of this number format shows a date or time.
+
+    Parameters
+    ----------
+    fmt : str or None
+        A number format code (``yyyy-mm-dd``, ``0.00%``); None for none.
+    """
     return fmt is not None and _DATE_LETTER.search(_STRIP.sub("", fmt.split(";")[0])) is not None
 
 
 def is_duration_format(fmt: str | None) -> bool:
-    """True when a cell of this number format shows elapsed time ([h]:mm and the like)."""
+    """True when a cell of this number format shows elapsed time ([h]:mm and the like).
+
+    Parameters
+    ----------
+    fmt : str or None
+        A number format code; None for none.
+    """
     return fmt is not None and _ELAPSED.search(fmt.split(";")[0]) is not None
 
 
