@@ -362,7 +362,8 @@ def build_models(audit) -> list[LoopModel | None]:
         if i in links.composed:
             built[i] = model_from_row(r, build(links.inner_of[i]))
         else:
-            built[i] = (read[i] if read and read[i] is not None else None) or model_from_row(r)
+            pre = read[i] if read else None
+            built[i] = pre if pre is not None and pre.tag == (r.tag or f"row {r.excel_row}") else model_from_row(r)
         return built[i]
 
     return [build(i) for i in range(len(rows))]
