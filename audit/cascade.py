@@ -349,6 +349,8 @@ def build_models(audit) -> list[LoopModel | None]:
             parts += [str(p) for p in ps if str(p) not in parts]
             res.at[i, "message"] = "; ".join(parts)
     built: dict[int, LoopModel | None] = {}
+    read = getattr(audit.inventory, "models", ())   # the reader's loops, from the same row values (no inner loop)
+    read = read if len(read) == len(rows) else ()
 
     def build(i: int) -> LoopModel | None:
         if i in built:
@@ -357,8 +359,11 @@ def build_models(audit) -> list[LoopModel | None]:
         if not r.valid or not links.ok(i):
             built[i] = None
             return None
-        inner = build(links.inner_of[i]) if i in links.composed else None
-        built[i] = model_from_row(r, inner)
+        if i in links.composed:
+            built[i] = model_from_row(r, build(links.inner_of[i]))
+        else:
+            pre = read[i] if read else None
+            built[i] = pre if pre is not None and pre.tag == (r.tag or f"row {r.excel_row}") else model_from_row(r)
         return built[i]
 
     return [build(i) for i in range(len(rows))]

@@ -31,6 +31,7 @@ from __future__ import annotations
 import csv
 import datetime as _dt
 import difflib
+import gc
 import hashlib
 import io
 import math
@@ -324,22 +325,23 @@ def _is_blank(v: Any) -> bool:
     return v is None or (isinstance(v, str) and not v.strip())
 
 
-def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | None]]], key: str,
+def _build_table(sheet: str, rows: Iterable[tuple[int, list[tuple[int, Any, str | None]]]], key: str,
                  what: str) -> _Table:
     """Find the header row (first of the first 20 rows with a ``key`` header) and collect the data.
 
-    The limits of :mod:`audit.limits` apply while streaming: more than ``MAX_ROWS`` data rows, or a
-    non-blank cell right of column ``MAX_COLUMNS``, refuses the sheet at once; a cell longer than
-    ``MAX_CELL_CHARS`` is replaced by a marker that makes its row invalid.
+    ``rows`` gives each row's number and its non-blank cells as (column, value, number format of a
+    numeric cell or None). The limits of :mod:`audit.limits` apply while streaming: more than
+    ``MAX_ROWS`` data rows, or a non-blank cell right of column ``MAX_COLUMNS``, refuses the sheet at
+    once; a cell longer than ``MAX_CELL_CHARS`` is replaced by a marker that makes its row invalid.
     """
     it = iter(rows)
     header_row, headers = 0, {}
-    for rownum, values, _ in it:
+    for rownum, cells in it:
         if rownum > 20:
             break
-        if any(canonical_header(v) == key or (isinstance(v, str) and _norm(v) == key) for v in values):
+        if any(canonical_header(v) == key or (isinstance(v, str) and _norm(v) == key) for _, v, _ in cells):
             header_row = rownum
-            headers = _capped(sheet, rownum, values)
+            headers = _capped(sheet, rownum, cells)
             for col, h in headers.items():
                 if isinstance(h, Unreadable):
                     raise InventoryError(f"sheet '{sheet}' header {_col_letter(col)}{rownum}: {h.message}")
@@ -349,83 +351,50 @@ def _build_table(sheet: str, rows: Iterable[tuple[int, list[Any], list[str | Non
     data: list[tuple[int, dict[int, Any], dict[int, str]]] = []
     blank = 0
     prev = header_row
-    for rownum, values, formats in it:
-        vals = _capped(sheet, rownum, values)
-        if not vals:
+    for rownum, cells in it:
+        if not cells:
             continue
+        vals = _capped(sheet, rownum, cells)
         if len(data) >= MAX_ROWS:
             raise InventoryError(f"sheet '{sheet}' has more than {MAX_ROWS:,} loops (row {rownum} holds loop "
                                  f"{MAX_ROWS + 1:,}); at most {MAX_ROWS:,} are read: split the inventory, "
                                  "e.g. by area")
         blank += rownum - prev - 1
         prev = rownum
-        fmts = {c: formats[c - 1] for c in vals if c - 1 < len(formats) and formats[c - 1]}
+        fmts = {c: f for c, _, f in cells if f}
         data.append((rownum, vals, fmts))
     return _Table(sheet, header_row, headers, data, blank)
 
 
-def _capped(sheet: str, rownum: int, values: list[Any]) -> dict[int, Any]:
+def _capped(sheet: str, rownum: int, cells: list[tuple[int, Any, str | None]]) -> dict[int, Any]:
     """The non-blank cells of one row by column (1-based), within the column and cell-length limits."""
     vals: dict[int, Any] = {}
-    for i, v in enumerate(values):
-        if _is_blank(v):
-            continue
-        if i >= MAX_COLUMNS:
-            raise InventoryError(f"sheet '{sheet}' cell {_col_letter(i + 1)}{rownum} is right of column "
+    for col, v, _ in cells:
+        if col > MAX_COLUMNS:
+            raise InventoryError(f"sheet '{sheet}' cell {_col_letter(col)}{rownum} is right of column "
                                  f"{_col_letter(MAX_COLUMNS)}; at most {MAX_COLUMNS} columns are read")
         if isinstance(v, str) and len(v) > MAX_CELL_CHARS:
             v = Unreadable(f"cell of {len(v):,} characters; at most {MAX_CELL_CHARS:,} are read")
-        vals[i + 1] = v
+        vals[col] = v
     return vals
 
 
-def _xlsx_rows(ws) -> Iterable[tuple[int, list[Any], list[str | None]]]:
-    """(sheet row, values, number formats of numeric cells) for every row present in the sheet XML.
+def _xlsx_rows(book, sheet: str, extras) -> Iterable[tuple[int, list[tuple[int, Any, str | None]]]]:
+    """(sheet row, [(column, value, number format of a numeric cell)]) of every row with a non-blank cell.
 
-    Streams the sheet with openpyxl's own parser (no cell objects, no reliance on the sheet's
-    stored dimension, which some writers get wrong).
+    Streams the sheet's XML once (:mod:`audit.xlsx_in`: no cell objects, no reliance on the sheet's
+    stored dimension, which some writers get wrong); merged ranges and formulas without a value go
+    into ``extras``.
     """
-    from openpyxl.styles.numbers import BUILTIN_FORMATS, BUILTIN_FORMATS_MAX_SIZE
-    from openpyxl.worksheet._reader import WorkSheetParser
-
-    wb = ws.parent
-    fmt_cache: dict[int, str] = {}
-
-    def number_format(style_id: int) -> str:
-        if style_id not in fmt_cache:
-            fid = wb._cell_styles[style_id].numFmtId
-            fmt_cache[style_id] = (BUILTIN_FORMATS.get(fid, "General") if fid < BUILTIN_FORMATS_MAX_SIZE
-                                   else wb._number_formats[fid - BUILTIN_FORMATS_MAX_SIZE])
-        return fmt_cache[style_id]
-
-    with wb._archive.open(ws._worksheet_path) as src:
-        parser = WorkSheetParser(src, ws._shared_strings, data_only=True, epoch=wb.epoch,
-                                 date_formats=wb._date_formats, timedelta_formats=wb._timedelta_formats)
-        for rownum, cells in parser.parse():
-            cells = [c for c in cells if not _is_blank(c["value"])]  # styled empty cells carry nothing
-            if not cells:
-                continue
-            width = max(c["column"] for c in cells)
-            if width > MAX_COLUMNS:
-                raise InventoryError(f"sheet '{ws.title}' cell {_col_letter(width)}{rownum} is right of column "
-                                     f"{_col_letter(MAX_COLUMNS)}; at most {MAX_COLUMNS} columns are read")
-            values: list[Any] = [None] * width
-            formats: list[str | None] = [None] * width
-            for c in cells:
-                j = c["column"] - 1
-                v = c["value"]
-                values[j] = v
-                if c["style_id"] and isinstance(v, (int, float)) and not isinstance(v, bool):
-                    formats[j] = number_format(c["style_id"])
-            yield rownum, values, formats
-
-
-_MERGE = re.compile(rb'<(?:\w+:)?mergeCell\s+ref="([A-Z]+)(\d+)(?::([A-Z]+)(\d+))?"')
-_FORMULA_CELL = re.compile(rb'<(?:\w+:)?c\b([^>]*?)(?<!/)>(.*?)</(?:\w+:)?c>', re.S)
-_HAS_FORMULA = re.compile(rb'<(?:\w+:)?f[ >/]')
-_VALUE = re.compile(rb'<(?:\w+:)?v>([^<]*)</(?:\w+:)?v>')
-_REF = re.compile(rb'\br="([A-Z]+)(\d+)"')
-_TYPE = re.compile(rb'\bt="(\w+)"')
+    formats_of = book.style_formats
+    numeric = (int, float)
+    for rownum, cells in book.rows(sheet, extras):
+        width = max(c for c, _, _ in cells)
+        if width > MAX_COLUMNS:
+            raise InventoryError(f"sheet '{sheet}' cell {_col_letter(width)}{rownum} is right of column "
+                                 f"{_col_letter(MAX_COLUMNS)}; at most {MAX_COLUMNS} columns are read")
+        yield rownum, [(col, v, (formats_of[style] if formats_of else "General")
+                        if style and v.__class__ in numeric else None) for col, v, style in cells]
 
 
 def _col_index(letters: bytes | str) -> int:
@@ -435,45 +404,13 @@ def _col_index(letters: bytes | str) -> int:
     return n
 
 
-def _sheet_xml(wb, ws) -> bytes:
-    with wb._archive.open(ws._worksheet_path) as f:
-        return f.read()
+def _read_xlsx_table(book, sheet_name: str, key: str, what: str) -> _Table:
+    from .xlsx_in import SheetExtras
 
-
-def _uncomputed_formulas(xml: bytes) -> set[tuple[int, int]]:
-    """(row, column) of formula cells that carry no stored value.
-
-    A spreadsheet program stores each formula's last value beside it; a workbook written by a
-    program (openpyxl, pandas...) stores the formula alone. A text result that is empty is
-    stored as a typed empty value (t="str") and is a genuine blank, not an uncomputed cell.
-    """
-    out: set[tuple[int, int]] = set()
-    if not _HAS_FORMULA.search(xml):
-        return out
-    for m in _FORMULA_CELL.finditer(xml):
-        attrs, body = m.group(1), m.group(2)
-        if not _HAS_FORMULA.search(body):
-            continue
-        v = _VALUE.search(body)
-        t = _TYPE.search(attrs)
-        if (v and v.group(1)) or (t and t.group(1) == b"str" and v is not None):
-            continue
-        ref = _REF.search(attrs)
-        if ref:
-            out.add((int(ref.group(2)), _col_index(ref.group(1))))
-    return out
-
-
-def _read_xlsx_table(wb_values, sheet_name: str, key: str, what: str) -> _Table:
-    ws = wb_values[sheet_name]
-    table = _build_table(sheet_name, _xlsx_rows(ws), key, what)  # streamed first: the row limit refuses early
-    xml = _sheet_xml(wb_values, ws)
-    for m in _MERGE.finditer(xml):
-        c0, r0 = _col_index(m.group(1)), int(m.group(2))
-        c1, r1 = (_col_index(m.group(3)), int(m.group(4))) if m.group(3) else (c0, r0)
-        ref = m.group(0).split(b'"')[1].decode()
-        table.merged.append((ref, r0, c0, r1, c1))
-    table.uncomputed = {(r, c) for r, c in _uncomputed_formulas(xml) if r > table.header_row}
+    extras = SheetExtras()
+    table = _build_table(sheet_name, _xlsx_rows(book, sheet_name, extras), key, what)  # the row limit refuses early
+    table.merged = extras.merged
+    table.uncomputed = {(r, c) for r, c in extras.uncomputed if r > table.header_row}
     by_row = {r: vals for r, vals, _ in table.rows}
     extra = False
     for r, c in sorted(table.uncomputed):
@@ -520,7 +457,7 @@ def _read_csv_table(path: Path, data: bytes) -> _Table:
         start = 1
         try:
             for values in reader:
-                yield start, values, [None] * len(values)
+                yield start, [(i + 1, v, None) for i, v in enumerate(values) if not _is_blank(v)]
                 start = reader.line_num + 1
         except csv.Error as exc:
             raise InventoryError(f"{path.name} line {reader.line_num}: not a readable CSV line ({exc})") from None
@@ -560,16 +497,16 @@ def _open_workbook(path: Path, data: bytes):
     if inflated > MAX_INFLATED_BYTES:
         raise InventoryError(f"{path.name} would inflate to {inflated / 1024 ** 2:,.0f} MiB once decompressed; "
                              f"a workbook may hold at most {MAX_INFLATED_BYTES // 1024 ** 2:,} MiB: refused")
-    from openpyxl import load_workbook
+    from .xlsx_in import open_workbook
     try:
-        return load_workbook(io.BytesIO(data), read_only=True, data_only=True)
-    except Exception as exc:  # openpyxl raises many types on damaged files
+        return open_workbook(zf)
+    except Exception as exc:  # a damaged package raises many types
         raise InventoryError(f"{path.name} cannot be opened as a workbook ({type(exc).__name__}: {exc})") from None
 
 
 _DAMAGE = (SyntaxError, ValueError, KeyError, IndexError, TypeError, OverflowError, EOFError, zipfile.BadZipFile,
            zlib.error)
-"""What openpyxl's sheet parser raises on a damaged sheet (its XML parse errors are SyntaxErrors)."""
+"""What reading a damaged sheet raises (XML parse errors are SyntaxErrors)."""
 
 
 class DamagedSheet(InventoryError):
@@ -698,6 +635,14 @@ def _plain(v: Any) -> Any:
     return None if isinstance(v, Unreadable) else v
 
 
+_KEPT_AS_IS = frozenset({type(None), bool, int, str})
+
+
+def _raw_value(v: Any) -> Any:
+    """A cell as kept in ``LoopRow.raw``: ``_json_value(_plain(v))``, the common kinds without a call."""
+    return v if v.__class__ in _KEPT_AS_IS else _json_value(_plain(v))
+
+
 def _text(v: Any) -> str:
     if isinstance(v, float) and v.is_integer():
         return str(int(v))
@@ -715,14 +660,27 @@ class _RowCheck:
     """Reads and checks one data row; collects problems located by cell."""
 
     def __init__(self, sheet: str, excel_row: int, vals: dict[int, Any], fmts: dict[int, str],
-                 colmap: dict[str, list[int]], order: dict[str, int]):
+                 colmap: dict[str, list[int]], order: dict[str, int], name_of: dict[int, str] | None = None):
         self.sheet, self.r, self.vals, self.fmts, self.colmap = sheet, excel_row, vals, fmts, colmap
         self.order = order
         self.byname: dict[str, list[tuple[int, Any]]] = {}
-        for name, cols in colmap.items():
-            g = [(c, vals[c]) for c in cols if c in vals]
-            if g:
-                self.byname[name] = g
+        if name_of is None:
+            for name, cols in colmap.items():
+                g = [(c, vals[c]) for c in cols if c in vals]
+                if g:
+                    self.byname[name] = g
+        else:   # the same, from the row's cells (fewer than the columns); a repeated header in its columns' order
+            byname = self.byname
+            for c, v in vals.items():
+                name = name_of.get(c)
+                if name is not None:
+                    if name in byname:
+                        byname[name].append((c, v))
+                    else:
+                        byname[name] = [(c, v)]
+            for name, g in byname.items():
+                if len(g) > 1:
+                    byname[name] = [(c, vals[c]) for c in colmap[name] if c in vals]
         self.problems: list[tuple[int, int, Problem]] = []
         self._seq = 0
 
@@ -759,7 +717,15 @@ class _RowCheck:
         return name in self.byname
 
     def raw(self, name: str) -> tuple[int, Any] | tuple[None, None]:
-        g = self.given(name)
+        g = self.byname.get(name)
+        if not g:
+            return None, None
+        if len(g) == 1:                 # the common case, the same outcome as below
+            c, v = g[0]
+            if isinstance(v, Unreadable):
+                self.err(name, v.message, c)
+                return None, None
+            return c, v
         for c, v in g:
             if isinstance(v, Unreadable):
                 self.err(name, v.message, c)
@@ -849,8 +815,14 @@ def _ti_from_rpm(r: float) -> float:
     return units.ti_from_reset_rpm(r) or 0.0
 
 
+_TIME_MEMBERS: dict[tuple[str, str], list[tuple[str, Callable[[float], float], str]]] = {}
+
+
 def _time_members(base: str, need: str) -> list[tuple[str, Callable[[float], float], str]]:
-    return [(f"{base}_{u}", (lambda x, u=u: units.time_to_s(x, u)), need) for u in units.TIME_UNITS]
+    key = (base, need)
+    if key not in _TIME_MEMBERS:
+        _TIME_MEMBERS[key] = [(f"{base}_{u}", (lambda x, u=u: units.time_to_s(x, u)), need) for u in units.TIME_UNITS]
+    return list(_TIME_MEMBERS[key])
 
 
 _MODEL_USES = {
@@ -925,10 +897,10 @@ def _largest_time_constant(model: str | None, tau1, tau2, den) -> float:
 
 def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], fmts: dict[int, str],
                   colmap: dict[str, list[int]], extra_cols: dict[int, str], base_dir: Path,
-                  unitless: dict[int, str], merged: list[tuple[str, int, int, int, int]]) -> LoopRow:
-    order = {n: cols[0] for n, cols in colmap.items()}
-    chk = _RowCheck(sheet, excel_row, vals, fmts, colmap, order)
-    name_of = {c: n for n, cols in colmap.items() for c in cols}
+                  unitless: dict[int, str], merged: list[tuple[str, int, int, int, int]],
+                  layout: tuple[dict[str, int], dict[int, str]] | None = None) -> LoopRow:
+    order, name_of = layout if layout is not None else _layout(colmap)
+    chk = _RowCheck(sheet, excel_row, vals, fmts, colmap, order, name_of)
 
     # Cells the reader could not take at face value.
     for ref, r0, c0, r1, c1 in merged:
@@ -1047,13 +1019,13 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
     got = {"gain": gain, "tau1": tau1, "tau2": tau2, "lead": lead, "num": num, "den": den}
     if model is not None:
         for q in _MODEL_FIELDS:
-            cols = alternatives(q) if q not in ("num", "den") else [q]
+            cols = _ALTERNATIVES.get(q, []) if q not in ("num", "den") else [q]
             given_cols = [c for c in cols if chk.present(c)]
             if given_cols and q not in _MODEL_USES[model]:
                 chk.warn(given_cols[0], f"not used by model {model}; ignored")
                 got[q] = None
         for q in _MODEL_REQUIRES[model]:
-            cols = alternatives(q) if q not in ("num", "den") else [q]
+            cols = _ALTERNATIVES.get(q, []) if q not in ("num", "den") else [q]
             if got[q] is None and not any(chk.present(c) for c in cols):
                 chk.err(cols[0], f"required for model {model}" +
                         (f" (or {', '.join(cols[1:])})" if len(cols) > 1 else ""))
@@ -1068,7 +1040,7 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
     settings = {"kc": kc, "ti": ti, "td": td, "kp": kp, "ki": ki, "kd": kd}
     for q, used_by in (("kc", FORMS[:2]), ("ti", FORMS[:2]), ("td", FORMS[:2]), ("kp", ("parallel",)),
                        ("ki", ("parallel",)), ("kd", ("parallel",))):
-        cols = [c for c in (alternatives(q) or [q]) if chk.present(c)]
+        cols = [c for c in (_ALTERNATIVES.get(q) or [q]) if chk.present(c)]
         if cols and form not in used_by:
             chk.warn(cols[0], f"not used by form {form}; ignored")
             settings[q] = None
@@ -1123,8 +1095,9 @@ def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], 
     problems = [p for *_, p in sorted(chk.problems, key=lambda t: (t[0], t[1]))]
     if only_formulas:
         problems = [p for p in problems if p.message == _UNCOMPUTED_MSG]
-    raw = {n: _json_value(_plain(vals.get(cols[0]))) for n, cols in colmap.items()}
-    extras = {h: _json_value(_plain(vals.get(c))) for c, h in extra_cols.items()}
+    kept, get = _KEPT_AS_IS, vals.get
+    raw = {n: v if (v := get(c)).__class__ in kept else _raw_value(v) for n, c in order.items()}
+    extras = {h: v if (v := get(c)).__class__ in kept else _raw_value(v) for c, h in extra_cols.items()}
     return LoopRow(
         index=index, sheet=sheet, excel_row=excel_row, tag=tag or None, service=service, area=area,
         criticality=criticality, model=model, gain=gain, tau1=tau1, tau2=tau2, lead=lead,
@@ -1223,22 +1196,31 @@ def _extra_name(header: str, taken) -> tuple[str, str]:
     return EXTRA_PREFIX + printable(header), why
 
 
-def _rows_from_table(table: _Table, base_dir: Path) -> tuple[list[LoopRow], list[Problem], tuple[str, ...]]:
+def _rows_from_table(table: _Table, base_dir: Path) -> tuple[list[LoopRow], list[Problem], tuple[str, ...],
+                                                               tuple]:
     colmap, extras, unitless, problems = _map_headers(table)
     tag_col = _col_letter(colmap["tag"][0]) if "tag" in colmap else ""
+    layout = _layout(colmap)
     rows = [
-        _validate_row(i, table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless, table.merged)
+        _validate_row(i, table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless, table.merged, layout)
         for i, (r, vals, fmts) in enumerate(table.rows)
     ]
-    rows = _mark_unevaluable(rows, colmap)
-    return _mark_duplicates(rows, tag_col), problems, tuple(extras.values())
+    rows, models = _mark_unevaluable(rows, colmap)
+    return _mark_duplicates(rows, tag_col), problems, tuple(extras.values()), models
 
 
-def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> list[LoopRow]:
+def _layout(colmap: dict[str, list[int]]) -> tuple[dict[str, int], dict[int, str]]:
+    """(first column of each name, name of each column): the same for every row of a sheet."""
+    return {n: cols[0] for n, cols in colmap.items()}, {c: n for n, cols in colmap.items() for c in cols}
+
+
+def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> tuple[list[LoopRow], tuple]:
     """Refuse valid rows whose loop the engine cannot evaluate in full (the engine's own grid sizing).
 
     Each value lies in its range, but together they can still span more than the engine resolves:
     a long dead time with a fast loop turns the delay spiral more times than the grid holds.
+    Returns the rows and the loop built for each row that stays valid (None for the others), which
+    the models stage reuses instead of building every loop again.
     """
     from .frequency import grid_points
     from .ranges import MAX_GRID_POINTS
@@ -1246,7 +1228,7 @@ def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> list
 
     idx = [i for i, r in enumerate(rows) if r.valid]
     if not idx:
-        return rows
+        return rows, ()
     models = []
     for i in idx:
         try:
@@ -1257,8 +1239,10 @@ def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> list
                 rows[i].sheet, str(rows[i].excel_row), "model", f"the loop cannot be built from this row: {exc}"),))
     flags = grid_points(models) > MAX_GRID_POINTS
     out = list(rows)
-    for i, bad in zip(idx, flags):
+    built: list = [None] * len(rows)
+    for i, bad, m in zip(idx, flags, models):
         if not bad:
+            built[i] = m
             continue
         row = rows[i]
         name = row.conventions.get("dead_time") or next(
@@ -1269,7 +1253,7 @@ def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> list
                f"for the exact evaluation (the delay spiral would need more than {MAX_GRID_POINTS:,.0f} grid "
                f"points); check the units of the times and gains")
         out[i] = replace(row, errors=row.errors + (Problem(row.sheet, cell, name, msg),))
-    return out
+    return out, tuple(built)
 
 
 def _mark_duplicates(rows: list[LoopRow], tag_col: str) -> list[LoopRow]:
@@ -1382,7 +1366,20 @@ def read_inventory(path: str | Path) -> Inventory:
         When the file itself cannot be read (missing, not a workbook, legacy or binary format,
         password-protected, no ``loops`` sheet, no ``tag`` header). The message is one line.
     """
-    p = Path(path)
+    was = gc.isenabled()
+    gc.disable()       # see _read_inventory
+    try:
+        return _read_inventory(Path(path), path)
+    finally:
+        if was:
+            gc.enable()
+
+
+def _read_inventory(p: Path, path: str | Path) -> Inventory:
+    """:func:`read_inventory` with Python's cycle collector held off by the caller: reading creates
+    several objects per cell (XML elements, values, problems) and none in a reference cycle; with the
+    collector on, its full passes over the growing set of rows read cost a third of the reading at
+    10,000 loops (they grow with the rows, so the reading grew faster than the rows)."""
     if not p.exists():
         raise InventoryError(f"{p}: file not found")
     if p.is_dir():
@@ -1428,7 +1425,7 @@ def read_inventory(path: str | Path) -> Inventory:
             ctable = _couplings_table(wb, sheets)
         finally:
             wb.close()
-    rows, header_problems, extra_columns = _rows_from_table(table, base_dir)
+    rows, header_problems, extra_columns, models = _rows_from_table(table, base_dir)
     if not rows:
         where = f"sheet '{table.sheet}' of {p.name}" if sheets else p.name
         raise InventoryError(f"{where}: no loops below the header row (row {table.header_row}); nothing to audit")
@@ -1446,7 +1443,8 @@ def read_inventory(path: str | Path) -> Inventory:
         policy_problems.extend(couplings.problems)
     return Inventory(path=str(path), name=p.name, sha256=sha, rows=tuple(rows), policy=policy,
                      problems=tuple(header_problems) + tuple(policy_problems), blank_rows=table.blank_rows,
-                     sheets=sheets, extra_columns=extra_columns, column_letters=letters, couplings=couplings)
+                     sheets=sheets, extra_columns=extra_columns, column_letters=letters, couplings=couplings,
+                     models=models)
 
 
 def _couplings_table(wb, sheets: tuple[str, ...]) -> "_Table | Problem | None":

@@ -316,6 +316,15 @@ def priority_of(rec: Mapping[str, Any], policy: Policy) -> Priority:
                     _improvement(rec) if action else "", b)
 
 
+def _records(results: pd.DataFrame) -> list[dict[str, Any]]:
+    """Each row of the results as a dict (column -> value), built a column at a time: one ``iloc``
+    Series per row cost more than the scoring itself. The values are those of the row (numbers as
+    Python numbers, missing as NaN, None or NA), read by :func:`_num`, :func:`_txt` and :func:`_flag`."""
+    names = list(results.columns)
+    columns = [results.iloc[:, j].tolist() for j in range(len(names))]
+    return [dict(zip(names, values)) for values in zip(*columns)] if names else [{} for _ in range(len(results))]
+
+
 def work_list(results: pd.DataFrame, policy: Policy) -> pd.DataFrame:
     """Score and rank every row; the work list is the rows with a rank.
 
@@ -333,7 +342,7 @@ def work_list(results: pd.DataFrame, policy: Policy) -> pd.DataFrame:
         urgent row and missing for rows that need no action. Loops of a group (``group_id``) that need
         action share the group's highest score and stand together. Ties are broken by group, tag, then row.
     """
-    pr = [priority_of(results.iloc[i], policy) for i in range(len(results))]
+    pr = [priority_of(rec, policy) for rec in _records(results)]
     groups = [("" if pd.isna(g) else str(g)) for g in results["group_id"]] if "group_id" in results.columns \
         else [""] * len(results)
     top: dict[str, float] = {}

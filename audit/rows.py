@@ -169,3 +169,6 @@ class Inventory:
     extra_columns: tuple[str, ...] = ()  # unknown headers, carried to the results
     column_letters: dict[str, str] = field(default_factory=dict)  # canonical column -> sheet column letter
     couplings: "CouplingSheet | None" = None  # noqa: F821  (audit.multiloop.couplings; None without the sheet)
+    # the loop of each row as the reader built it to check that the engine can evaluate it (a cascade's
+    # inner loop not composed; None where the row was invalid then); the models stage reuses them
+    models: tuple = field(default=(), compare=False, repr=False)

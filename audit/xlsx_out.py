@@ -450,9 +450,37 @@ def _absolute(ref: str) -> str:
     return ":".join(re.sub(r"([A-Z]+)(\d+)", r"$\1$\2", part) for part in ref.split(":"))
 
 
+_THEME: list[str] = []
+
+
+def _default_theme() -> str:
+    """The default Office theme (the part the default font refers to), as openpyxl ships it.
+
+    Read from openpyxl's module file without importing the openpyxl package: the package's import
+    (about 0.2 s of CPU) would be the only use of openpyxl in a run, the inventory being read directly
+    (:mod:`audit.xlsx_in`). The module is a single string constant; any surprise falls back to the import.
+    """
+    if not _THEME:
+        try:
+            import importlib.util
+            from pathlib import Path as _Path
+            found = importlib.util.find_spec("openpyxl")        # finds the package without importing it
+            spec = importlib.util.spec_from_file_location(
+                "_plant_audit_openpyxl_theme", _Path(found.origin).parent / "writer" / "theme.py")
+            module = importlib.util.module_from_spec(spec)
+            spec.loader.exec_module(module)
+            text = module.theme_xml
+            if not (isinstance(text, str) and "<a:theme" in text):
+                raise ValueError("unexpected theme module")
+        except Exception:
+            from openpyxl.writer.theme import theme_xml as text
+        _THEME.append(text)
+    return _THEME[0]
+
+
 def _package_parts(sheets: Sequence[Sheet], styles: Styles, creator: str) -> Iterable[tuple[str, str]]:
     """(part name, XML) of every part of the package, worksheets last."""
-    from openpyxl.writer.theme import theme_xml   # the default Office theme the default font refers to
+    theme_xml = _default_theme()
 
     n = len(sheets)
     ws_type = "application/vnd.openxmlformats-officedocument.spreadsheetml.worksheet+xml"

@@ -331,3 +331,28 @@ def test_columns_markdown_lists_every_column():
     for c in INVENTORY_COLUMNS:
         assert f"`{c.name}`" in md
     assert all(line.count("|") - line.count("\\|") == 6 for line in md.splitlines())
+
+
+def test_models_built_once_and_reused_by_the_models_stage():
+    """The loops the reader builds to check evaluability are the loops of the models stage: equal to
+    building them again from the rows (common practice), the same objects for loops that are not a
+    cascade's composed outer loop, and the composed outer loops still built with their inner loop."""
+    from pathlib import Path
+
+    from audit import pipeline
+
+    inv = read_inventory(Path(__file__).resolve().parents[2] / "sample_site" / "loops.xlsx")
+    assert len(inv.models) == len(inv.rows)
+    for row, m in zip(inv.rows, inv.models):
+        if m is not None:
+            assert row.valid
+            assert m == model_from_row(row)
+    audit = pipeline.new_audit(inv, pipeline.AuditOptions(date="2026-01-05"))
+    pipeline.build_models(audit)
+    composed = audit.extras["cascade"].composed
+    reused = [i for i, m in enumerate(inv.models) if m is not None and i not in composed]
+    assert reused and all(audit.models[i] is inv.models[i] for i in reused)
+    for i in composed:
+        if audit.models[i] is not None:
+            assert audit.models[i].inner is not None
+            assert audit.models[i] == model_from_row(inv.rows[i], audit.models[audit.extras["cascade"].inner_of[i]])
