@@ -141,6 +141,19 @@ class IdentifyPolicy:
         Hampel identifier threshold in robust standard deviations. [-]
     models : tuple of str
         Structures tried.
+    window_above : int
+        The model check identifies a record longer than this many samples on its most
+        informative window of excitation (:mod:`.windows`); shorter records whole. [-]
+    window_samples : int
+        Most samples of that window. [-]
+    window_before, window_after : float
+        The window runs from this many time scales of the loop before its first move to this
+        many after its last. [-]
+    window_noise_ratio : float
+        A move counts when its step exceeds this many robust standard deviations of routine
+        movement (and ``min_op_move_pct``, or ``min_sp_move_pct`` for the set point). [-]
+    min_sp_move_pct : float
+        Smallest set-point step that counts as a move. [% of range]
     """
 
     min_op_move_pct: float = 1.0
@@ -150,6 +163,12 @@ class IdentifyPolicy:
     holdout: float = 0.3
     spike_sigmas: float = 6.0
     models: tuple[str, ...] = MODELS
+    window_above: int = 20_000
+    window_samples: int = 8_000
+    window_before: float = 1.0
+    window_after: float = 5.0
+    window_noise_ratio: float = 5.0
+    min_sp_move_pct: float = 1.0
 
 
 @dataclass(frozen=True)
