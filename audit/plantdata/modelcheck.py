@@ -329,8 +329,12 @@ def identify_windowed(row, rec, policy, id_policy: IdentifyPolicy) -> tuple[Iden
     win = choice.windows[0]
     ones = seg.last_line - seg.first_line == seg.n - 1        # a line per sample: the window's lines are known
     note = describe(win, choice, len(op), a.dt, a.t0, rec.start, (seg.first_line, 1) if ones else None)
-    lines = (seg.first_line + win.lo, seg.first_line + win.hi - 1) if ones else a.lines
-    part = Arrays(op[win.lo:win.hi], pv[win.lo:win.hi], a.dt, a.name, (*a.notes, note), a.t0 + win.lo * a.dt, lines)
+    m, end = win.samples()
+    lines = (seg.first_line + win.lo, seg.first_line + end - 1) if ones else a.lines
+    q = win.stride
+    # block means (q = 1: the samples themselves), each block's time its middle
+    part = Arrays(op[win.lo:end].reshape(m, q).mean(axis=1), pv[win.lo:end].reshape(m, q).mean(axis=1), a.dt * q,
+                  a.name, (*a.notes, note), a.t0 + (win.lo + (q - 1) / 2) * a.dt, lines)
     return identify_many([part], id_policy)[0], note
 
 

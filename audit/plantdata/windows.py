@@ -38,8 +38,10 @@ Each move used opens a window from ``window_before`` (default 1) times T before 
 time plus four time constants); windows less than ``window_after`` times T apart merge, and so do
 the moves of one stretch in manual (the steps of a bump test make one window; moves past the sample
 budget are left out of a window cut to it). A window holds excitation when the output's largest step in it passes the output's
-threshold above (a set-point change the output hardly answered does not count). A window is cut
-to ``window_samples`` samples (default 8,000). Windows rank: open loop first (moves in manual:
+threshold above (a set-point change the output hardly answered does not count). A window longer
+than ``window_samples`` samples (default 8,000) is averaged over q consecutive samples to fit, as
+long as T keeps 20 averaged samples (a slow loop logged every second is oversampled; the block
+mean of the held output drives the model over the block), and cut to the budget beyond that. Windows rank: open loop first (moves in manual:
 no feedback from the noise, the best data), then by the sum of the output's steps in units of the
 threshold (more and larger moves inform more). The model is identified on the best window alone;
 the note names it, its time range and how many others there were. With no window holding
@@ -115,6 +117,8 @@ class Window:
         Sum of the output's steps at its moves, in units of the output's threshold. [-]
     cut : bool
         Cut to the sample budget. [-]
+    stride : int
+        Samples averaged into one for the identification (1: none). [-]
     """
 
     lo: int
@@ -126,6 +130,12 @@ class Window:
     sp_step_pct: float
     score: float
     cut: bool = False
+    stride: int = 1
+
+    def samples(self) -> tuple[int, int]:
+        """Samples identified (whole blocks of ``stride``) and the end of the last block. [-]"""
+        m = (self.hi - self.lo) // self.stride
+        return m, self.lo + m * self.stride
 
 
 @dataclass(frozen=True)
@@ -150,6 +160,10 @@ class WindowChoice:
         Largest set-point step anywhere (NaN without sp). [% of range]
     load_moves : int
         Output moves in automatic without a set-point change (not used). [-]
+    op_routine_pct : float
+        Robust standard deviation of the output's step over the record (its routine movement). [%]
+    noise_ratio : float
+        The setting a move's step is compared with, in routine movements. [-]
     weak_sp : int
         Set-point changes the output hardly answered (not used). [-]
     """
@@ -163,6 +177,8 @@ class WindowChoice:
     sp_largest_pct: float
     load_moves: int = 0
     weak_sp: int = 0
+    op_routine_pct: float = float("nan")
+    noise_ratio: float = 5.0
 
     def reason(self) -> str:
         """Why no window holds excitation ('' when one does)."""
@@ -178,8 +194,8 @@ class WindowChoice:
             more.append(f"{self.weak_sp} set-point change{'s' if self.weak_sp != 1 else ''} the output hardly "
                         f"answered")
         return ("no set-point change or manual move large enough in the record: the output stepped at most "
-                f"{self.op_largest_pct:.3g} % (a move needs {self.op_threshold_pct:.3g} %, at least "
-                f"the policy's minimum and 5 times its routine movement){sp}"
+                f"{self.op_largest_pct:.3g} % (a move needs {self.op_threshold_pct:.3g} %: the policy's minimum, "
+                f"or {self.noise_ratio:g} times the output's routine movement of {self.op_routine_pct:.3g} %){sp}"
                 + (f"; {', '.join(more)}" if more else "")
                 + "; routine closed-loop data without excitation from outside do not identify the process: "
                   "not identified (make a bump test or a set-point change)")
@@ -264,7 +280,8 @@ def find_windows(op: np.ndarray, pv: np.ndarray, sp: np.ndarray | None, manual: 
     if n < 4 * w:
         return WindowChoice((), w, T, float("nan"), float("nan"), 0.0, float("nan"))
     op_step = _step(op, w)
-    op_thr = max(settings.min_op_move_pct, settings.noise_ratio * _robust_sd(op_step))
+    routine = _robust_sd(op_step)
+    op_thr = max(settings.min_op_move_pct, settings.noise_ratio * routine)
     op_at, op_size = _peaks(op_step, op_thr, w)
     op_largest = float(np.abs(op_step).max())
     sp_at = np.zeros(0, dtype=np.int64)
@@ -275,6 +292,8 @@ def find_windows(op: np.ndarray, pv: np.ndarray, sp: np.ndarray | None, manual: 
         sp_thr = max(settings.min_sp_move_pct, settings.noise_ratio * pv_noise)
         sp_step = _step(sp, w)
         sp_at, _ = _peaks(sp_step, sp_thr, w)
+        if manual is not None and len(sp_at):  # in manual the set point drives nothing
+            sp_at = sp_at[~np.asarray(manual, bool)[np.clip(sp_at, 0, n - 1)]]
         sp_largest = float(np.abs(sp_step).max())
     # which output moves come from outside the loop
     near_sp = np.zeros(len(op_at), dtype=bool)
@@ -298,7 +317,8 @@ def find_windows(op: np.ndarray, pv: np.ndarray, sp: np.ndarray | None, manual: 
     at = np.concatenate([sp_at, op_at[by_hand]])
     hand = np.concatenate([np.zeros(len(sp_at), bool), np.ones(int(by_hand.sum()), bool)])
     if not len(at):
-        return WindowChoice((), w, T, op_thr, sp_thr, op_largest, sp_largest, load_moves)
+        return WindowChoice((), w, T, op_thr, sp_thr, op_largest, sp_largest, load_moves, 0, routine,
+                            settings.noise_ratio)
     order = np.argsort(at, kind="stable")
     at, hand = at[order], hand[order]
     lo = np.maximum(at - int(round(settings.before * T / dt)), 0)
@@ -333,18 +353,21 @@ def find_windows(op: np.ndarray, pv: np.ndarray, sp: np.ndarray | None, manual: 
             weak_sp += int(np.sum(~hand[m]))
             continue
         a, b = int(g_lo[g]), int(g_hi[g])
-        cut = b - a > settings.samples
+        # over the budget: averaged over q samples while T keeps 20 of them, then cut
+        stride = max(1, min(-(-(b - a) // int(settings.samples)), int(T / (MIN_SCALE_SAMPLES * dt))))
+        cut = b - a > settings.samples * stride
         if cut:                                # the moves past the budget are left out
-            b = a + int(settings.samples)
+            b = a + int(settings.samples) * stride
             m = slice(m.start, m.start + max(1, int(np.searchsorted(at[m], b - int(round(settings.after * T / dt))))))
             op_big = float(move_op[m].max())
         kinds = tuple(k for k, there in ((kind_hand, bool(np.any(hand[m]))),
                                          ("set-point change", bool(np.any(~hand[m])))) if there)
         score = float(np.sum(move_op[m]) / op_thr)
         windows.append(Window(a, b, bool(manual is not None and np.any(hand[m])), m.stop - m.start, kinds, op_big,
-                              float(sp_move[m].max()), score, cut))
+                              float(sp_move[m].max()), score, cut, stride))
     windows.sort(key=lambda x: (not x.open_loop, -x.score, x.lo))
-    return WindowChoice(tuple(windows), w, T, op_thr, sp_thr, op_largest, sp_largest, load_moves, weak_sp)
+    return WindowChoice(tuple(windows), w, T, op_thr, sp_thr, op_largest, sp_largest, load_moves, weak_sp, routine,
+                        settings.noise_ratio)
 
 
 def describe(win: Window, choice: WindowChoice, n: int, dt: float, t0: float, start=None,
@@ -368,7 +391,8 @@ def describe(win: Window, choice: WindowChoice, n: int, dt: float, t0: float, st
     lines : tuple of int, optional
         First line of the segment and its step per sample (to name the window's lines).
     """
-    a_s, b_s = t0 + win.lo * dt, t0 + (win.hi - 1) * dt
+    _, end = win.samples()
+    a_s, b_s = t0 + win.lo * dt, t0 + (end - 1) * dt
     if start is not None:
         import pandas as pd
         fmt = "%Y-%m-%d %H:%M:%S"
@@ -376,14 +400,16 @@ def describe(win: Window, choice: WindowChoice, n: int, dt: float, t0: float, st
                 f"{(start + pd.Timedelta(seconds=b_s)).strftime(fmt)}")
     else:
         when = f"t = {a_s:.6g} to {b_s:.6g} s"
-    where = f" (lines {lines[0] + win.lo:,}-{lines[0] + win.hi - 1:,})" if lines is not None else ""
-    what = " and ".join(win.kinds)
-    size = f"output step {win.op_step_pct:.3g} %" + (f", set-point step {win.sp_step_pct:.3g} %"
-                                                    if win.sp_step_pct > 0 else "")
+    where = f" (lines {lines[0] + win.lo:,}-{lines[0] + end - 1:,})" if lines is not None else ""
+    kinds = [k + ("s" if win.moves > 1 else "") for k in win.kinds]
+    what = f"{win.moves} move{'s' if win.moves > 1 else ''}: " + " and ".join(kinds) if len(kinds) > 1 else \
+        f"{win.moves} {kinds[0]}"
+    size = f"output step up to {win.op_step_pct:.3g} %" + (
+        f", set-point step up to {win.sp_step_pct:.3g} %" if "set-point change" in win.kinds else "")
     others = len(choice.windows) - 1
-    return (f"identified on the window {when}{where}, {win.hi - win.lo:,} of {n:,} samples: {win.moves} "
-            f"{what}{'s' if win.moves > 1 and len(win.kinds) == 1 else ''} ({size}"
+    return (f"identified on the window {when}{where}, {end - win.lo:,} of {n:,} samples: {what} ({size}"
             f"{', open loop' if win.open_loop else ', closed loop'})"
-            + (f", cut to {win.hi - win.lo:,} samples" if win.cut else "")
+            + (f", averaged over {win.stride} samples ({win.stride * dt:.3g} s)" if win.stride > 1 else "")
+            + (f", cut to {win.samples()[0]:,} samples" if win.cut else "")
             + (f"; the best of {others + 1} windows with excitation" if others else
                "; the only window with excitation"))

@@ -140,4 +140,6 @@ def test_window_settings_come_from_the_policy_and_short_records_stay_whole(tmp_p
     whole = check_record(_row(), found, Policy(model_window_above=50_000))
     assert len(whole.identification.t) == 40_000 and "identified on the window" not in whole.note
     cut = check_record(_row(), found, Policy(model_window_samples=300))
-    assert len(cut.identification.t) == 300 and "cut to 300 samples" in cut.note
+    # 1,491 samples over a budget of 300: averaged over 2 (T = 48 s keeps 20 of them), then cut
+    assert len(cut.identification.t) == 300 and cut.identification.dt == 2.0
+    assert "averaged over 2 samples (2 s), cut to 300 samples" in cut.note
