@@ -326,16 +326,28 @@ def identify_windowed(row, rec, policy, id_policy: IdentifyPolicy) -> tuple[Iden
     choice = find_windows(op, pv, sp, _manual_of(rec, seg, policy), a.dt, time_scale(row), window_settings(id_policy))
     if not choice.windows:
         return refuse(choice.reason())
-    win = choice.windows[0]
     ones = seg.last_line - seg.first_line == seg.n - 1        # a line per sample: the window's lines are known
-    note = describe(win, choice, len(op), a.dt, a.t0, rec.start, (seg.first_line, 1) if ones else None)
-    m, end = win.samples()
-    lines = (seg.first_line + win.lo, seg.first_line + end - 1) if ones else a.lines
-    q = win.stride
-    # block means (q = 1: the samples themselves), each block's time its middle
-    part = Arrays(op[win.lo:end].reshape(m, q).mean(axis=1), pv[win.lo:end].reshape(m, q).mean(axis=1), a.dt * q,
-                  a.name, (*a.notes, note), a.t0 + (win.lo + (q - 1) / 2) * a.dt, lines)
-    return identify_many([part], id_policy)[0], note
+    parts, notes = [], []
+    for rank, win in enumerate(choice.windows[:max(1, id_policy.window_tries)]):
+        note = describe(win, choice, len(op), a.dt, a.t0, rec.start, (seg.first_line, 1) if ones else None, rank)
+        m, end = win.samples()
+        lines = (seg.first_line + win.lo, seg.first_line + end - 1) if ones else a.lines
+        q = win.stride
+        # block means (q = 1: the samples themselves), each block's time its middle
+        parts.append(Arrays(op[win.lo:end].reshape(m, q).mean(axis=1), pv[win.lo:end].reshape(m, q).mean(axis=1),
+                            a.dt * q, a.name, (*a.notes, note), a.t0 + (win.lo + (q - 1) / 2) * a.dt, lines))
+        notes.append(note)
+    # the windows are fitted together; the first in rank that gives a model is used, else the best's refusal
+    got = identify_many(parts, id_policy)
+    for k, ident in enumerate(got):
+        if ident.best is not None:
+            if k:
+                why = got[0].notes[-1] if got[0].notes else "no model"
+                note = f"{notes[k]} (the better-ranked window{'s' if k > 1 else ''} gave no model: {why})"
+                ident = replace(ident, notes=tuple(note if x == notes[k] else x for x in ident.notes))
+                return ident, note
+            return ident, notes[0]
+    return got[0], notes[0]
 
 
 def check_record(row, found: RowRecord, policy, id_policy: IdentifyPolicy | None = None) -> ModelCheck:

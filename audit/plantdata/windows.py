@@ -36,19 +36,20 @@ Windows
 Each move used opens a window from ``window_before`` (default 1) times T before it to
 ``window_after`` (default 5) times T after it (a first-order process settles to 2 % in the dead
 time plus four time constants); windows less than ``window_after`` times T apart merge, and so do
-the moves of one stretch in manual (the steps of a bump test make one window; moves past the sample
-budget are left out of a window cut to it). A window holds excitation when the output's largest step in it passes the output's
-threshold above (a set-point change the output hardly answered does not count). A window longer
-than ``window_samples`` samples (default 8,000) is averaged over q consecutive samples to fit, as
-long as T keeps 20 averaged samples (a slow loop logged every second is oversampled; the block
-mean of the held output drives the model over the block), and cut to the budget beyond that. Windows rank: open loop first (moves in manual:
-no feedback from the noise, the best data), then by the sum of the output's steps in units of the
-threshold (more and larger moves inform more). The model is identified on the best window alone;
-the note names it, its time range and how many others there were. With no window holding
-excitation the model check says ``not identifiable`` and why, rather than fitting routine
-closed-loop data: identification of a closed loop with no external excitation confounds the
-process with the controller and the disturbance (L. Ljung, System Identification: Theory for the
-User, 2nd ed., 1999, sec. 13.4, "informative experiments" in closed loop).
+the moves of one stretch in manual (the steps of a bump test make one window). A window holds
+excitation when the output's largest step in it passes the output's threshold above (a set-point
+change the output hardly answered does not count). A window longer than ``window_samples``
+samples (default 8,000) is averaged over q consecutive samples to fit, as long as T keeps 20
+averaged samples (a slow loop logged every second is oversampled; the block mean of the held
+output drives the model over the block), and cut to the budget beyond that (the moves past the
+cut left out). Windows rank: open loop first (moves in manual: no feedback from the noise, the
+best data), then by the sum of the output's steps in units of the threshold (more and larger
+moves inform more). The model is identified on the best window alone; the note names it, its
+time range and how many others there were. With no window holding excitation the model check
+says ``not identifiable`` and why, rather than fitting routine closed-loop data: without
+excitation from outside the loop, closed-loop data do not tell the process from the controller
+and the disturbance (L. Ljung, System Identification: Theory for the User, 2nd ed., 1999,
+sec. 13.4, identifiability in closed loop; from memory).
 
 The defaults follow common practice: a step test's move should stand at least five times above
 the noise band, and the record should run from steady state before the move until the process
@@ -164,6 +165,8 @@ class WindowChoice:
         Robust standard deviation of the output's step over the record (its routine movement). [%]
     noise_ratio : float
         The setting a move's step is compared with, in routine movements. [-]
+    op_min_pct : float
+        The smallest output step that counts (the policy's). [%]
     weak_sp : int
         Set-point changes the output hardly answered (not used). [-]
     """
@@ -179,6 +182,7 @@ class WindowChoice:
     weak_sp: int = 0
     op_routine_pct: float = float("nan")
     noise_ratio: float = 5.0
+    op_min_pct: float = 1.0
 
     def reason(self) -> str:
         """Why no window holds excitation ('' when one does)."""
@@ -194,8 +198,9 @@ class WindowChoice:
             more.append(f"{self.weak_sp} set-point change{'s' if self.weak_sp != 1 else ''} the output hardly "
                         f"answered")
         return ("no set-point change or manual move large enough in the record: the output stepped at most "
-                f"{self.op_largest_pct:.3g} % (a move needs {self.op_threshold_pct:.3g} %: the policy's minimum, "
-                f"or {self.noise_ratio:g} times the output's routine movement of {self.op_routine_pct:.3g} %){sp}"
+                f"{self.op_largest_pct:.3g} % (a move needs {self.op_threshold_pct:.3g} %, the larger of the policy's "
+                f"minimum {self.op_min_pct:g} % and {self.noise_ratio:g} times the output's routine movement of "
+                f"{self.op_routine_pct:.3g} %){sp}"
                 + (f"; {', '.join(more)}" if more else "")
                 + "; routine closed-loop data without excitation from outside do not identify the process: "
                   "not identified (make a bump test or a set-point change)")
@@ -318,7 +323,7 @@ def find_windows(op: np.ndarray, pv: np.ndarray, sp: np.ndarray | None, manual: 
     hand = np.concatenate([np.zeros(len(sp_at), bool), np.ones(int(by_hand.sum()), bool)])
     if not len(at):
         return WindowChoice((), w, T, op_thr, sp_thr, op_largest, sp_largest, load_moves, 0, routine,
-                            settings.noise_ratio)
+                            settings.noise_ratio, settings.min_op_move_pct)
     order = np.argsort(at, kind="stable")
     at, hand = at[order], hand[order]
     lo = np.maximum(at - int(round(settings.before * T / dt)), 0)
@@ -367,11 +372,11 @@ def find_windows(op: np.ndarray, pv: np.ndarray, sp: np.ndarray | None, manual: 
                               float(sp_move[m].max()), score, cut, stride))
     windows.sort(key=lambda x: (not x.open_loop, -x.score, x.lo))
     return WindowChoice(tuple(windows), w, T, op_thr, sp_thr, op_largest, sp_largest, load_moves, weak_sp, routine,
-                        settings.noise_ratio)
+                        settings.noise_ratio, settings.min_op_move_pct)
 
 
 def describe(win: Window, choice: WindowChoice, n: int, dt: float, t0: float, start=None,
-             lines: tuple[int, int] | None = None) -> str:
+             lines: tuple[int, int] | None = None, rank: int = 0) -> str:
     """The note naming the window identified on: its time range, what moved, and the others.
 
     Parameters
@@ -390,6 +395,8 @@ def describe(win: Window, choice: WindowChoice, n: int, dt: float, t0: float, st
         The record's first time (absolute times in the note when given).
     lines : tuple of int, optional
         First line of the segment and its step per sample (to name the window's lines).
+    rank : int
+        The window's place among those found (0: the best). [-]
     """
     _, end = win.samples()
     a_s, b_s = t0 + win.lo * dt, t0 + (end - 1) * dt
@@ -411,5 +418,6 @@ def describe(win: Window, choice: WindowChoice, n: int, dt: float, t0: float, st
             f"{', open loop' if win.open_loop else ', closed loop'})"
             + (f", averaged over {win.stride} samples ({win.stride * dt:.3g} s)" if win.stride > 1 else "")
             + (f", cut to {win.samples()[0]:,} samples" if win.cut else "")
-            + (f"; the best of {others + 1} windows with excitation" if others else
-               "; the only window with excitation"))
+            + ("; the only window with excitation" if not others else
+               f"; the best of {others + 1} windows with excitation" if not rank else
+               f"; number {rank + 1} of {others + 1} windows with excitation"))
