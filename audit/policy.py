@@ -55,6 +55,17 @@ class Policy:
     model_fit_gap_pct : float
         ... when the model's fit % on the data trails the identified model's by more
         than this. [%]
+    model_window_above : int
+        A record longer than this many samples is identified on its most informative window of
+        excitation (set-point changes, manual moves), not whole (:mod:`audit.plantdata.windows`). [-]
+    model_window_samples : int
+        Most samples of that window. [-]
+    model_window_after : float
+        The window runs this many time scales of the loop (dead time + lags) past its last move. [-]
+    model_window_noise_ratio : float
+        A move counts when its step exceeds this many robust standard deviations of routine movement. [-]
+    model_window_sp_move_pct : float
+        Smallest set-point step that counts as a move. [% of range]
     mode_automatic, mode_manual, mode_cascade : str
         The site's mode words (comma-separated, any case) for automatic, manual and cascade
         in operating records.
@@ -107,6 +118,11 @@ class Policy:
     model_dead_time_tol: float = 0.5
     model_tau_ratio_max: float = 2.0
     model_fit_gap_pct: float = 20.0
+    model_window_above: int = 20_000
+    model_window_samples: int = 8_000
+    model_window_after: float = 5.0
+    model_window_noise_ratio: float = 5.0
+    model_window_sp_move_pct: float = 1.0
     mode_automatic: str = "auto, automatic, aut, a"
     mode_manual: str = "man, manual, m"
     mode_cascade: str = "cas, cascade, casc, remote, rsp"
@@ -160,6 +176,14 @@ POLICY_HELP: dict[str, str] = {
     "model_dead_time_tol": "Data dispute the model when the dead times differ by more than this share [-].",
     "model_tau_ratio_max": "Data dispute the model when identified/model tau1 is outside [1/x, x] [-].",
     "model_fit_gap_pct": "Data dispute the model when its fit % trails the identified model's by more [%].",
+    "model_window_above": "A record longer than this many samples is identified on its most informative window "
+                          "of excitation (set-point change, manual move), not whole [-].",
+    "model_window_samples": "Most samples of the window identified [-].",
+    "model_window_after": "The window runs this many time scales of the loop (dead time + lags) past its last "
+                          "move [-]; 5 lets a first-order process settle.",
+    "model_window_noise_ratio": "A move counts when its step exceeds this many robust standard deviations of "
+                                "routine movement [-]; 5 is common practice for a step test.",
+    "model_window_sp_move_pct": "Smallest set-point step that counts as a move [% of range].",
     "mode_automatic": "Mode words of the operating records that mean automatic (comma-separated, any case).",
     "mode_manual": "Mode words that mean manual (comma-separated, any case).",
     "mode_cascade": "Mode words that mean cascade or remote set point (comma-separated, any case).",

@@ -43,8 +43,10 @@ from dataclasses import dataclass, replace
 import numpy as np
 import pandas as pd
 
-from .identify import Identification, IdentifyPolicy, _run, identify_record, nrmse_fit
+from .identify import (Arrays, Identification, IdentifyPolicy, _arrays_of, _run, excitation, identify_many,
+                       identify_record, nrmse_fit)
 from .sources import RowRecord, has_source
+from .windows import WindowSettings, describe, find_windows, time_scale
 
 MODELCHECK_COLUMNS = ("model_check", "model_fit_pct", "id_model", "id_gain", "id_gain_ci95", "id_tau1_s",
                       "id_tau1_ci95_s", "id_tau2_s", "id_lead_s", "id_dead_time_s", "id_dead_time_ci95_s",
@@ -239,7 +241,116 @@ def _fit_offsets(row, y: np.ndarray, s: np.ndarray, dt: float) -> np.ndarray:
     return s + X @ coef
 
 
-def check_record(row, found: RowRecord, policy, id_policy: IdentifyPolicy = IdentifyPolicy()) -> ModelCheck:
+def identify_policy_of(policy) -> IdentifyPolicy:
+    """The identification settings of the model check: the defaults, the window selection from the policy.
+
+    Parameters
+    ----------
+    policy : Policy
+        ``model_window_*`` settings (absent ones keep :class:`IdentifyPolicy`'s defaults).
+
+    Returns
+    -------
+    IdentifyPolicy
+    """
+    d = IdentifyPolicy()
+    get = lambda name, default: getattr(policy, name, default)  # noqa: E731
+    return replace(d, window_above=int(get("model_window_above", d.window_above)),
+                   window_samples=int(get("model_window_samples", d.window_samples)),
+                   window_after=float(get("model_window_after", d.window_after)),
+                   window_noise_ratio=float(get("model_window_noise_ratio", d.window_noise_ratio)),
+                   min_sp_move_pct=float(get("model_window_sp_move_pct", d.min_sp_move_pct)))
+
+
+def window_settings(id_policy: IdentifyPolicy) -> WindowSettings:
+    """The window selection's settings out of the identification settings."""
+    p = id_policy
+    return WindowSettings(p.window_above, p.window_samples, p.window_before, p.window_after, p.window_noise_ratio,
+                          p.min_op_move_pct, p.min_sp_move_pct)
+
+
+def _manual_of(rec, seg, policy) -> np.ndarray | None:
+    """True where the segment's mode word means manual (the policy's words); None without a mode."""
+    if seg.mode is None or not rec.mode_labels:
+        return None
+    from .use import MANUAL, ModeWords
+    words = ModeWords.from_text(getattr(policy, "mode_automatic", "auto"), getattr(policy, "mode_manual", "man"),
+                                getattr(policy, "mode_cascade", "cas"))
+    try:
+        cat = pd.Categorical.from_codes(np.asarray(seg.mode, dtype=np.int64), categories=list(rec.mode_labels))
+    except (ValueError, TypeError):        # labels that are not a clean category list: treated as no mode
+        return None
+    return words.classes(cat) == MANUAL
+
+
+def identify_windowed(row, rec, policy, id_policy: IdentifyPolicy) -> tuple[Identification, str]:
+    """Identification on the record's most informative window of excitation (:mod:`.windows`).
+
+    For a record whose longest segment is longer than ``id_policy.window_above`` samples: the
+    excitation test of the whole segment, then the windows, then the identification of the best
+    one. With no window, an identification refused with the reason (the whole segment's data
+    kept for the overlay plot).
+
+    Parameters
+    ----------
+    row : LoopRow
+        Its model gives the time scale of the windows.
+    rec : Record
+        The record.
+    policy : Policy
+        Mode words.
+    id_policy : IdentifyPolicy
+        Identification and window settings.
+
+    Returns
+    -------
+    tuple of (Identification, str)
+        The identification and the note naming the window ('' when none was used).
+    """
+    a = _arrays_of(rec)
+    if isinstance(a, Identification):
+        return a, ""
+    seg = rec.longest()
+    op, pv = np.asarray(a.op, float), np.asarray(a.pv, float)
+    t = a.t0 + np.arange(len(op)) * a.dt
+
+    def refuse(reason: str) -> tuple[Identification, str]:
+        return Identification(a.name, None, {}, (*a.notes, reason), False, t, pv, op, a.dt, a.lines), ""
+
+    if not (np.all(np.isfinite(op)) and np.all(np.isfinite(pv))):
+        return identify_many([a], id_policy)[0], ""
+    ex = excitation(op, id_policy)
+    if not ex.ok:
+        return refuse(ex.reason)
+    sp = seg.values.get("sp")
+    choice = find_windows(op, pv, sp, _manual_of(rec, seg, policy), a.dt, time_scale(row), window_settings(id_policy))
+    if not choice.windows:
+        return refuse(choice.reason())
+    ones = seg.last_line - seg.first_line == seg.n - 1        # a line per sample: the window's lines are known
+    parts, notes = [], []
+    for rank, win in enumerate(choice.windows[:max(1, id_policy.window_tries)]):
+        note = describe(win, choice, len(op), a.dt, a.t0, rec.start, (seg.first_line, 1) if ones else None, rank)
+        m, end = win.samples()
+        lines = (seg.first_line + win.lo, seg.first_line + end - 1) if ones else a.lines
+        q = win.stride
+        # block means (q = 1: the samples themselves), each block's time its middle
+        parts.append(Arrays(op[win.lo:end].reshape(m, q).mean(axis=1), pv[win.lo:end].reshape(m, q).mean(axis=1),
+                            a.dt * q, a.name, (*a.notes, note), a.t0 + (win.lo + (q - 1) / 2) * a.dt, lines))
+        notes.append(note)
+    # the windows are fitted together; the first in rank that gives a model is used, else the best's refusal
+    got = identify_many(parts, id_policy)
+    for k, ident in enumerate(got):
+        if ident.best is not None:
+            if k:
+                why = got[0].notes[-1] if got[0].notes else "no model"
+                note = f"{notes[k]} (the better-ranked window{'s' if k > 1 else ''} gave no model: {why})"
+                ident = replace(ident, notes=tuple(note if x == notes[k] else x for x in ident.notes))
+                return ident, note
+            return ident, notes[0]
+    return got[0], notes[0]
+
+
+def check_record(row, found: RowRecord, policy, id_policy: IdentifyPolicy | None = None) -> ModelCheck:
     """Check one row's model against its record, already read.
 
     Parameters
@@ -250,13 +361,15 @@ def check_record(row, found: RowRecord, policy, id_policy: IdentifyPolicy = Iden
         Its record (:func:`audit.plantdata.sources.record_for_row`).
     policy : Policy
         ``model_*`` thresholds.
-    id_policy : IdentifyPolicy
-        Identification settings.
+    id_policy : IdentifyPolicy, optional
+        Identification settings; by default :func:`identify_policy_of` the policy.
 
     Returns
     -------
     ModelCheck
-        With the full arrays; :meth:`ModelCheck.compact` thins them.
+        With the full arrays; :meth:`ModelCheck.compact` thins them. A record longer than
+        ``window_above`` samples is judged on its most informative window of excitation
+        (:func:`identify_windowed`), named in the note.
     """
     if found.record is None:
         return ModelCheck("record unusable", note=f"data record: {found.refused or 'none found'}")
@@ -265,16 +378,32 @@ def check_record(row, found: RowRecord, policy, id_policy: IdentifyPolicy = Iden
         why = [str(n) for n in rec.notes_of("file", "header", "short")] or \
             [f"{shown}: needs op and pv columns"]
         return ModelCheck("record unusable", note="data record: " + "; ".join(why[:5]))
-    ident = identify_record(rec, id_policy)
+    if id_policy is None:
+        id_policy = identify_policy_of(policy)
     seg = rec.longest()
-    op, pv, dt = seg.values["op"], seg.values["pv"], seg.dt
+    wnote = ""
+    if seg is not None and seg.n > id_policy.window_above:
+        ident, wnote = identify_windowed(row, rec, policy, id_policy)
+        if not wnote:                          # no window: the record does not judge the model
+            if row.model not in SIMULATED or row.gain is None:
+                return ModelCheck("not checked", identification=ident,
+                                  note=f"model type {row.model!r} is not simulated against data; " +
+                                       (ident.notes[-1] if ident.notes else ""))
+            return ModelCheck("not identifiable", identification=ident,
+                              note="; ".join(ident.notes[-3:]) if ident.notes else "")
+        op, pv, dt = ident.op, ident.pv, ident.dt
+    else:
+        ident = identify_record(rec, id_policy)
+        op, pv, dt = seg.values["op"], seg.values["pv"], seg.dt
     if row.model not in SIMULATED or row.gain is None:
         return ModelCheck("not checked", identification=ident,
-                          note=f"model type {row.model!r} is not simulated against data; identified model shown")
+                          note=f"model type {row.model!r} is not simulated against data; identified model shown"
+                               + (f"; {wnote}" if wnote else ""))
     yhat = _fit_offsets(row, ident.pv if len(ident.pv) == len(pv) else pv, simulate_row(row, op, dt), dt)
     y = ident.pv if len(ident.pv) == len(pv) else pv
     mfit = nrmse_fit(y, yhat)
-    notes = "; ".join(ident.notes[-3:]) if ident.notes else ""
+    tail = [n for n in ident.notes[-3:] if n != wnote] if ident.notes else []
+    notes = "; ".join(([wnote] if wnote else []) + tail)
     if ident.best is None:
         return ModelCheck("not identifiable", mfit, yhat, ident, note=notes)
     b = ident.best
