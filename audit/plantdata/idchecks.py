@@ -22,7 +22,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import signal, special
 
 from .oefit import _lfilter
 
@@ -86,6 +85,7 @@ def ljung_box_p(e: np.ndarray, lags: int = LAGS) -> float:
     r = _acf(e, lags)
     n = len(e)
     q = n * (n + 2) * float(np.sum(r[1:] ** 2 / (n - np.arange(1, lags + 1))))
+    from scipy import special  # scipy when first needed: a run without plant data never loads it
     return float(special.chdtrc(lags, q))
 
 
@@ -200,6 +200,7 @@ def step_estimate(op: np.ndarray, pv: np.ndarray, dt: float, points: int = 400) 
     bb = np.concatenate([np.zeros(nk), [c[2], c[3]]])
     if _pole_radius(a) >= 1.0:      # an unstable ARX fit: integrating, or noise
         return np.arange(1, m + 1) * (c[2] + c[3]), q * dt
+    from scipy import signal
     return signal.lfilter(bb, a, np.ones(m)), q * dt
 
 

@@ -102,7 +102,6 @@ from dataclasses import dataclass, field, replace
 from typing import Mapping, Sequence
 
 import numpy as np
-from scipy import special
 
 from .idchecks import LAGS, _acf, _xcorr_past, hampel, ljung_box_p, nrmse_fit, step_estimate, two_point
 from .oefit import Solution, difference, predict, response_jacobian, run, solve_rows
@@ -521,6 +520,7 @@ def _fit_of(model: str, sol: Solution, op: np.ndarray, pv: np.ndarray, dt: float
     s2 = rss / max(n - p, 1)
     try:
         cov = np.linalg.pinv(J.T @ J) * s2 * infl
+        from scipy import special  # scipy when first needed: a run without plant data never loads it
         half = special.stdtrit(max(n_eff - p, 1), 0.975) * np.sqrt(np.maximum(np.diag(cov), 0))
     except np.linalg.LinAlgError:
         half = np.full(p, np.inf)

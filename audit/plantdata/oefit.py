@@ -42,14 +42,25 @@ from dataclasses import dataclass
 from typing import Mapping, Sequence
 
 import numpy as np
-from scipy import signal
 
-try:       # the C core of lfilter, without the argument checks that cost more than a short record's filtering
-    from scipy.signal._sigtools import _linear_filter as _CORE
-    if not np.allclose(_CORE(np.array([0.0, 1.0]), np.array([1.0, -0.5]), np.ones(3), -1), [0.0, 1.0, 1.5]):
-        _CORE = None
-except (ImportError, TypeError, ValueError):            # another scipy: the public function
-    _CORE = None
+_CORE = None       # the filter: lfilter's C core, or lfilter itself (found by _filter_core when first needed)
+
+
+def _filter_core():
+    """The C core of :func:`scipy.signal.lfilter` (without the argument checks that cost more than a short
+    record's filtering), checked on a known response; else a call of the public function. Loaded when
+    first needed: a run without plant data never loads scipy."""
+    global _CORE
+    if _CORE is None:
+        from scipy import signal
+        try:
+            from scipy.signal._sigtools import _linear_filter as core
+            if not np.allclose(core(np.array([0.0, 1.0]), np.array([1.0, -0.5]), np.ones(3), -1), [0.0, 1.0, 1.5]):
+                core = None
+        except (ImportError, TypeError, ValueError):            # another scipy: the public function
+            core = None
+        _CORE = core if core is not None else (lambda b, a, x, axis: signal.lfilter(b, a, x, axis=axis))
+    return _CORE
 
 #: Nonlinear parameters of each structure, in the order of the vector ``x``.
 NONLINEAR = {"fopdt": ("tau1", "dead_time"), "sopdt": ("tau1", "tau2", "tau_lead", "dead_time"),
@@ -141,9 +152,7 @@ def difference(model: str, shape: Sequence[float], dead_time: float, dt: float
 
 def _lfilter(b: np.ndarray, a: np.ndarray, x: np.ndarray) -> np.ndarray:
     """:func:`scipy.signal.lfilter` of a 1-D float array, through its C core when that can be reached."""
-    if _CORE is not None:
-        return _CORE(b, a, x, -1)
-    return signal.lfilter(b, a, x)
+    return (_CORE or _filter_core())(b, a, x, -1)
 
 
 def run(model: str, shape: Sequence[float], dead_time: float, dt: float, u: np.ndarray) -> np.ndarray:

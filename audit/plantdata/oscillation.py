@@ -28,8 +28,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import fft as _fft
-from scipy import signal as _sig
 
 #: Regularity above which the ACF zero crossings mark an oscillation (Thornhill et al. 2003). [-]
 REGULARITY_MIN = 1.0
@@ -127,6 +125,7 @@ def autocorrelation(x: np.ndarray, max_lag: int | None = None) -> np.ndarray:
         max_lag = n // 2
     max_lag = int(min(max_lag, n - 1))
     z = x - x.mean()
+    from scipy import fft as _fft  # scipy when first needed: a run without plant data never loads it
     nfft = _fft.next_fast_len(max(n + max_lag, 2), real=True)   # no wrap-around up to max_lag
     f = _fft.rfft(z, nfft)
     acov = _fft.irfft(f.real ** 2 + f.imag ** 2, nfft)[: max_lag + 1]
@@ -257,6 +256,7 @@ def band_amplitude(e: np.ndarray, ts: float, period_s: float) -> float:
         return math.nan
     f0 = 2.0 * ts / period_s                    # oscillation frequency / Nyquist frequency
     lo, hi = 0.5 * f0, min(2.0 * f0, 0.95)
+    from scipy import signal as _sig
     sos = _sig.butter(2, [lo, hi], btype="bandpass", output="sos")
     y = _sig.sosfiltfilt(sos, e - e.mean())
     return float(math.sqrt(2.0) * y.std())

@@ -38,8 +38,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import fft as _fft
-from scipy import signal as _sig
 
 from .oscillation import detrend, zero_crossings
 
@@ -132,6 +130,7 @@ def cross_correlation_oddness(op: np.ndarray, pv: np.ndarray, ts: float, dead_ti
     if den == 0:
         return math.nan
     m = n // 4
+    from scipy import fft as _fft  # scipy when first needed: a run without plant data never loads it
     nfft = _fft.next_fast_len(n + m, real=True)                # no wrap-around up to lag m
     c = _fft.irfft(np.conj(_fft.rfft(u, nfft)) * _fft.rfft(y, nfft), nfft) / den
     r = np.concatenate((c[-m:], c[: m + 1]))            # lags -m .. m
@@ -168,6 +167,7 @@ def half_cycles(x: np.ndarray, ts: float, period_s: float) -> np.ndarray:
     f0 = 2.0 * ts / period_s
     if not (0 < f0 < 0.5) or x.size < 3 * period_s / ts:
         return np.zeros((0, _POINTS))
+    from scipy import signal as _sig
     band = _sig.sosfiltfilt(_sig.butter(2, [0.5 * f0, min(2 * f0, 0.95)], btype="bandpass", output="sos"), x)
     smooth = x if 5 * f0 >= 0.95 else _sig.sosfiltfilt(_sig.butter(2, 5 * f0, output="sos"), x)
     up = int(math.ceil(4 * _POINTS * ts / period_s))       # band-limited interpolation to >= 64 points per half cycle

@@ -32,8 +32,6 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import linalg as _la
-from scipy import signal as _sig
 
 #: Largest AR order tried. [-]
 MAX_ORDER = 30
@@ -151,6 +149,7 @@ def fit_ar(y: np.ndarray, max_order: int = MAX_ORDER, criterion: str = "aic") ->
     p = int(max_order)
     if z.size < 10 * p:
         raise ValueError(f"{z.size} samples are too few for AR orders up to {p} (need {10 * p})")
+    from scipy import linalg as _la  # scipy when first needed: a run without plant data never loads it
     g = _gram(z, p)
     scale = max(float(np.trace(g)) / (p + 1), 1e-300)
     for jitter in (0.0, 1e-12, 1e-10, 1e-8, 1e-6):   # a perfectly predictable series is singular
@@ -189,6 +188,7 @@ def impulse_response(coefficients: np.ndarray, n: int) -> np.ndarray:
     a = np.concatenate(([1.0], -np.asarray(coefficients, dtype=float)))
     imp = np.zeros(n)
     imp[0] = 1.0
+    from scipy import signal as _sig
     return _sig.lfilter([1.0], a, imp)
 
 
