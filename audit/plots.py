@@ -33,7 +33,8 @@ from typing import Sequence
 
 import numpy as np
 
-from .report import FrequencyData, LoopPlots, ResidualData, StepData, Tally
+from .curves import FrequencyData, LoopPlots, ResidualData, StepData
+from .report import Tally
 
 # Okabe-Ito
 BLACK = "#000000"
