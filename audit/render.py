@@ -9,9 +9,9 @@ read ``data:`` URIs and files inside the output folder and nothing else
 Many loops: every loop needing attention gets a detail section in the HTML; the
 PDF carries the first :data:`PDF_DETAIL_LIMIT` of them in work-list order and
 says so. Charts are drawn only for the first :data:`PLOT_LIMIT` detail sections:
-:mod:`audit.plots` computes their data (scaled coordinates, ticks, legends) and the
-chart templates (``templates/charts/``) write them as inline SVG with the title and
-legend as page text, once for both the HTML and the PDF.
+:mod:`audit.plots` computes their data (scaled coordinates, ticks, legends) and
+:mod:`audit.svg` writes them as inline SVG with the title and legend as page text, once
+for both the HTML and the PDF.
 """
 
 from __future__ import annotations
@@ -30,10 +30,10 @@ from urllib.parse import urlsplit
 from urllib.request import url2pathname
 
 import jinja2
-import numpy as np
 from markupsafe import Markup, escape
 
 from .report import STATUS_ORDER, Report, build_report
+from .svg import chart_html
 
 TEMPLATES = Path(__file__).resolve().parent.parent / "templates"
 """Folder of the report templates (top level of the repository)."""
@@ -123,24 +123,6 @@ def fmt_change(text: Any) -> str:
     return fmt_num(text).replace(" -> ", "\u00a0\u2192 ") if isinstance(text, str) else fmt_num(text)
 
 
-def fmt_px(value: Any) -> str:
-    """A chart coordinate or length as SVG text: 0.1 px, never '-0.0' (same input, same bytes).
-
-    Parameters
-    ----------
-    value : float
-        Coordinate or length. [px]
-    """
-    text = f"{float(value):.1f}"
-    return "0.0" if text == "-0.0" else text
-
-
-def fmt_points(points: Any) -> str:
-    """An (n, 2) array of chart pixels as the text of an SVG ``points`` attribute (0.1 px)."""
-    arr = np.round(np.asarray(points, float), 1) + 0.0     # + 0.0 turns -0.0 into 0.0
-    return " ".join(f"{x:.1f},{y:.1f}" for x, y in arr.tolist())
-
-
 #: A run of more than this many non-space characters gets break opportunities (see :func:`fmt_breakable`).
 LONG_RUN = 30
 #: Characters between two zero-width spaces inside such a run.
@@ -209,8 +191,8 @@ def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
         keep_trailing_newline=True,
         auto_reload=False,   # templates are read once per process, not checked on every include
     )
-    env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class, px=fmt_px,
-                       pts=fmt_points, change=fmt_change, brk=fmt_breakable)
+    env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class,
+                       change=fmt_change, brk=fmt_breakable)
     return env
 
 
@@ -229,19 +211,19 @@ class Rendered:
 
 
 def render_chart(chart) -> Markup:
-    """One chart (:class:`audit.plots.Chart`) as an ``<svg>`` element, written by its template.
+    """One chart (:class:`audit.plots.Chart`) as a ``<figure>`` with its ``<svg>`` element (:mod:`audit.svg`).
 
-    The chart templates are autoescaped like every other, so text from the inventory
-    (area names, tags) stays inert.
+    The writer escapes every text of the chart, so text from the inventory (area names, tags)
+    stays inert.
     """
-    return Markup(environment().get_template(chart.template).render(chart=chart).strip())
+    return Markup(chart_html(chart))
 
 
 def _loop_svgs(plots) -> tuple[tuple[str, str], ...]:
-    """Charts of one loop as (caption, SVG text): chart data and templates, no matplotlib."""
+    """Charts of one loop as (caption, SVG text): chart data and the SVG writer, no matplotlib."""
     from .plots import loop_charts
 
-    return tuple((c.caption, str(render_chart(c))) for c in loop_charts(plots))
+    return tuple((c.caption, chart_html(c)) for c in loop_charts(plots))
 
 
 def draw(report: Report, mapper: Callable = map) -> Rendered:
