@@ -15,6 +15,7 @@ and history are each shown when present and left out, with a note, when not.
 
 from __future__ import annotations
 
+import functools
 import math
 import re
 from dataclasses import dataclass, field, replace
@@ -267,6 +268,11 @@ class Report:
 def _blank(value: Any) -> bool:
     if value is None:
         return True
+    kind = type(value)
+    if kind is float:               # the common cases without pandas: NaN is the only float unequal to itself
+        return value != value
+    if kind is str or kind is int or kind is bool:
+        return False
     try:
         return bool(pd.isna(value))
     except (TypeError, ValueError):
@@ -286,6 +292,7 @@ def _text(value: Any) -> str:
     return "" if _blank(value) else str(value)
 
 
+@functools.lru_cache(maxsize=65536)
 def _slug(text: str) -> str:
     s = re.sub(r"[^A-Za-z0-9]+", "-", text).strip("-").lower()
     return s[:40] or "loop"
@@ -318,17 +325,17 @@ class _Results:
         self.frame = frame.reset_index(drop=True)
         self.columns = set(self.frame.columns)
         self.n = len(self.frame)
-        self._arrays: dict[str, np.ndarray | None] = {}   # column -> its values (plain numpy dtypes only)
+        self._arrays: dict[str, np.ndarray] = {}   # column -> its values by position
 
     def get(self, i: int, name: str) -> Any:
         if name not in self.columns or i >= self.n:
             return None
         arr = self._arrays.get(name, False)
-        if arr is False:   # first use: the column's numpy array, read by position like .at (same scalars)
+        if arr is False:   # first use: the column's values by position (the same values as .at once made plain)
             col = self.frame[name]
             arr = self._arrays[name] = (col.to_numpy() if isinstance(col.dtype, np.dtype)
-                                        and col.dtype.kind in "biufcO" else None)
-        return _plain(self.frame.at[i, name] if arr is None else arr[i])
+                                        and col.dtype.kind in "biufcO" else col.to_numpy(dtype=object))
+        return _plain(arr[i])
 
     def has(self, name: str) -> bool:
         return name in self.columns and bool(self.frame[name].notna().any())
@@ -593,7 +600,7 @@ def _detail(audit, i: int, res: _Results, status: str, with_plots: bool,
     row = rows[i]
     notes: list[str] = []
     proposal = (audit.extras.get("proposals") or {}).get(row.index)
-    proposed = proposed_model(model, proposal) if model is not None else None
+    proposed = proposed_model(model, proposal) if model is not None and with_plots else None   # plots only
     cascade = None
     inner_tag = ""
     if model is not None and model.inner is not None:
