@@ -259,7 +259,45 @@ def draw(report: Report, mapper: Callable = map) -> Rendered:
     return Rendered(loops, mix, trend, health, groups)
 
 
-def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False) -> str:
+SECTION_CHUNK = 100
+"""Detail sections rendered per task of a process pool (:func:`render_html` with a pool's ``map``). [-]"""
+
+
+def _loop_sections(task: tuple) -> list[str]:
+    """Detail sections of a run of loops (``loop.html.j2``), each as the text the page includes (a pool's task).
+
+    Parameters
+    ----------
+    task : tuple
+        (details, their charts {anchor: charts}, their loop-health charts {anchor: charts},
+        anchors of every detail section of the page, the PDF's variant or not).
+    """
+    details, loops, health, anchors, for_print = task
+    template = environment().get_template("loop.html.j2")
+    drawings = Rendered(loops, None, None, health)
+    return [template.render(d=d, drawings=drawings, detail_anchors=anchors, for_print=for_print) for d in details]
+
+
+def _sections(details, rendered: Rendered, anchors: frozenset, for_print: bool, mapper: Callable) -> Iterator[Markup]:
+    """The detail sections of the page, in order, rendered in runs of :data:`SECTION_CHUNK` by ``mapper``.
+
+    With a pool's ``map`` the runs are rendered in its workers while the caller renders the rest of the
+    page (the page reads the sections when it reaches them); each section is the same text as
+    ``{% include "loop.html.j2" %}`` in the page would give.
+    """
+    tasks = []
+    for a in range(0, len(details), SECTION_CHUNK):
+        run = details[a:a + SECTION_CHUNK]
+        keys = [d.anchor for d in run]
+        tasks.append((run, {k: rendered.loops[k] for k in keys if k in rendered.loops},
+                      {k: rendered.health[k] for k in keys if k in rendered.health}, anchors, for_print))
+    for texts in mapper(_loop_sections, tasks):
+        for text in texts:
+            yield Markup(text)   # written by the autoescaping loop template
+
+
+def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False,
+                mapper: Callable = map) -> str:
     """The report as one self-contained HTML page.
 
     Parameters
@@ -273,20 +311,25 @@ def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_pr
     for_print : bool
         The PDF's variant: at most :data:`PDF_DETAIL_LIMIT` detail sections and
         :data:`PDF_TABLE_LIMIT` lines per long table, each cut said in the text.
+    mapper : callable
+        ``map`` or a process pool's ``map``: renders the detail sections (:func:`_sections`); the page
+        is the same either way.
     """
     details = report.details
     table_limit = None
     if for_print:
         details = details[:PDF_DETAIL_LIMIT]
         table_limit = PDF_TABLE_LIMIT
+    anchors = frozenset(d.anchor for d in details)
     return environment().get_template("base.html.j2").render(
         r=report,
         details=details,
+        sections=_sections(details, rendered, anchors, for_print, mapper),
         drawings=rendered,
         paper=PAPERS.get(paper, "A4"),
         for_print=for_print,
         table_limit=table_limit,
-        detail_anchors=frozenset(d.anchor for d in details),
+        detail_anchors=anchors,
         status_order=STATUS_ORDER,
     )
 
@@ -409,10 +452,12 @@ def write_outputs(audit) -> dict[str, Path]:
     t0 = time.perf_counter()
     limit = getattr(audit.options, "plot_limit", PLOT_LIMIT)
     with _cycle_collector_held():
+        environment().get_template("base.html.j2")   # compiled before the pool's workers are forked
+        environment().get_template("loop.html.j2")
         with _mapper(audit.options.jobs) as mapper:
             report = build_report(audit, plot_limit=limit, mapper=mapper)
             rendered = draw(report, mapper=mapper)
-        html = render_html(report, rendered, paper=audit.options.paper)
+            html = render_html(report, rendered, paper=audit.options.paper, mapper=mapper)
     written: dict[str, Path] = {}
     (out / "report.html").write_text(html, encoding="utf-8")
     written["report.html"] = out / "report.html"
