@@ -74,6 +74,17 @@ def fmt_num(value: Any, digits: int = 3) -> str:
     digits : int
         Significant digits. [-]
     """
+    if type(value) is float:   # the common case first (same rules as below)
+        if value != value:
+            return "\u2013"
+        a = abs(value)
+        if a == math.inf:
+            return "\u221e" if value > 0 else "\u2212\u221e"
+        if a == 0:
+            return "0"
+        if a >= 10 ** digits:
+            return f"{value:,.0f}".replace("-", "\u2212")
+        return f"{value:.{digits}g}".replace("-", "\u2212")
     if value is None:
         return "\u2013"
     if isinstance(value, bool):
@@ -162,6 +173,11 @@ def fmt_breakable(text: Any) -> Any:
     return Markup("".join(out))
 
 
+@functools.lru_cache(maxsize=1024)
+def _css(text: str) -> str:
+    return "s-" + "".join(ch if ch.isalnum() else "-" for ch in text.lower())
+
+
 def css_class(text: str) -> str:
     """A status or verdict word as a CSS class name.
 
@@ -170,7 +186,95 @@ def css_class(text: str) -> str:
     text : str
         The word, e.g. ``unstable`` or ``not achievable by tuning``.
     """
-    return "s-" + "".join(ch if ch.isalnum() else "-" for ch in str(text).lower())
+    return _css(str(text))
+
+
+# ----------------------------------------------------------------------------- rows of the long tables
+# A row of a table repeated thousands of times (all loops, the work list, each detail section's tables)
+# is written by one filter, with the same text the cells' own expressions gave: one call and one
+# escape per row instead of one per cell.
+
+
+def _h(value: Any) -> str:
+    """A value as autoescape writes it: markup as it is, anything else as escaped text."""
+    if hasattr(value, "__html__"):
+        return value.__html__()
+    return (str(value).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+            .replace('"', "&#34;").replace("'", "&#39;"))
+
+
+def kv_rows(items: Any, digits: int | None = None) -> Markup:
+    """Rows of a label/value table (:class:`audit.report.Item`): the label with its unit, the value as
+    breakable text, or as a number of ``digits`` significant digits."""
+    out = []
+    for it in items:
+        label = _h(it.label) + (f" [{_h(it.unit)}]" if it.unit else "")
+        value = _h(fmt_breakable(it.value)) if digits is None else _h(fmt_num(it.value, digits))
+        out.append(f'<tr><th scope="row">{label}</th><td>{value}</td></tr>')
+    return Markup("".join(out))
+
+
+def entered_rows(items: Any, per_row: int = 4) -> Markup:
+    """Rows of the table of cells as entered: ``per_row`` label/value pairs a row, values to 6 digits."""
+    items = list(items)
+    rows = []
+    for a in range(0, len(items), per_row):
+        cells = "".join(f'<th scope="row">{_h(it.label)}</th><td>{_h(fmt_breakable(fmt_num(it.value, 6)))}</td>'
+                        for it in items[a:a + per_row])
+        rows.append(f"<tr>{cells}</tr>")
+    return Markup("\n".join(rows))
+
+
+_RULE_SIGNS = {"<=": "&le;", ">=": "&ge;"}
+
+
+def check_row(c: Any) -> Markup:
+    """A row of a loop's table of figures against their limits (:class:`audit.report.Check`)."""
+    value = ("stable" if c.value else "unstable") if c.column == "stable" else _h(fmt_num(c.value))
+    limit = _h(fmt_num(c.limit)) if c.rule else ""
+    return Markup(f'  <tr>\n    <th scope="row">{_h(c.figure)} <span class="col">{_h(c.column)}</span></th>\n'
+                  f'    <td class="num">{value}</td>\n    <td class="rule">{_RULE_SIGNS.get(c.rule, "")}</td>\n'
+                  f'    <td class="num">{limit}</td>\n    <td>{_h(c.unit)}</td>\n'
+                  f'    <td class="verdict {_h(css_class(c.verdict))}">{_h(fmt_verdict(c.verdict))}</td>\n  </tr>')
+
+
+def _tag_cell(tag: str, anchor: str, linked: bool) -> str:
+    text = _h(fmt_breakable(tag))
+    return f'<a href="#{_h(anchor)}">{text}</a>' if linked else text
+
+
+def loop_row(line: Any, detail_anchors: Any) -> Markup:
+    """A row of the table of all loops (:class:`audit.report.LoopLine`); the tag links to its detail
+    section when the page has it."""
+    a = line.detail_anchor
+    tag = _tag_cell(line.tag, a, bool(a) and a in detail_anchors)
+    return Markup(
+        f'    <tr id="{_h(line.row_anchor)}">\n      <td class="num">{_h(line.row)}</td>\n'
+        f'      <td class="tag">{tag}</td>\n'
+        f'      <td>{_h(fmt_breakable(line.area))}</td><td>{_h(line.criticality)}</td>\n'
+        f'      <td class="status {_h(css_class(line.status))}">{_h(fmt_status(line.status))}</td>\n'
+        f'      <td class="num">{_h(fmt_num(line.ms))}</td><td class="num">{_h(fmt_num(line.gm_db))}</td>'
+        f'<td class="num">{_h(fmt_num(line.pm_deg))}</td>\n'
+        f'      <td class="num">{_h(fmt_num(line.band_s_db))}</td><td class="num">{_h(fmt_num(line.band_required_db))}'
+        f'</td>\n      <td class="reason">{_h(fmt_breakable(line.findings))}</td>\n    </tr>')
+
+
+def work_row(it: Any, ranked: bool, compact: bool, detail_anchors: Any) -> Markup:
+    """A row of the work list (:class:`audit.report.WorkItem`), ranked or in the fallback order, in full or
+    compact (the executive summary)."""
+    first = _h(fmt_num(it.rank)) if ranked else _h(it.position)
+    tail = ""
+    if ranked:
+        tail = f"<td>{_h(it.action)}</td>"
+        if not compact:
+            tail += (f'<td class="reason">{_h(fmt_change(it.expected_improvement))}</td><td>{_h(it.verdict)}</td>'
+                     f'<td class="settings">{_h(it.proposal_settings)}</td>')
+    return Markup(
+        f'  <tr>\n    <td class="num">{first}</td>\n'
+        f'    <td class="tag">{_tag_cell(it.tag, it.anchor, it.anchor in detail_anchors)}</td>\n'
+        f'    <td>{_h(fmt_breakable(it.area))}</td><td>{_h(it.criticality)}</td>\n'
+        f'    <td class="status {_h(css_class(it.status))}">{_h(fmt_status(it.status))}</td>\n'
+        f'    <td class="reason">{_h(fmt_breakable(it.reason))}</td>\n{tail}  </tr>')
 
 
 @functools.lru_cache(maxsize=4)
@@ -192,7 +296,8 @@ def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
         auto_reload=False,   # templates are read once per process, not checked on every include
     )
     env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class,
-                       change=fmt_change, brk=fmt_breakable)
+                       change=fmt_change, brk=fmt_breakable, kv_rows=kv_rows, entered_rows=entered_rows,
+                       check_row=check_row, loop_row=loop_row, work_row=work_row)
     return env
 
 
