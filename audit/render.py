@@ -19,6 +19,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import gc
+import itertools
 import math
 import re
 import time
@@ -324,11 +325,20 @@ def render_chart(chart) -> Markup:
     return Markup(chart_html(chart))
 
 
+CHART_CHUNK = 25
+"""Loops whose charts are drawn per task of a process pool (:func:`draw` with a pool's ``map``). [-]"""
+
+
 def _loop_svgs(plots) -> tuple[tuple[str, str], ...]:
     """Charts of one loop as (caption, SVG text): chart data and the SVG writer, no matplotlib."""
     from .plots import loop_charts
 
     return tuple((c.caption, chart_html(c)) for c in loop_charts(plots))
+
+
+def _loops_svgs(run: list) -> list[tuple[tuple[str, str], ...]]:
+    """Charts of a run of loops (a pool's task): :func:`_loop_svgs` of each."""
+    return [_loop_svgs(plots) for plots in run]
 
 
 def draw(report: Report, mapper: Callable = map) -> Rendered:
@@ -344,10 +354,8 @@ def draw(report: Report, mapper: Callable = map) -> Rendered:
     from . import plots
 
     todo = [d for d in report.details if d.plots is not None]
-    loops = {}
-    for d, svgs in zip(todo, mapper(_loop_svgs, [d.plots for d in todo])):
-        # written by the autoescaping chart templates
-        loops[d.anchor] = tuple((caption, Markup(svg)) for caption, svg in svgs)
+    runs = [[d.plots for d in todo[a:a + CHART_CHUNK]] for a in range(0, len(todo), CHART_CHUNK)]
+    pending = mapper(_loops_svgs, runs)   # with a pool: drawn in its workers while the charts below are drawn here
     mix = None
     if report.by_area:
         mix = render_chart(plots.status_mix(report.by_area, report.statuses))
@@ -361,6 +369,10 @@ def draw(report: Report, mapper: Callable = map) -> Rendered:
     from .multiloop.report import group_nyquist_chart
     groups = {g.gid: render_chart(group_nyquist_chart(g, f"gnyq-{g.gid.lower()}"))
               for g in getattr(report, "groups", ()) if g.evaluated and g.W.size}
+    loops = {}
+    for d, svgs in zip(todo, itertools.chain.from_iterable(pending)):
+        # written by audit.svg, every text escaped
+        loops[d.anchor] = tuple((caption, Markup(svg)) for caption, svg in svgs)
     return Rendered(loops, mix, trend, health, groups)
 
 
@@ -386,9 +398,9 @@ def _loop_sections(task: tuple) -> list[str]:
 def _sections(details, rendered: Rendered, anchors: frozenset, for_print: bool, mapper: Callable) -> Iterator[Markup]:
     """The detail sections of the page, in order, rendered in runs of :data:`SECTION_CHUNK` by ``mapper``.
 
-    With a pool's ``map`` the runs are rendered in its workers while the caller renders the rest of the
-    page (the page reads the sections when it reaches them); each section is the same text as
-    ``{% include "loop.html.j2" %}`` in the page would give.
+    With a pool's ``map`` the runs are handed to its workers at once and rendered while the caller
+    renders the rest of the page (the page reads the sections when it reaches them); each section is
+    the same text as ``{% include "loop.html.j2" %}`` in the page would give.
     """
     tasks = []
     for a in range(0, len(details), SECTION_CHUNK):
@@ -396,9 +408,8 @@ def _sections(details, rendered: Rendered, anchors: frozenset, for_print: bool, 
         keys = [d.anchor for d in run]
         tasks.append((run, {k: rendered.loops[k] for k in keys if k in rendered.loops},
                       {k: rendered.health[k] for k in keys if k in rendered.health}, anchors, for_print))
-    for texts in mapper(_loop_sections, tasks):
-        for text in texts:
-            yield Markup(text)   # written by the autoescaping loop template
+    # written by the autoescaping loop template
+    return (Markup(text) for texts in mapper(_loop_sections, tasks) for text in texts)
 
 
 def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False,
