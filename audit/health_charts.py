@@ -1,4 +1,4 @@
-"""Charts of the loop-health section as data for ``templates/charts/health.html.j2``.
+"""Charts of the loop-health section as data for the SVG writer (:mod:`audit.svg`, layout ``health``).
 
 Three per loop: the trend of ``sp``, ``pv`` and ``op``; ``pv`` against ``op`` (a sticking valve
 draws a parallelogram, a linear loop an ellipse); the autocorrelation of the control error with
@@ -58,7 +58,7 @@ def trend_chart(hv: HealthView) -> Chart:
     series = [_series(label, st, sx(x), sy(y), f) for label, st, y in
               (("set point sp", SP_STYLE, p.sp), ("process value pv", PV_STYLE, p.pv), ("output op", OP_STYLE, p.op))
               if np.isfinite(y).any()]
-    return Chart(f"{hv.key}-trend", "charts/health.html.j2", "Operating record: sp, pv and op",
+    return Chart(f"{hv.key}-trend", "health", "Operating record: sp, pv and op",
                  "Set point, process value and controller output over the operating record.", WIDTH,
                  f.y1 + MARGIN_BOTTOM, f, tuple(series), legend=_legend(_line_entries(series)),
                  caption="Operating record.")
@@ -77,7 +77,7 @@ def pv_op_chart(hv: HealthView) -> Chart | None:
         return None
     f, sx, sy = _axes(p.pv_op.op, [p.pv_op.pv], 190.0, "controller output op [%]", "process value pv [% of range]")
     s = _series("pv against op", PV_STYLE, sx(p.pv_op.op), sy(p.pv_op.pv), f)
-    return Chart(f"{hv.key}-pvop", "charts/health.html.j2", "pv against op",
+    return Chart(f"{hv.key}-pvop", "health", "pv against op",
                  "Process value against controller output over the latest cycles: a sticking valve draws "
                  "a parallelogram (op moves, pv waits, then jumps); a linear loop an ellipse.", WIDTH,
                  f.y1 + MARGIN_BOTTOM, f, (s,), legend=_legend(_line_entries([s])), caption="pv against op.")
@@ -113,7 +113,7 @@ def acf_chart(hv: HealthView) -> Chart | None:
     else:
         series = (zero, s)
         title = "Autocorrelation: no regular oscillation"
-    return Chart(f"{hv.key}-acf", "charts/health.html.j2", title,
+    return Chart(f"{hv.key}-acf", "health", title,
                  "Autocorrelation of the control error; regular zero crossings mark an oscillation.", WIDTH,
                  f.y1 + MARGIN_BOTTOM, f, series, marks=marks, legend=_legend(entries),
                  caption="Autocorrelation of the control error.")

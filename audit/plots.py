@@ -1,8 +1,8 @@
-"""Charts of the audit report as data for the SVG chart templates (``templates/charts/*.svg.j2``).
+"""Charts of the audit report as data for the SVG writer (:mod:`audit.svg`).
 
 Drawing is split in two: this module computes what a chart shows — every
 coordinate already scaled to the chart's own pixel frame, tick positions and
-their labels, legend places — and a template per chart kind writes the SVG
+their labels, legend places — and :func:`audit.svg.chart_html` writes the SVG
 (:func:`audit.render.draw`). No markup is built here.
 
 Rules every chart follows:
@@ -33,7 +33,8 @@ from typing import Sequence
 
 import numpy as np
 
-from .report import FrequencyData, LoopPlots, ResidualData, StepData, Tally
+from .curves import FrequencyData, LoopPlots, ResidualData, StepData
+from .report import Tally
 
 # Okabe-Ito
 BLACK = "#000000"
@@ -196,11 +197,12 @@ class Bar:
 
 @dataclass(frozen=True)
 class Chart:
-    """One chart: its key (the SVG id and the prefix of every id inside), template, title, text alternative,
-    size [px], frame and what is drawn in it."""
+    """One chart: its key (the SVG id and the prefix of every id inside), layout (a key of
+    :data:`audit.svg.LAYOUTS`: which parts are drawn), title, text alternative, size [px], frame and what
+    is drawn in it."""
 
     key: str
-    template: str
+    layout: str
     title: str
     desc: str
     width: float
@@ -236,20 +238,20 @@ def clip_polyline(p: np.ndarray, x0: float, y0: float, x1: float, y1: float) -> 
     p = np.asarray(p, float)
     if len(p) < 2:
         return []
-    a, b = p[:-1], p[1:]
-    d = b - a
-    if (np.isfinite(p).all() and p[:, 0].min() >= x0 and p[:, 0].max() <= x1 and p[:, 1].min() >= y0
-            and p[:, 1].max() <= y1):
+    x, y = p[:, 0], p[:, 1]
+    ax, ay = x[:-1], y[:-1]
+    dx, dy = x[1:] - ax, y[1:] - ay
+    fin = np.isfinite(x) & np.isfinite(y)
+    if fin.all() and x.min() >= x0 and x.max() <= x1 and y.min() >= y0 and y.max() <= y1:
         # wholly inside: every segment keeps t0 = 0, t1 = 1, so the one piece is the same arithmetic below
-        return [np.vstack([a[:1], a + d])]
-    ok = np.isfinite(a).all(axis=1) & np.isfinite(b).all(axis=1)
-    a = np.where(ok[:, None], a, 0.0)
-    d = np.where(ok[:, None], d, 0.0)
-    t0 = np.zeros(len(a))
-    t1 = np.ones(len(a))
+        return [np.column_stack([np.concatenate([ax[:1], ax + dx]), np.concatenate([ay[:1], ay + dy])])]
+    ok = fin[:-1] & fin[1:]
+    ax, ay = np.where(ok, ax, 0.0), np.where(ok, ay, 0.0)
+    dx, dy = np.where(ok, dx, 0.0), np.where(ok, dy, 0.0)
+    t0 = np.zeros(len(ax))
+    t1 = np.ones(len(ax))
     with np.errstate(divide="ignore", invalid="ignore"):
-        for pk, qk in ((-d[:, 0], a[:, 0] - x0), (d[:, 0], x1 - a[:, 0]),
-                       (-d[:, 1], a[:, 1] - y0), (d[:, 1], y1 - a[:, 1])):
+        for pk, qk in ((-dx, ax - x0), (dx, x1 - ax), (-dy, ay - y0), (dy, y1 - ay)):
             r = qk / pk
             ok &= ~((pk == 0) & (qk < 0))
             t0 = np.where(pk < 0, np.maximum(t0, r), t0)
@@ -257,17 +259,17 @@ def clip_polyline(p: np.ndarray, x0: float, y0: float, x1: float, y1: float) -> 
     vis = ok & (t0 <= t1)
     if not vis.any():
         return []
-    ca = a + t0[:, None] * d
-    cb = a + t1[:, None] * d
+    cax, cay = ax + t0 * dx, ay + t0 * dy
+    cbx, cby = ax + t1 * dx, ay + t1 * dy
     prev_vis = np.concatenate([[False], vis[:-1]])
     prev_whole_end = np.concatenate([[False], t1[:-1] >= 1.0])
     start = vis & (~prev_vis | ~prev_whole_end | (t0 > 0.0))
     idx = np.flatnonzero(vis)
     run = np.cumsum(start)[idx]
     out = []
-    for r in np.unique(run):
-        seg = idx[run == r]
-        out.append(np.vstack([ca[seg[:1]], cb[seg]]))
+    for seg in np.split(idx, np.flatnonzero(np.diff(run)) + 1):   # runs are consecutive in idx
+        out.append(np.column_stack([np.concatenate([cax[seg[:1]], cbx[seg]]),
+                                    np.concatenate([cay[seg[:1]], cby[seg]])]))
     return out
 
 
@@ -313,25 +315,30 @@ def simplify(p: np.ndarray, tol: float = SIMPLIFY_PX, passes: int = 4) -> np.nda
     passes : int
         Passes over the line. [-]
     """
+    x, y = p[:, 0], p[:, 1]
     for _ in range(passes):
-        n = len(p)
+        n = len(x)
         if n < 3:
-            return p
-        i = np.arange(1, n - 1, 2)
-        a, b, c = p[i - 1], p[i], p[i + 1]
-        ab, ac = b - a, c - a
-        chord = np.hypot(ac[:, 0], ac[:, 1])
-        cross = np.abs(ac[:, 0] * ab[:, 1] - ac[:, 1] * ab[:, 0])
-        dist = np.where(chord > 0, cross / np.where(chord > 0, chord, 1.0), np.hypot(ab[:, 0], ab[:, 1]))
+            break
+        # every second interior point (1, 3, 5, ...) against the chord of its neighbours; slices, not copies
+        ax, ay = x[0:n - 2:2], y[0:n - 2:2]
+        abx, aby = x[1:n - 1:2] - ax, y[1:n - 1:2] - ay
+        acx, acy = x[2:n:2] - ax, y[2:n:2] - ay
+        chord = np.hypot(acx, acy)
+        cross = np.abs(acx * aby - acy * abx)
+        pos = chord > 0
+        dist = np.where(pos, cross / np.where(pos, chord, 1.0), np.hypot(abx, aby))
         # the point must also lie between its neighbours along the chord (no fold-backs dropped)
-        along = (ab * ac).sum(axis=1)
+        along = abx * acx + aby * acy
         drop = (dist <= tol) & (along >= 0) & (along <= chord ** 2)
         if not drop.any():
-            return p
+            break
         keep = np.ones(n, bool)
-        keep[i[drop]] = False
-        p = p[keep]
-    return p
+        keep[1:n - 1:2][drop] = False
+        x, y = x[keep], y[keep]
+    if len(x) == len(p):
+        return p
+    return np.column_stack([x, y])
 
 
 def _pieces(x: np.ndarray, y: np.ndarray, f: Frame, budget: int = MAX_POINTS) -> tuple[np.ndarray, ...]:
@@ -481,7 +488,7 @@ MARGIN_BOTTOM = 34.0
 
 
 def _legend(entries: Sequence[tuple[str, str, dict]]) -> tuple[LegendEntry, ...]:
-    """Legend entries, in order (the template lays them out under the plot, as page text)."""
+    """Legend entries, in order (the SVG writer lays them out under the plot, as page text)."""
     return tuple(LegendEntry(label, kind, **kw) for label, kind, kw in entries)
 
 
@@ -559,7 +566,7 @@ def gain_chart(fd: FrequencyData, key: str) -> Chart:
     entries = _line_entries(series[::-1] + [ms]) + [(s.label, "shade", {"colour": s.colour, "pattern": s.pattern,
                                                                        "style": BAND_STYLE}) for s in shades]
     legend = _legend(entries)
-    return Chart(key, "charts/frequency.html.j2", "Gains of L, S and T",
+    return Chart(key, "frequency", "Gains of L, S and T",
                  "Gain of the loop transfer L, the sensitivity S and the complementary sensitivity T against "
                  "frequency, with the Ms limit" + (" and the rejection requirement." if shades else "."),
                  WIDTH, f.y1 + MARGIN_BOTTOM, f, tuple(edges + [ms] + series), tuple(shades), (), (),
@@ -600,7 +607,7 @@ def compare_chart(fd: FrequencyData, other: np.ndarray, key: str, title: str, la
                                                {"colour": s.colour, "pattern": s.pattern, "style": BAND_STYLE})
                                               for s in shades]
     legend = _legend(entries)
-    return Chart(key, "charts/frequency.html.j2", title, f"{title}: {base_label} and {label} against frequency.",
+    return Chart(key, "frequency", title, f"{title}: {base_label} and {label} against frequency.",
                  WIDTH, f.y1 + MARGIN_BOTTOM, f, tuple(edges + [ms] + series[::-1]), tuple(shades), (), (),
                  _hatches(shades), legend, title + ".")
 
@@ -676,7 +683,7 @@ def nyquist_chart(fd: FrequencyData, key: str) -> Chart:
         (crit.label, "mark", {"colour": crit.colour, "shape": crit.shape}),
         (circle_shade.label, "shade", {"colour": PURPLE, "pattern": circle_shade.pattern, "style": MS_STYLE})]
     legend = _legend(entries)
-    return Chart(key, "charts/nyquist.html.j2", "Nyquist curve of L",
+    return Chart(key, "nyquist", "Nyquist curve of L",
                  "Nyquist curve of the loop transfer L with the critical point -1 and the circle of radius "
                  "1/Ms limit around it.", WIDTH, f.y1 + MARGIN_BOTTOM, f, tuple(axes + series),
                  (circle_shade,), (crit,), (), (Pattern(circle_shade.pattern, "diagonal", PURPLE, ""),),
@@ -704,7 +711,7 @@ def _time_chart(key: str, title: str, desc: str, ytitle: str, lines: Sequence[tu
     if ref is not None:
         refs.append(_series("", REFERENCE, np.array([f.x0, f.x1]), np.array([sy(ref)] * 2), f))
     legend = _legend(_line_entries(series))
-    return Chart(key, "charts/time.html.j2", title, desc, WIDTH, f.y1 + MARGIN_BOTTOM, f,
+    return Chart(key, "time", title, desc, WIDTH, f.y1 + MARGIN_BOTTOM, f,
                  tuple(refs + series[::-1]), (), (), (), (), legend, title + ".")
 
 
@@ -830,7 +837,7 @@ def status_mix(tallies: Sequence[Tally], statuses: Sequence[str], key: str = "st
     f = _finish(f, xticks=_ticks_lin(xv, 0.0, hi, f.x0, f.x1), yticks=yticks, xtitle="loops [-]", ytitle="",
                 ygrid=False)
     legend = _status_legend(statuses, pats)
-    return Chart(key, "charts/status_bars.html.j2", "Loops per status in each area",
+    return Chart(key, "status-bars", "Loops per status in each area",
                  "Stacked bars: number of loops of each status in each area.", f.x1 + MARGIN_RIGHT,
                  f.y1 + MARGIN_BOTTOM, f, bars=tuple(bars), patterns=tuple(pats.values()), legend=legend,
                  caption="Status mix per area.")
@@ -875,7 +882,7 @@ def status_trend(dates: Sequence[str], trend: Sequence[tuple[str, Sequence[int]]
     f = _finish(f, xticks=xticks, yticks=_ticks_lin(yv, 0.0, hi, f.y1, f.y0), xtitle="audit date",
                 ytitle="loops [-]", xgrid=False)
     legend = _status_legend(statuses, pats)
-    return Chart(key, "charts/status_bars.html.j2", "Loops per status at each audit",
+    return Chart(key, "status-bars", "Loops per status at each audit",
                  "Stacked bars: number of loops of each status at each recorded audit, oldest first.",
                  f.x1 + MARGIN_RIGHT, f.y1 + MARGIN_BOTTOM, f, bars=tuple(bars), patterns=tuple(pats.values()),
                  legend=legend, caption="Status mix over audits.")

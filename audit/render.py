@@ -9,9 +9,9 @@ read ``data:`` URIs and files inside the output folder and nothing else
 Many loops: every loop needing attention gets a detail section in the HTML; the
 PDF carries the first :data:`PDF_DETAIL_LIMIT` of them in work-list order and
 says so. Charts are drawn only for the first :data:`PLOT_LIMIT` detail sections:
-:mod:`audit.plots` computes their data (scaled coordinates, ticks, legends) and the
-chart templates (``templates/charts/``) write them as inline SVG with the title and
-legend as page text, once for both the HTML and the PDF.
+:mod:`audit.plots` computes their data (scaled coordinates, ticks, legends) and
+:mod:`audit.svg` writes them as inline SVG with the title and legend as page text, once
+for both the HTML and the PDF.
 """
 
 from __future__ import annotations
@@ -19,6 +19,7 @@ from __future__ import annotations
 import contextlib
 import functools
 import gc
+import itertools
 import math
 import re
 import time
@@ -30,10 +31,10 @@ from urllib.parse import urlsplit
 from urllib.request import url2pathname
 
 import jinja2
-import numpy as np
 from markupsafe import Markup, escape
 
 from .report import STATUS_ORDER, Report, build_report
+from .svg import chart_html
 
 TEMPLATES = Path(__file__).resolve().parent.parent / "templates"
 """Folder of the report templates (top level of the repository)."""
@@ -74,6 +75,17 @@ def fmt_num(value: Any, digits: int = 3) -> str:
     digits : int
         Significant digits. [-]
     """
+    if type(value) is float:   # the common case first (same rules as below)
+        if value != value:
+            return "\u2013"
+        a = abs(value)
+        if a == math.inf:
+            return "\u221e" if value > 0 else "\u2212\u221e"
+        if a == 0:
+            return "0"
+        if a >= 10 ** digits:
+            return f"{value:,.0f}".replace("-", "\u2212")
+        return f"{value:.{digits}g}".replace("-", "\u2212")
     if value is None:
         return "\u2013"
     if isinstance(value, bool):
@@ -123,24 +135,6 @@ def fmt_change(text: Any) -> str:
     return fmt_num(text).replace(" -> ", "\u00a0\u2192 ") if isinstance(text, str) else fmt_num(text)
 
 
-def fmt_px(value: Any) -> str:
-    """A chart coordinate or length as SVG text: 0.1 px, never '-0.0' (same input, same bytes).
-
-    Parameters
-    ----------
-    value : float
-        Coordinate or length. [px]
-    """
-    text = f"{float(value):.1f}"
-    return "0.0" if text == "-0.0" else text
-
-
-def fmt_points(points: Any) -> str:
-    """An (n, 2) array of chart pixels as the text of an SVG ``points`` attribute (0.1 px)."""
-    arr = np.round(np.asarray(points, float), 1) + 0.0     # + 0.0 turns -0.0 into 0.0
-    return " ".join(f"{x:.1f},{y:.1f}" for x, y in arr.tolist())
-
-
 #: A run of more than this many non-space characters gets break opportunities (see :func:`fmt_breakable`).
 LONG_RUN = 30
 #: Characters between two zero-width spaces inside such a run.
@@ -180,6 +174,11 @@ def fmt_breakable(text: Any) -> Any:
     return Markup("".join(out))
 
 
+@functools.lru_cache(maxsize=1024)
+def _css(text: str) -> str:
+    return "s-" + "".join(ch if ch.isalnum() else "-" for ch in text.lower())
+
+
 def css_class(text: str) -> str:
     """A status or verdict word as a CSS class name.
 
@@ -188,7 +187,95 @@ def css_class(text: str) -> str:
     text : str
         The word, e.g. ``unstable`` or ``not achievable by tuning``.
     """
-    return "s-" + "".join(ch if ch.isalnum() else "-" for ch in str(text).lower())
+    return _css(str(text))
+
+
+# ----------------------------------------------------------------------------- rows of the long tables
+# A row of a table repeated thousands of times (all loops, the work list, each detail section's tables)
+# is written by one filter, with the same text the cells' own expressions gave: one call and one
+# escape per row instead of one per cell.
+
+
+def _h(value: Any) -> str:
+    """A value as autoescape writes it: markup as it is, anything else as escaped text."""
+    if hasattr(value, "__html__"):
+        return value.__html__()
+    return (str(value).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
+            .replace('"', "&#34;").replace("'", "&#39;"))
+
+
+def kv_rows(items: Any, digits: int | None = None) -> Markup:
+    """Rows of a label/value table (:class:`audit.report.Item`): the label with its unit, the value as
+    breakable text, or as a number of ``digits`` significant digits."""
+    out = []
+    for it in items:
+        label = _h(it.label) + (f" [{_h(it.unit)}]" if it.unit else "")
+        value = _h(fmt_breakable(it.value)) if digits is None else _h(fmt_num(it.value, digits))
+        out.append(f'<tr><th scope="row">{label}</th><td>{value}</td></tr>')
+    return Markup("".join(out))
+
+
+def entered_rows(items: Any, per_row: int = 4) -> Markup:
+    """Rows of the table of cells as entered: ``per_row`` label/value pairs a row, values to 6 digits."""
+    items = list(items)
+    rows = []
+    for a in range(0, len(items), per_row):
+        cells = "".join(f'<th scope="row">{_h(it.label)}</th><td>{_h(fmt_breakable(fmt_num(it.value, 6)))}</td>'
+                        for it in items[a:a + per_row])
+        rows.append(f"<tr>{cells}</tr>")
+    return Markup("\n".join(rows))
+
+
+_RULE_SIGNS = {"<=": "&le;", ">=": "&ge;"}
+
+
+def check_row(c: Any) -> Markup:
+    """A row of a loop's table of figures against their limits (:class:`audit.report.Check`)."""
+    value = ("stable" if c.value else "unstable") if c.column == "stable" else _h(fmt_num(c.value))
+    limit = _h(fmt_num(c.limit)) if c.rule else ""
+    return Markup(f'  <tr>\n    <th scope="row">{_h(c.figure)} <span class="col">{_h(c.column)}</span></th>\n'
+                  f'    <td class="num">{value}</td>\n    <td class="rule">{_RULE_SIGNS.get(c.rule, "")}</td>\n'
+                  f'    <td class="num">{limit}</td>\n    <td>{_h(c.unit)}</td>\n'
+                  f'    <td class="verdict {_h(css_class(c.verdict))}">{_h(fmt_verdict(c.verdict))}</td>\n  </tr>')
+
+
+def _tag_cell(tag: str, anchor: str, linked: bool) -> str:
+    text = _h(fmt_breakable(tag))
+    return f'<a href="#{_h(anchor)}">{text}</a>' if linked else text
+
+
+def loop_row(line: Any, detail_anchors: Any) -> Markup:
+    """A row of the table of all loops (:class:`audit.report.LoopLine`); the tag links to its detail
+    section when the page has it."""
+    a = line.detail_anchor
+    tag = _tag_cell(line.tag, a, bool(a) and a in detail_anchors)
+    return Markup(
+        f'    <tr id="{_h(line.row_anchor)}">\n      <td class="num">{_h(line.row)}</td>\n'
+        f'      <td class="tag">{tag}</td>\n'
+        f'      <td>{_h(fmt_breakable(line.area))}</td><td>{_h(line.criticality)}</td>\n'
+        f'      <td class="status {_h(css_class(line.status))}">{_h(fmt_status(line.status))}</td>\n'
+        f'      <td class="num">{_h(fmt_num(line.ms))}</td><td class="num">{_h(fmt_num(line.gm_db))}</td>'
+        f'<td class="num">{_h(fmt_num(line.pm_deg))}</td>\n'
+        f'      <td class="num">{_h(fmt_num(line.band_s_db))}</td><td class="num">{_h(fmt_num(line.band_required_db))}'
+        f'</td>\n      <td class="reason">{_h(fmt_breakable(line.findings))}</td>\n    </tr>')
+
+
+def work_row(it: Any, ranked: bool, compact: bool, detail_anchors: Any) -> Markup:
+    """A row of the work list (:class:`audit.report.WorkItem`), ranked or in the fallback order, in full or
+    compact (the executive summary)."""
+    first = _h(fmt_num(it.rank)) if ranked else _h(it.position)
+    tail = ""
+    if ranked:
+        tail = f"<td>{_h(it.action)}</td>"
+        if not compact:
+            tail += (f'<td class="reason">{_h(fmt_change(it.expected_improvement))}</td><td>{_h(it.verdict)}</td>'
+                     f'<td class="settings">{_h(it.proposal_settings)}</td>')
+    return Markup(
+        f'  <tr>\n    <td class="num">{first}</td>\n'
+        f'    <td class="tag">{_tag_cell(it.tag, it.anchor, it.anchor in detail_anchors)}</td>\n'
+        f'    <td>{_h(fmt_breakable(it.area))}</td><td>{_h(it.criticality)}</td>\n'
+        f'    <td class="status {_h(css_class(it.status))}">{_h(fmt_status(it.status))}</td>\n'
+        f'    <td class="reason">{_h(fmt_breakable(it.reason))}</td>\n{tail}  </tr>')
 
 
 @functools.lru_cache(maxsize=4)
@@ -209,8 +296,9 @@ def environment(folder: str = str(TEMPLATES)) -> jinja2.Environment:
         keep_trailing_newline=True,
         auto_reload=False,   # templates are read once per process, not checked on every include
     )
-    env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class, px=fmt_px,
-                       pts=fmt_points, change=fmt_change, brk=fmt_breakable)
+    env.filters.update(num=fmt_num, status=fmt_status, verdict=fmt_verdict, css=css_class,
+                       change=fmt_change, brk=fmt_breakable, kv_rows=kv_rows, entered_rows=entered_rows,
+                       check_row=check_row, loop_row=loop_row, work_row=work_row)
     return env
 
 
@@ -229,19 +317,28 @@ class Rendered:
 
 
 def render_chart(chart) -> Markup:
-    """One chart (:class:`audit.plots.Chart`) as an ``<svg>`` element, written by its template.
+    """One chart (:class:`audit.plots.Chart`) as a ``<figure>`` with its ``<svg>`` element (:mod:`audit.svg`).
 
-    The chart templates are autoescaped like every other, so text from the inventory
-    (area names, tags) stays inert.
+    The writer escapes every text of the chart, so text from the inventory (area names, tags)
+    stays inert.
     """
-    return Markup(environment().get_template(chart.template).render(chart=chart).strip())
+    return Markup(chart_html(chart))
+
+
+CHART_CHUNK = 25
+"""Loops whose charts are drawn per task of a process pool (:func:`draw` with a pool's ``map``). [-]"""
 
 
 def _loop_svgs(plots) -> tuple[tuple[str, str], ...]:
-    """Charts of one loop as (caption, SVG text): chart data and templates, no matplotlib."""
+    """Charts of one loop as (caption, SVG text): chart data and the SVG writer, no matplotlib."""
     from .plots import loop_charts
 
-    return tuple((c.caption, str(render_chart(c))) for c in loop_charts(plots))
+    return tuple((c.caption, chart_html(c)) for c in loop_charts(plots))
+
+
+def _loops_svgs(run: list) -> list[tuple[tuple[str, str], ...]]:
+    """Charts of a run of loops (a pool's task): :func:`_loop_svgs` of each."""
+    return [_loop_svgs(plots) for plots in run]
 
 
 def draw(report: Report, mapper: Callable = map) -> Rendered:
@@ -257,10 +354,8 @@ def draw(report: Report, mapper: Callable = map) -> Rendered:
     from . import plots
 
     todo = [d for d in report.details if d.plots is not None]
-    loops = {}
-    for d, svgs in zip(todo, mapper(_loop_svgs, [d.plots for d in todo])):
-        # written by the autoescaping chart templates
-        loops[d.anchor] = tuple((caption, Markup(svg)) for caption, svg in svgs)
+    runs = [[d.plots for d in todo[a:a + CHART_CHUNK]] for a in range(0, len(todo), CHART_CHUNK)]
+    pending = mapper(_loops_svgs, runs)   # with a pool: drawn in its workers while the charts below are drawn here
     mix = None
     if report.by_area:
         mix = render_chart(plots.status_mix(report.by_area, report.statuses))
@@ -274,10 +369,51 @@ def draw(report: Report, mapper: Callable = map) -> Rendered:
     from .multiloop.report import group_nyquist_chart
     groups = {g.gid: render_chart(group_nyquist_chart(g, f"gnyq-{g.gid.lower()}"))
               for g in getattr(report, "groups", ()) if g.evaluated and g.W.size}
+    loops = {}
+    for d, svgs in zip(todo, itertools.chain.from_iterable(pending)):
+        # written by audit.svg, every text escaped
+        loops[d.anchor] = tuple((caption, Markup(svg)) for caption, svg in svgs)
     return Rendered(loops, mix, trend, health, groups)
 
 
-def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False) -> str:
+SECTION_CHUNK = 100
+"""Detail sections rendered per task of a process pool (:func:`render_html` with a pool's ``map``). [-]"""
+
+
+def _loop_sections(task: tuple) -> list[str]:
+    """Detail sections of a run of loops (``loop.html.j2``), each as the text the page includes (a pool's task).
+
+    Parameters
+    ----------
+    task : tuple
+        (details, their charts {anchor: charts}, their loop-health charts {anchor: charts},
+        anchors of every detail section of the page, the PDF's variant or not).
+    """
+    details, loops, health, anchors, for_print = task
+    template = environment().get_template("loop.html.j2")
+    drawings = Rendered(loops, None, None, health)
+    return [template.render(d=d, drawings=drawings, detail_anchors=anchors, for_print=for_print) for d in details]
+
+
+def _sections(details, rendered: Rendered, anchors: frozenset, for_print: bool, mapper: Callable) -> Iterator[Markup]:
+    """The detail sections of the page, in order, rendered in runs of :data:`SECTION_CHUNK` by ``mapper``.
+
+    With a pool's ``map`` the runs are handed to its workers at once and rendered while the caller
+    renders the rest of the page (the page reads the sections when it reaches them); each section is
+    the same text as ``{% include "loop.html.j2" %}`` in the page would give.
+    """
+    tasks = []
+    for a in range(0, len(details), SECTION_CHUNK):
+        run = details[a:a + SECTION_CHUNK]
+        keys = [d.anchor for d in run]
+        tasks.append((run, {k: rendered.loops[k] for k in keys if k in rendered.loops},
+                      {k: rendered.health[k] for k in keys if k in rendered.health}, anchors, for_print))
+    # written by the autoescaping loop template
+    return (Markup(text) for texts in mapper(_loop_sections, tasks) for text in texts)
+
+
+def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False,
+                mapper: Callable = map) -> str:
     """The report as one self-contained HTML page.
 
     Parameters
@@ -291,20 +427,25 @@ def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_pr
     for_print : bool
         The PDF's variant: at most :data:`PDF_DETAIL_LIMIT` detail sections and
         :data:`PDF_TABLE_LIMIT` lines per long table, each cut said in the text.
+    mapper : callable
+        ``map`` or a process pool's ``map``: renders the detail sections (:func:`_sections`); the page
+        is the same either way.
     """
     details = report.details
     table_limit = None
     if for_print:
         details = details[:PDF_DETAIL_LIMIT]
         table_limit = PDF_TABLE_LIMIT
+    anchors = frozenset(d.anchor for d in details)
     return environment().get_template("base.html.j2").render(
         r=report,
         details=details,
+        sections=_sections(details, rendered, anchors, for_print, mapper),
         drawings=rendered,
         paper=PAPERS.get(paper, "A4"),
         for_print=for_print,
         table_limit=table_limit,
-        detail_anchors=frozenset(d.anchor for d in details),
+        detail_anchors=anchors,
         status_order=STATUS_ORDER,
     )
 
@@ -427,10 +568,12 @@ def write_outputs(audit) -> dict[str, Path]:
     t0 = time.perf_counter()
     limit = getattr(audit.options, "plot_limit", PLOT_LIMIT)
     with _cycle_collector_held():
+        environment().get_template("base.html.j2")   # compiled before the pool's workers are forked
+        environment().get_template("loop.html.j2")
         with _mapper(audit.options.jobs) as mapper:
             report = build_report(audit, plot_limit=limit, mapper=mapper)
             rendered = draw(report, mapper=mapper)
-        html = render_html(report, rendered, paper=audit.options.paper)
+            html = render_html(report, rendered, paper=audit.options.paper, mapper=mapper)
     written: dict[str, Path] = {}
     (out / "report.html").write_text(html, encoding="utf-8")
     written["report.html"] = out / "report.html"

@@ -5,9 +5,8 @@ models, results table, extras) and returns a :class:`Report`. Nothing here
 formats numbers or writes markup; :mod:`audit.render` and the templates do.
 Values stay in project units (time [s], frequency [rad/s], phase [deg], levels [dB]).
 
-Curves for the plots are evaluated here from the exact loop models
-(:meth:`~audit.loop.LoopModel.L`, ``S``, ``T``, exact dead time) so that
-:mod:`audit.plots` only draws.
+The curves of the loop charts (exact frequency responses, step responses, residuals) are
+computed by :mod:`audit.curves` for the first detail sections, so that :mod:`audit.plots` only draws.
 
 Stages that may not have run are read tolerantly: the ranking columns, the
 time-domain traces (:mod:`audit.timedomain`), disturbance residuals, proposals
@@ -16,7 +15,7 @@ and history are each shown when present and left out, with a note, when not.
 
 from __future__ import annotations
 
-import importlib
+import functools
 import math
 import re
 from dataclasses import dataclass, field, replace
@@ -26,6 +25,8 @@ import numpy as np
 import pandas as pd
 
 from .columns import RESULT_COLUMNS
+from .curves import (FrequencyData, LoopPlots, PlotJob, ResidualData, StepData, collect_steps,  # noqa: F401
+                     plot_data, proposed_model, residual_data, start_steps)
 from .health_report import health_summary, health_view
 from .loop import LoopModel
 from .plantdata.report_part import data_views
@@ -41,9 +42,6 @@ WORK_COLUMNS: tuple[str, ...] = ("rank", "tag", "area", "reason", "action", "exp
 
 SUMMARY_TOP = 10
 """Work-list items repeated in the executive summary."""
-
-PLOT_POINTS = 400
-"""Frequency points per plotted curve. [-]"""
 
 
 # ----------------------------------------------------------------------------- data
@@ -127,72 +125,6 @@ class Check:
     unit: str
     rule: str        # "<=", ">=" or "" (no limit)
     verdict: str     # within | near | beyond | unstable | stable | not evaluated | for information
-
-
-@dataclass(frozen=True)
-class FrequencyData:
-    """Exact frequency responses of one loop, for the gain and Nyquist plots.
-
-    Attributes
-    ----------
-    w : ndarray
-        Frequencies, ascending. [rad/s]
-    L, S, T : ndarray
-        Loop transfer, sensitivity and complementary sensitivity on ``w``. [-]
-    ms_max : float
-        Ms limit in force. [-]
-    band_rad_s : float | None
-        Upper edge of the rejection band. [rad/s]
-    attenuation_db : float | None
-        Required attenuation A in the band. [dB]
-    inner_S : ndarray | None
-        Sensitivity of a cascade's inner loop on ``w``. [-]
-    proposed_L, proposed_S : ndarray | None
-        The same for the proposed tuning. [-]
-    """
-
-    w: np.ndarray
-    L: np.ndarray
-    S: np.ndarray
-    T: np.ndarray
-    ms_max: float
-    band_rad_s: float | None = None
-    attenuation_db: float | None = None
-    inner_S: np.ndarray | None = None
-    inner_tag: str = ""
-    proposed_L: np.ndarray | None = None
-    proposed_S: np.ndarray | None = None
-
-
-@dataclass(frozen=True)
-class StepData:
-    """A step response: ``kind`` is ``load`` or ``setpoint``; t [s], y and u [% of range]."""
-
-    kind: str
-    t: np.ndarray
-    y: np.ndarray
-    u: np.ndarray | None = None
-    proposed_t: np.ndarray | None = None
-    proposed_y: np.ndarray | None = None
-
-
-@dataclass(frozen=True)
-class ResidualData:
-    """A disturbance record d(t) and the predicted closed-loop residual y(t); t [s], d, y [% of range]."""
-
-    t: np.ndarray
-    d: np.ndarray
-    y: np.ndarray
-
-
-@dataclass(frozen=True)
-class LoopPlots:
-    """Everything the plots of one loop need."""
-
-    key: str                                  # deterministic, unique within the report
-    frequency: FrequencyData | None
-    steps: tuple[StepData, ...] = ()
-    residual: ResidualData | None = None
 
 
 @dataclass(frozen=True)
@@ -336,6 +268,11 @@ class Report:
 def _blank(value: Any) -> bool:
     if value is None:
         return True
+    kind = type(value)
+    if kind is float:               # the common cases without pandas: NaN is the only float unequal to itself
+        return value != value
+    if kind is str or kind is int or kind is bool:
+        return False
     try:
         return bool(pd.isna(value))
     except (TypeError, ValueError):
@@ -355,6 +292,7 @@ def _text(value: Any) -> str:
     return "" if _blank(value) else str(value)
 
 
+@functools.lru_cache(maxsize=65536)
 def _slug(text: str) -> str:
     s = re.sub(r"[^A-Za-z0-9]+", "-", text).strip("-").lower()
     return s[:40] or "loop"
@@ -387,17 +325,17 @@ class _Results:
         self.frame = frame.reset_index(drop=True)
         self.columns = set(self.frame.columns)
         self.n = len(self.frame)
-        self._arrays: dict[str, np.ndarray | None] = {}   # column -> its values (plain numpy dtypes only)
+        self._arrays: dict[str, np.ndarray] = {}   # column -> its values by position
 
     def get(self, i: int, name: str) -> Any:
         if name not in self.columns or i >= self.n:
             return None
         arr = self._arrays.get(name, False)
-        if arr is False:   # first use: the column's numpy array, read by position like .at (same scalars)
+        if arr is False:   # first use: the column's values by position (the same values as .at once made plain)
             col = self.frame[name]
             arr = self._arrays[name] = (col.to_numpy() if isinstance(col.dtype, np.dtype)
-                                        and col.dtype.kind in "biufcO" else None)
-        return _plain(self.frame.at[i, name] if arr is None else arr[i])
+                                        and col.dtype.kind in "biufcO" else col.to_numpy(dtype=object))
+        return _plain(arr[i])
 
     def has(self, name: str) -> bool:
         return name in self.columns and bool(self.frame[name].notna().any())
@@ -570,65 +508,6 @@ def _entered(row: LoopRow) -> tuple[Item, ...]:
     return tuple(Item(str(k), v) for k, v in row.raw.items() if not _blank(v) and str(v).strip() != "")
 
 
-# ----------------------------------------------------------------------------- plot data
-
-
-def plot_frequencies(model: LoopModel, refs: list[Any]) -> np.ndarray:
-    """A log grid covering the loop's characteristic frequencies, with those frequencies on it.
-
-    Parameters
-    ----------
-    model : LoopModel
-        The loop (its time constants and dead time set the scale when ``refs`` is empty).
-    refs : list
-        Frequencies the plot must show (crossovers, the Ms peak, band edge). [rad/s]
-
-    Returns
-    -------
-    ndarray
-        At most :data:`PLOT_POINTS` frequencies, ascending, from a whole decade to a whole
-        decade, the finite positive ``refs`` among them (so the Ms peak is drawn at its
-        computed height). [rad/s]
-    """
-    good = sorted({float(r) for r in refs if _finite(r) and r > 0})
-    if not good:
-        p = model.process
-        good = [1.0 / max(model.delay, p.tau1, p.tau2, 1e-3)]
-    lo = math.floor(math.log10(min(good) / 300.0))
-    hi = math.ceil(math.log10(max(good) * 100.0))
-    grid = np.logspace(lo, hi, PLOT_POINTS - len(good))
-    return np.unique(np.concatenate([grid, good]))
-
-
-def proposed_model(base: LoopModel, proposal: Any) -> LoopModel | None:
-    """The proposed loop carried by a proposal object, whatever its exact shape.
-
-    A :class:`LoopModel` itself; else its first attribute among ``model``,
-    ``proposed_model``, ``proposed``, ``loop`` that is a LoopModel; else its
-    ``settings.controller()`` (or a ``controller``) applied to ``base``, with the
-    action reversed when the proposal corrects it (``corrected_action``).
-    """
-    if proposal is None:
-        return None
-    if isinstance(proposal, LoopModel):
-        return proposal
-    for name in ("model", "proposed_model", "proposed", "loop", "new_model"):
-        cand = getattr(proposal, name, None)
-        if isinstance(cand, LoopModel):
-            return cand
-    ctrl = getattr(proposal, "controller", None)
-    settings = getattr(proposal, "settings", None)
-    if ctrl is None and settings is not None:
-        ctrl = getattr(settings, "controller", None)
-    if callable(ctrl) and not hasattr(ctrl, "rational"):
-        ctrl = ctrl()
-    if ctrl is None or not hasattr(ctrl, "rational"):
-        return None
-    action = getattr(proposal, "corrected_action", None)
-    sign = {"reverse": 1.0, "direct": -1.0}.get(action, base.sign) if isinstance(action, str) else base.sign
-    return replace(base, controller=ctrl, sign=sign)
-
-
 @dataclass(frozen=True)
 class ProposalView:
     """A retuning proposal as the report shows it."""
@@ -673,208 +552,7 @@ def _proposal_view(proposal: Any, res: _Results, i: int) -> ProposalView | None:
     )
 
 
-def _arrays(obj: Any, *names: str) -> tuple[np.ndarray | None, ...]:
-    out = []
-    for n in names:
-        v = obj.get(n) if isinstance(obj, dict) else getattr(obj, n, None)
-        out.append(None if v is None else np.asarray(v, float))
-    return tuple(out)
-
-
-def _step_source() -> Callable[[list[LoopModel], str], list[Any]] | None:
-    """:func:`audit.timedomain.step_traces_many`, or None when the time-domain stage is not in this build."""
-    try:
-        mod = importlib.import_module("audit.timedomain")
-    except ImportError:
-        return None
-    return getattr(mod, "step_traces_many", None)
-
-
-TRACE_POINTS = 800
-"""Most points kept per time trace in the report model (the chart thins further). [-]"""
-
-TRACE_CUT = 20.0
-"""A diverging trace is cut where its magnitude first exceeds this many unit steps. [-]"""
-
-
-def _thin(t: np.ndarray, *ys: np.ndarray | None, cut: bool = True) -> tuple[np.ndarray | None, ...]:
-    """At most :data:`TRACE_POINTS` points: the ends and, in each run of points, the lowest and highest
-    of every trace (peaks survive); the trace cut where it diverges."""
-    n = len(t)
-    if cut and ys and ys[0] is not None:
-        big = np.flatnonzero(~np.isfinite(ys[0]) | (np.abs(ys[0]) > TRACE_CUT))
-        if big.size:
-            n = max(int(big[0]) + 1, 2)
-    real = [y[:n] for y in ys if y is not None]
-    if n <= TRACE_POINTS or not real:
-        idx = np.arange(n)
-    else:
-        buckets = max(1, TRACE_POINTS // (2 * len(real)) - 1)
-        k = -(-n // buckets)
-        base = np.arange(buckets) * k
-        keep = [np.array([0, n - 1])]
-        for y in real:
-            v = np.nan_to_num(np.concatenate([y, np.full(buckets * k - n, y[-1])]), nan=0.0).reshape(buckets, k)
-            keep += [np.minimum(base + v.argmin(axis=1), n - 1), np.minimum(base + v.argmax(axis=1), n - 1)]
-        idx = np.unique(np.concatenate(keep))
-    return (t[idx],) + tuple(None if y is None else y[idx] for y in ys)
-
-
-def _step_data(kind: str, tr: Any, ptr: Any, notes: list[str]) -> StepData | None:
-    """One step response for the plots from its trace (and the proposed tuning's), or None with a note."""
-    t, y, u = _arrays(tr, "t", "y", "u")
-    why = _text(getattr(tr, "note", ""))
-    if why or t is None or y is None or len(t) != len(y) or len(t) < 2:
-        notes.append(f"The {kind} step response could not be computed: {why or 'no trace'}.")
-        return None
-    t2, y2, u2 = _thin(t, y, u if u is not None and len(u) == len(t) else None)
-    if len(t2) and t2[-1] < t[-1] - 1e-12 * abs(t[-1]) and np.abs(y2).max() > TRACE_CUT / 2:
-        notes.append(f"The {kind} step response grows without bound; its plot stops at t = {t2[-1]:.4g} s.")
-    pt = py = None
-    if ptr is not None and not _text(getattr(ptr, "note", "")):
-        pt, py = _arrays(ptr, "t", "y")
-        if pt is not None and py is not None and len(pt) == len(py) and len(pt) >= 2:
-            pt, py = _thin(pt, py)
-        else:
-            pt = py = None
-    return StepData(kind, t2, y2, u2, pt, py)
-
-
-def _traces_of_kind(task: tuple[list[LoopModel], str]) -> tuple[list[Any] | None, str]:
-    """Step traces of one kind for many models, one batched simulation (a task a process pool can run).
-
-    Parameters
-    ----------
-    task : tuple
-        (models, ``load`` or ``setpoint``).
-
-    Returns
-    -------
-    tuple
-        (traces in model order, '') or (None, why the simulation failed).
-    """
-    models, kind = task
-    try:
-        return list(_step_source()(models, kind)), ""
-    except Exception as exc:  # a failing simulation leaves the rest of the report intact
-        return None, f"{exc}"
-
-
-def _start_steps(jobs: list["PlotJob"], mapper: Callable = map) -> Any:
-    """Start the step simulations of the loops with plots: one batch per kind, present and proposed tuning.
-
-    With a process pool's ``map`` both kinds run in the workers at once while the caller goes on; with
-    ``map`` they run when :func:`_collect_steps` reads them. Either way the traces are the same.
-
-    Parameters
-    ----------
-    jobs : list of PlotJob
-        The loops with plots.
-    mapper : callable
-        ``map`` or a process pool's ``map``.
-
-    Returns
-    -------
-    iterator or None
-        (traces, error) per kind, in the order load, set point; None when there is nothing to simulate.
-    """
-    if _step_source() is None or not jobs:
-        return None
-    models = [j.model for j in jobs] + [j.proposed for j in jobs if j.proposed is not None]
-    return mapper(_traces_of_kind, [(models, "load"), (models, "setpoint")])
-
-
-def _collect_steps(jobs: list["PlotJob"], pending: Any) -> dict[str, tuple[tuple[StepData, ...], tuple[str, ...]]]:
-    """The step data of every loop with plots from :func:`_start_steps`.
-
-    Returns
-    -------
-    dict
-        Plot key -> (step data, notes about what could not be computed).
-    """
-    notes: dict[str, list[str]] = {j.key: [] for j in jobs}
-    steps: dict[str, list[StepData]] = {j.key: [] for j in jobs}
-    if _step_source() is None:
-        for j in jobs:
-            notes[j.key].append("Step responses are not shown: the time-domain stage is not available in this build.")
-    elif pending is not None:
-        with_prop = [k for k, j in enumerate(jobs) if j.proposed is not None]
-        for kind, (traces, error) in zip(("load", "setpoint"), pending):
-            if traces is None:
-                for j in jobs:
-                    notes[j.key].append(f"The {kind} step response could not be computed: {error}.")
-                continue
-            prop = dict(zip(with_prop, traces[len(jobs):]))
-            for k, j in enumerate(jobs):
-                st = _step_data(kind, traces[k], prop.get(k), notes[j.key])
-                if st is not None:
-                    steps[j.key].append(st)
-    return {k: (tuple(steps[k]), tuple(notes[k])) for k in notes}
-
-
-def _batched_steps(jobs: list["PlotJob"]) -> dict[str, tuple[tuple[StepData, ...], tuple[str, ...]]]:
-    """Step responses of every loop with plots, present and proposed tuning, in one simulation per kind.
-
-    Returns
-    -------
-    dict
-        Plot key -> (step data, notes about what could not be computed).
-    """
-    return _collect_steps(jobs, _start_steps(jobs))
-
-
-def _residual(audit, index: int) -> ResidualData | None:
-    rec = (audit.extras.get("residuals") or {}).get(index)
-    if rec is None:
-        return None
-    t, d, y = _arrays(rec, "t", "d", "y")
-    if t is None or d is None or y is None or not (len(t) == len(d) == len(y)) or len(t) < 2:
-        return None
-    t, d, y = _thin(t, d, y, cut=False)
-    return ResidualData(t, d, y)
-
-
-@dataclass(frozen=True)
-class PlotJob:
-    """What one loop's plot data is computed from (picklable, for a process pool)."""
-
-    key: str
-    model: LoopModel
-    proposed: LoopModel | None
-    refs: tuple[Any, ...]          # frequencies the plots must show [rad/s]
-    ms_max: float                  # [-]
-    band_rad_s: float | None       # [rad/s]
-    attenuation_db: float | None   # [dB]
-    inner_tag: str
-    residual: ResidualData | None
-    steps: tuple[StepData, ...] = ()     # from :func:`_batched_steps`
-    notes: tuple[str, ...] = ()          # what could not be computed
-
-
-def plot_data(job: PlotJob) -> tuple[LoopPlots, tuple[str, ...]]:
-    """The curves of one loop: exact frequency responses; the step responses come in the job.
-
-    Parameters
-    ----------
-    job : PlotJob
-        The loop and its limits.
-
-    Returns
-    -------
-    tuple
-        (:class:`LoopPlots`, notes about anything that could not be computed).
-    """
-    model, proposed = job.model, job.proposed
-    w = plot_frequencies(model, list(job.refs))
-    with np.errstate(all="ignore"):
-        Lw = model.L(w)
-        S, T = 1.0 / (1.0 + Lw), Lw / (1.0 + Lw)
-        inner_S = model.inner.S(w) if model.inner is not None else None
-        pL = proposed.L(w) if proposed is not None else None
-        pS = 1.0 / (1.0 + pL) if pL is not None else None
-    freq = FrequencyData(w, Lw, S, T, job.ms_max, job.band_rad_s, job.attenuation_db, inner_S, job.inner_tag,
-                         pL, pS)
-    return LoopPlots(job.key, freq, job.steps, job.residual), job.notes
+# ----------------------------------------------------------------------------- plot jobs
 
 
 def _plot_job(audit, i: int, row: LoopRow, model: LoopModel, res: _Results, proposed: LoopModel | None,
@@ -885,7 +563,8 @@ def _plot_job(audit, i: int, row: LoopRow, model: LoopModel, res: _Results, prop
     band, att = res.get(i, "band_rad_s"), res.get(i, "attenuation_db")
     refs = tuple(res.get(i, c) for c in ("wc_rad_s", "w180_rad_s", "w_ms_rad_s", "band_rad_s"))
     return PlotJob(loop_anchor(row), model, proposed, refs, float(ms_max), band if _finite(band) else None,
-                   att if _finite(att) else None, inner_tag, _residual(audit, row.index))
+                   att if _finite(att) else None, inner_tag,
+                   residual_data((audit.extras.get("residuals") or {}).get(row.index)))
 
 
 # ----------------------------------------------------------------------------- details
@@ -921,7 +600,7 @@ def _detail(audit, i: int, res: _Results, status: str, with_plots: bool,
     row = rows[i]
     notes: list[str] = []
     proposal = (audit.extras.get("proposals") or {}).get(row.index)
-    proposed = proposed_model(model, proposal) if model is not None else None
+    proposed = proposed_model(model, proposal) if model is not None and with_plots else None   # plots only
     cascade = None
     inner_tag = ""
     if model is not None and model.inner is not None:
@@ -1044,7 +723,7 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     jobs = [job for _, job in pairs if job is not None]
     # one vectorised simulation per kind for all loops, in the pool's workers when there is a pool,
     # while this process computes the frequency responses and the rest of the report
-    pending = _start_steps(jobs, mapper)
+    pending = start_steps(jobs, mapper)
     freq = {j.key: plot_data(j)[0] for j in jobs}
     plant_data, data = data_views(audit)
     details = tuple(replace(d, data=data[d.index]) if d.index in data else d for d, _ in pairs)
@@ -1059,7 +738,7 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     invalid = tuple(_invalid_line(r, res, i) for i, r in enumerate(rows) if statuses[i] == "invalid")
     health = health_summary(audit, {d.index: d.anchor for d in details})
     groups = _group_sections(audit)
-    batched = _collect_steps(jobs, pending)
+    batched = collect_steps(jobs, pending)
     details = tuple(d if d.anchor not in freq else
                     replace(d, plots=replace(freq[d.anchor], steps=batched[d.anchor][0]),
                             notes=batched[d.anchor][1] + d.notes) for d in details)

@@ -2,7 +2,7 @@
 
 Usage::
 
-    python benchmarks/report.py [--sizes 100 2000] [--no-sample] [--no-pdf] [--traces] [--seed 1]
+    python benchmarks/report.py [--sizes 100 2000] [--no-sample] [--no-pdf] [--traces] [--seed 1] [--jobs 1]
 
 For the sample site and for seeded generated inventories of each size (audit.generate), one
 process runs the pipeline stages, then times the report apart, stage by stage:
@@ -12,6 +12,9 @@ process runs the pipeline stages, then times the report apart, stage by stage:
 * ``draw``: :func:`audit.render.draw` (chart data and the chart templates);
 * ``HTML``: the page rendered and written; ``PDF``: the print page rendered and laid out by
   WeasyPrint; ``xlsx``: results.xlsx;
+* with ``--jobs N`` above 1, build, draw and HTML run as ``write_outputs`` runs them: one process pool of
+  N workers for the step batches, the loop charts and the detail sections; ``workers_cpu`` is the CPU
+  time of its workers (``html_cpu`` stays that of this process);
 * with ``--traces``: the step traces of the detail loops simulated loop by loop
   (:func:`audit.timedomain.step_traces`) against one batch (:func:`step_traces_many`).
 
@@ -65,8 +68,13 @@ def _traces(report, audit) -> tuple[float, float, int]:
     return one, time.perf_counter() - t0, len(models)
 
 
-def measure(inventory: Path, out: Path, pdf: bool, traces: bool) -> dict:
+def measure(inventory: Path, out: Path, pdf: bool, traces: bool, jobs: int = 1) -> dict:
     """Stage and report times [s] of one inventory."""
+    import contextlib
+    import inspect
+    import resource
+
+    from audit import render as render_mod
     from audit.inventory import read_inventory
     from audit.pipeline import AuditOptions, new_audit, run_stages
     from audit.render import PLOT_LIMIT, draw, render_html, write_pdf
@@ -82,18 +90,25 @@ def measure(inventory: Path, out: Path, pdf: bool, traces: bool) -> dict:
     run_stages(audit)
     row["stages"] = sum(audit.timings.values())
     row["proposals"] = audit.timings.get("proposals", 0.0)
+    pool = (getattr(render_mod, "_mapper", None) if jobs > 1 else None) or (lambda n: contextlib.nullcontext(map))
+    pooled_render = "mapper" in inspect.signature(render_html).parameters   # earlier code rendered in one process
+    kids0 = resource.getrusage(resource.RUSAGE_CHILDREN)
     c0 = time.process_time()
     t0 = time.perf_counter()
-    report = build_report(audit, plot_limit=PLOT_LIMIT)
-    row["build"] = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    rendered = draw(report)
-    row["draw"] = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    html = render_html(report, rendered)
-    (out / "report.html").write_text(html, encoding="utf-8")
-    row["HTML"] = time.perf_counter() - t0
+    with pool(jobs) as mapper:
+        report = build_report(audit, plot_limit=PLOT_LIMIT, mapper=mapper)
+        row["build"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        rendered = draw(report, mapper=mapper)
+        row["draw"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        html = (render_html(report, rendered, mapper=mapper) if pooled_render else render_html(report, rendered))
+        (out / "report.html").write_text(html, encoding="utf-8")
+        row["HTML"] = time.perf_counter() - t0
     row["html_cpu"] = time.process_time() - c0
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN)
+    if jobs > 1:
+        row["workers_cpu"] = kids.ru_utime + kids.ru_stime - kids0.ru_utime - kids0.ru_stime
     row["html_mb"] = len(html.encode()) / 1e6
     if pdf:
         from pypdf import PdfReader
@@ -119,7 +134,7 @@ def measure(inventory: Path, out: Path, pdf: bool, traces: bool) -> dict:
 
 COLUMNS = (("inventory", "{}"), ("loops", "{:,}"), ("details", "{:,}"), ("charts", "{:,}"), ("read", "{:.2f}"),
            ("stages", "{:.1f}"), ("proposals", "{:.1f}"), ("build", "{:.2f}"), ("draw", "{:.2f}"),
-           ("HTML", "{:.2f}"), ("html_cpu", "{:.2f}"), ("html_mb", "{:.2f}"), ("html_total", "{:.1f}"), ("PDF", "{:.1f}"),
+           ("HTML", "{:.2f}"), ("html_cpu", "{:.2f}"), ("workers_cpu", "{:.2f}"), ("html_mb", "{:.2f}"), ("html_total", "{:.1f}"), ("PDF", "{:.1f}"),
            ("pages", "{}"), ("xlsx", "{:.2f}"), ("xlsx_cpu", "{:.2f}"), ("load", "{:.1f}"), ("traces_one", "{:.1f}"), ("traces_batch", "{:.2f}"),
            ("trace_models", "{}"))
 
@@ -141,6 +156,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--no-sample", action="store_true")
     ap.add_argument("--no-pdf", action="store_true")
     ap.add_argument("--traces", action="store_true", help="also time per-loop against batched step traces")
+    ap.add_argument("--jobs", type=int, default=1, help="worker processes for the report, as `run --jobs`")
     args = ap.parse_args(argv)
     warnings.simplefilter("ignore", RuntimeWarning)
     from audit.generate import write_synthetic_inventory
@@ -158,7 +174,7 @@ def main(argv: list[str] | None = None) -> int:
             write_synthetic_inventory(inv, n, args.seed)
             todo.append((f"generated {n}", inv))
         for name, inv in todo:
-            r = measure(inv, Path(tmp) / name.replace(" ", "_"), not args.no_pdf, args.traces)
+            r = measure(inv, Path(tmp) / name.replace(" ", "_"), not args.no_pdf, args.traces, args.jobs)
             r["inventory"] = name
             rows.append(r)
             print(f"{name}: " + ", ".join(f"{k} {v:.2f}" for k, v in r.items() if isinstance(v, float)), flush=True)

@@ -225,7 +225,7 @@ def group_nyquist_chart(sec: GroupSection, key: str):
     Returns
     -------
     audit.plots.Chart
-        Chart data for ``templates/charts/nyquist.html.j2``.
+        Chart data (:mod:`audit.svg` layout ``nyquist``).
 
     References
     ----------
@@ -253,7 +253,7 @@ def group_nyquist_chart(sec: GroupSection, key: str):
     legend = P._legend(P._line_entries([main, mirror]) + [(crit.label, "mark", {"colour": crit.colour,
                                                                                   "shape": crit.shape})])
     title = f"Generalised Nyquist curve of group {sec.gid}"
-    return P.Chart(key, "charts/nyquist.html.j2", title,
+    return P.Chart(key, "nyquist", title,
                    f"Curve of det(I + L) - 1 for the loops {', '.join(sec.tags)} closed together, with the critical "
                    f"point -1.", P.WIDTH, f.y1 + P.MARGIN_BOTTOM, f, tuple(axes + [main, mirror]), (), (crit,), (), (),
                    legend, title + ".")

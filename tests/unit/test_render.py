@@ -156,3 +156,30 @@ def test_two_renderings_are_identical(page):
     audit, _, html = page
     report = build_report(audit, plot_limit=2)
     assert render_html(report, draw(report)) == html
+
+
+def test_page_with_a_process_pool_is_the_same_page(page, monkeypatch):
+    """--jobs 2: step batches, charts and detail sections in a pool's workers give the bytes of one process
+    (common practice: parallel work must not change the output); runs of one section and one chart's loop
+    so that every run boundary is crossed."""
+    import audit.render as render
+    audit, _, html = page
+    monkeypatch.setattr(render, "SECTION_CHUNK", 1)
+    monkeypatch.setattr(render, "CHART_CHUNK", 1)
+    with render._mapper(2) as mapper:
+        report = build_report(audit, plot_limit=2, mapper=mapper)
+        pooled = render_html(report, draw(report, mapper=mapper), mapper=mapper)
+    assert pooled == html
+
+
+@pytest.mark.parametrize("xy", [[[0.04, -0.04]], [[-0.05, 0.05]], [[12.25, -7.35]], [[123456.78, 1e-9]],
+                                [[-3.0, 99.95]], [[0.15, 0.25]]])
+def test_svg_points_are_fixed_point_tenths(xy):
+    """The writer's coordinate text equals Python's fixed-point formatting of the value rounded to 0.1 px
+    ('{:.1f}' of numpy's round), '-0.0' written '0.0' (common practice: same chart, same bytes)."""
+    from audit.svg import points, px
+    arr = np.asarray(xy, float)
+    want = " ".join(",".join(("0.0" if t == "-0.0" else t) for t in (f"{v:.1f}" for v in np.round(p, 1)))
+                    for p in arr)
+    assert points(arr) == want
+    assert px(arr[0, 0]) == ("0.0" if f"{arr[0, 0]:.1f}" == "-0.0" else f"{arr[0, 0]:.1f}")

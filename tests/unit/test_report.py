@@ -158,7 +158,7 @@ def test_results_missing_a_status_column_do_not_break_the_report(audit):
 def test_a_failing_step_simulation_leaves_a_note_and_the_other_kind(tmp_path, monkeypatch):
     """One kind of step simulation failing costs that kind's plots only, with the reason in the notes;
     without a time-domain stage every plotted loop says so (regression of the report's error path)."""
-    import audit.report as report_mod
+    import audit.curves as curves_mod
     from audit.timedomain import step_traces_many
 
     def flaky(models, kind):
@@ -167,13 +167,13 @@ def test_a_failing_step_simulation_leaves_a_note_and_the_other_kind(tmp_path, mo
         return step_traces_many(models, kind)
 
     audit = make_audit(tmp_path)
-    monkeypatch.setattr(report_mod, "_step_source", lambda: flaky)
+    monkeypatch.setattr(curves_mod, "_step_source", lambda: flaky)
     plotted = [d for d in build_report(audit).details if d.plots is not None]
     assert plotted
     for d in plotted:
         assert [s.kind for s in d.plots.steps] == ["setpoint"]
         assert "The load step response could not be computed: no memory left for the load batch." in d.notes
-    monkeypatch.setattr(report_mod, "_step_source", lambda: None)
+    monkeypatch.setattr(curves_mod, "_step_source", lambda: None)
     for d in build_report(audit).details:
         if d.plots is not None:
             assert d.plots.steps == ()
