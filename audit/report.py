@@ -25,8 +25,7 @@ import numpy as np
 import pandas as pd
 
 from .columns import RESULT_COLUMNS
-from .curves import (FrequencyData, LoopPlots, PlotJob, ResidualData, StepData, collect_steps,  # noqa: F401
-                     plot_data, proposed_model, residual_data, start_steps)
+from .curves import LoopPlots, PlotJob, collect_steps, plot_data, proposed_model, residual_data, start_steps
 from .health_report import health_summary, health_view
 from .loop import LoopModel
 from .plantdata.report_part import data_views
