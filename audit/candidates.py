@@ -372,13 +372,15 @@ def _first_contact(L0: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray
     return np.where(bad, 0.0, t)
 
 
-def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray) -> np.ndarray:
+def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray,
+                grid: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """:func:`_first_contact` of L0 = kp A (rows x gains) along b, in real arithmetic.
 
     With L0 = kp A the point of each frequency where L0 + t b meets a forbidden point x solves
     Im((x - kp A)/b) = Im(x/b) - kp Im(A/b) = 0: per gain only a product and a difference of
     arrays shared by the row's gains, and the real part only where the sign changes. The same
-    contacts as :func:`_first_contact`, to rounding.
+    contacts as :func:`_first_contact`, to rounding. One call of :func:`_ki_contacts` on
+    :func:`_contact_rows` (callers with several sets of gains on the same rows share the latter).
 
     Parameters
     ----------
@@ -392,12 +394,95 @@ def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts
         Radius of the forbidden disc about -1. [-]
     pts : ndarray (R, q)
         Forbidden points, NaN padded. [-]
+    grid : (u, c0, c1) or None
+        When the gains are c0 + c1 u (u (K,) ascending and shared by the rows, c0 and c1 (R,)),
+        that description (it makes the search of the gains between two frequencies cheaper).
 
     Returns
     -------
     ndarray (R, K)
         The largest ki of each gain (0 inside the disc at ki = 0, inf where never). [1/s]
     """
+    return _ki_contacts(_contact_rows(A, b, r, pts), kp, grid)
+
+
+@dataclass
+class _ContactRows:
+    """What the ki contacts of a block of rows share across their gains (:func:`_contact_rows`)."""
+
+    A: np.ndarray            # (R, n_w) (1 + D) P [-]
+    b: np.ndarray            # (R, n_w) P/(jw) [s]
+    r: np.ndarray            # (R,) disc radius [-]
+    points: list             # per forbidden-point column: a _PointRows
+
+
+@dataclass
+class _PointRows:
+    """One forbidden point x of each of some rows: x/b and A/b, and the intervals where Im((x - kp A)/b)
+    may change sign for a gain within the rows' span."""
+
+    rows: np.ndarray | None  # rows of the block that have this point (None: all)
+    Ur: np.ndarray           # (R', n_w) Re(x/b)
+    Ui: np.ndarray           # (R', n_w) Im(x/b)
+    Vr: np.ndarray           # (R', n_w) Re(A/b)
+    Vi: np.ndarray           # (R', n_w) Im(A/b)
+    fast: np.ndarray         # (R',) Im(A/b) > 0 throughout and everything finite: the intervals below hold
+    span: tuple              # (lo, hi) (R',) the gains the intervals were found for
+    cells: tuple             # (row, interval, lo, hi, Ur0, Ur1, Vr0, Vr1): the intervals of fast rows
+                             # whose range [lo, hi] of Ui/Vi (with slack) meets the span
+
+
+def _contact_rows(A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray,
+                  span: tuple[np.ndarray, np.ndarray] | None = None) -> _ContactRows:
+    """The parts of :func:`_ki_contacts` that do not depend on the gains: x/b and A/b of every forbidden
+    point x and, where Im(A/b) > 0 throughout a row, the intervals between neighbouring frequencies
+    where Im((x - kp A)/b) changes sign for some gain kp of ``span`` (lowest and highest gain of each
+    row, (R,) each; None: any gain)."""
+    R = A.shape[0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        V = A / b
+    if span is None:
+        span = (np.full(R, -np.inf), np.full(R, np.inf))
+    points = []
+    for q in range(pts.shape[1]):
+        rows = np.flatnonzero(np.isfinite(pts[:, q]))
+        if not rows.size:
+            continue
+        whole = rows.size == R
+        x = pts[:, q] if whole else pts[rows, q]
+        v = V if whole else V[rows]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            U = x[:, None] / (b if whole else b[rows])
+        Ur, Ui, Vr, Vi = U.real, U.imag, v.real, v.imag
+        s_lo, s_hi = (span[0], span[1]) if whole else (span[0][rows], span[1][rows])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            fast = (Vi > 0).all(-1) & np.isfinite(Ui).all(-1) & np.isfinite(Vi).all(-1)
+            f = np.flatnonzero(fast)
+            rho = Ui[f] / Vi[f]
+        lo = np.minimum(rho[:, :-1], rho[:, 1:])
+        hi = np.maximum(rho[:, :-1], rho[:, 1:])
+        lo -= 1e-9 * np.abs(lo)
+        hi += 1e-9 * np.abs(hi)
+        with np.errstate(invalid="ignore"):
+            rr, ii = np.nonzero((hi >= s_lo[f, None]) & (lo <= s_hi[f, None]))
+        lo_c, hi_c = lo[rr, ii], hi[rr, ii]
+        rr = f[rr]
+        cells = (rr, ii, lo_c, hi_c, Ur[rr, ii], Ur[rr, ii + 1], Vr[rr, ii], Vr[rr, ii + 1])
+        points.append(_PointRows(None if whole else rows, Ur, Ui, Vr, Vi, fast, (s_lo, s_hi), cells))
+    return _ContactRows(A, b, r, points)
+
+
+def _ki_contacts(C: _ContactRows, kp: np.ndarray, grid=None) -> np.ndarray:
+    """:func:`_ki_contact` of gains ``kp`` (R, K) on rows prepared by :func:`_contact_rows`.
+
+    The disc is met where a quadratic in t has a positive root (every row, gain and frequency).
+    A forbidden point is met where Im((x - kp A)/b) changes sign between two frequencies; only
+    the intervals where that contact could still lower a row's largest ki so far are looked at:
+    the contact there is Re((x - kp A)/b) interpolated, not less than its smallest value at the
+    interval's ends and gains, so an interval whose bound exceeds every ki of the row is skipped
+    (the minimum is unchanged).
+    """
+    A, b, r = C.A, C.b, C.r
     k = kp[..., None]
     br, bi = b.real[:, None, :], b.imag[:, None, :]
     bb = br * br + bi * bi
@@ -423,27 +508,23 @@ def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts
     ok = disc > 0
     ok &= k1 > 0
     t = np.ascontiguousarray(np.where(ok, k1, np.inf).min(-1))
+    del ab, aa, disc, k1, tmp, ok
     flat_t = t.reshape(-1)   # a view: the contacts found below are written into t
-    with np.errstate(divide="ignore", invalid="ignore"):
-        V = A / b
-    for q in range(pts.shape[1]):
-        rows = np.flatnonzero(np.isfinite(pts[:, q]))
-        if not rows.size:
-            continue
-        whole = rows.size == pts.shape[0]
-        x = pts[:, q] if whole else pts[rows, q]
-        v, kk = (V, k) if whole else (V[rows], k[rows])
-        with np.errstate(divide="ignore", invalid="ignore"):
-            U = x[:, None] / (b if whole else b[rows])
-        hit, i0, i1 = _sign_changes(U.imag, v.imag, kk[..., 0])
+    for pr in C.points:
+        rows = pr.rows
+        whole = rows is None
+        kk = k if whole else k[rows]
+        top = t.max(-1) if whole else t[rows].max(-1)      # the row's largest ki so far
+        g = None if grid is None else (grid[0], grid[1] if whole else grid[1][rows], grid[2] if whole else grid[2][rows])
+        hit, i0, i1 = _point_changes(pr, kk[..., 0], top, g)
         if not hit[0].size:
             continue
         kh = kk[hit[0], hit[1], 0]
-        rr = U.real
+        Ur, Vr = pr.Ur, pr.Vr
         with np.errstate(divide="ignore", invalid="ignore"):
             f = i0 / (i0 - i1)
-            r0 = rr[hit[0], hit[2]] - kh * v.real[hit[0], hit[2]]
-            r1 = rr[hit[0], hit[2] + 1] - kh * v.real[hit[0], hit[2] + 1]
+            r0 = Ur[hit[0], hit[2]] - kh * Vr[hit[0], hit[2]]
+            r1 = Ur[hit[0], hit[2] + 1] - kh * Vr[hit[0], hit[2] + 1]
             kr = r0 + f * (r1 - r0)
         good = (kr > 0) & np.isfinite(kr)
         where = np.ravel_multi_index(hit[:-1], kk.shape[:-1])[good]
@@ -453,57 +534,78 @@ def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts
     return np.where(bad, 0.0, t)
 
 
-def _sign_changes(Ui: np.ndarray, Vi: np.ndarray, kp: np.ndarray) -> tuple[tuple[np.ndarray, ...], np.ndarray, np.ndarray]:
-    """Where im = Ui - kp Vi changes sign between neighbouring frequencies, for every gain of a row.
+def _point_changes(pr: _PointRows, kp: np.ndarray, top: np.ndarray, grid):
+    """Where im = Ui - kp Vi changes sign between neighbouring frequencies, for every gain of a row,
+    leaving out intervals whose contact cannot be below ``top`` (R',) (see :func:`_ki_contacts`).
 
-    Exactly the (row, gain, interval) with im0 im1 <= 0 and im0 != im1, and im at both ends.
-    Where Vi > 0 throughout a row and its gains ascend (the ki search: Vi = w Re(1 + D(jw)) > 0),
-    im falls with kp through zero at Ui/Vi, so the gains with a change between two frequencies
-    lie between the two roots: they are found by a sorted search (with a 1e-9 relative slack,
-    far above rounding) and only they are tested; other rows are tested in full.
+    Exactly the (row, gain, interval) with im0 im1 <= 0 and im0 != im1 that are not left out,
+    and im at both ends. Where Vi > 0 throughout a row and its gains ascend within the span of
+    :func:`_contact_rows`, im falls with kp through zero at Ui/Vi, so the gains with a change in
+    an interval lie between the interval's bounds of Ui/Vi (with a 1e-9 relative slack, far above
+    rounding): they are found by a sorted search and only they are tested; other rows are tested
+    in full.
 
     Parameters
     ----------
-    Ui, Vi : ndarray (R, n_w)
-        Imaginary parts of x/b and of A/b. [s^-1], [-]
-    kp : ndarray (R, K)
+    pr : _PointRows
+        The rows' point.
+    kp : ndarray (R', K)
         Gains of each row. [-]
+    top : ndarray (R',)
+        Largest ki of each row so far (inf: none). [1/s]
+    grid : (u, c0, c1) or None
+        The gains as c0 + c1 u (u (K,) shared), when they are.
 
     Returns
     -------
     tuple
         (rows, gains, intervals) index arrays, and im at the interval's two ends.
     """
-    R, m = Ui.shape
+    Ui, Vi = pr.Ui, pr.Vi
     K = kp.shape[1]
     with np.errstate(invalid="ignore"):
-        fast = (Vi > 0).all(-1) & np.isfinite(Ui).all(-1) & np.isfinite(Vi).all(-1) & (kp > 0).all(-1) \
-            & (np.diff(kp, axis=-1) > 0).all(-1)
+        fast = pr.fast & (kp > 0).all(-1) & (np.diff(kp, axis=-1) > 0).all(-1) \
+            & (kp[:, 0] >= pr.span[0]) & (kp[:, -1] <= pr.span[1])
     parts = []
     slow = np.flatnonzero(~fast)
     if slow.size:
         im = Ui[slow, None, :] - kp[slow, :, None] * Vi[slow, None, :]
         h = np.nonzero(im[..., :-1] * im[..., 1:] <= 0)
         parts.append((slow[h[0]], h[1], h[2]))
-    f = np.flatnonzero(fast)
-    if f.size:
-        rho = Ui[f] / Vi[f]
-        lo = np.minimum(rho[:, :-1], rho[:, 1:])
-        hi = np.maximum(rho[:, :-1], rho[:, 1:])
-        lo -= 1e-9 * np.abs(lo)
-        hi += 1e-9 * np.abs(hi)
-        scale = kp[f, -1:]
-        base = 4.0 * np.arange(f.size)[:, None]          # rows apart: arctan spans less than pi
-        keys = (np.arctan(kp[f] / scale) + base).ravel()  # ascending within and across rows
-        start = K * np.arange(f.size)[:, None]
-        a = np.searchsorted(keys, (np.arctan(lo / scale) + base).ravel(), "left").reshape(lo.shape) - start
-        b = np.searchsorted(keys, (np.arctan(hi / scale) + base).ravel(), "right").reshape(hi.shape) - start
-        a, b = np.clip(a, 0, K), np.clip(b, 0, K)
-        n = np.maximum(b - a, 0).ravel()
-        if n.sum():
-            cell = np.repeat(np.arange(n.size), n)
-            k = np.repeat(a.ravel(), n) + np.arange(n.sum()) - np.repeat(np.cumsum(n) - n, n)
-            parts.append((f[cell // (m - 1)], k, cell % (m - 1)))
+    rr, ii, lo, hi, ur0, ur1, vr0, vr1 = pr.cells
+    if rr.size and fast.any():
+        kmin, kmax = kp[rr, 0], kp[rr, -1]
+        cell = fast[rr] & (hi >= kmin) & (lo <= kmax)
+        lim = top[rr]
+        fin = np.isfinite(lim)
+        if fin.any():
+            # the contact of a gain in [kl, kh] in an interval is at least the least of
+            # Ur - kp Vr at its two ends and at kl, kh (linear in kp; interpolation is convex)
+            kl = np.maximum(lo, kmin)
+            kh = np.minimum(hi, kmax)
+            bound = np.minimum(np.minimum(ur0 - kl * vr0, ur0 - kh * vr0), np.minimum(ur1 - kl * vr1, ur1 - kh * vr1))
+            bound -= 1e-12 * (np.abs(ur0) + np.abs(ur1) + kmax * (np.abs(vr0) + np.abs(vr1)))  # rounding
+            with np.errstate(invalid="ignore"):
+                cell &= ~(bound > np.where(fin, lim * (1.0 + 1e-12), np.inf))
+        sel = np.flatnonzero(cell)
+        if sel.size:
+            rs, lo_c, hi_c = rr[sel], lo[sel], hi[sel]
+            if grid is not None:
+                u, c0, c1 = grid
+                a = np.searchsorted(u, (lo_c - c0[rs]) / c1[rs], "left")
+                e = np.searchsorted(u, (hi_c - c0[rs]) / c1[rs], "right")
+            else:
+                scale = kp[:, -1]
+                base = 4.0 * np.arange(kp.shape[0])[:, None]      # rows apart: arctan spans less than pi
+                keys = (np.arctan(kp / scale[:, None]) + base).ravel()  # ascending within and across rows
+                a = np.searchsorted(keys, np.arctan(lo_c / scale[rs]) + base[rs, 0], "left") - K * rs
+                e = np.searchsorted(keys, np.arctan(hi_c / scale[rs]) + base[rs, 0], "right") - K * rs
+            a, e = np.clip(a, 0, K), np.clip(e, 0, K)
+            n = np.maximum(e - a, 0)
+            if n.sum():
+                c = np.repeat(np.arange(n.size), n)
+                k = np.repeat(a, n) + np.arange(n.sum()) - np.repeat(np.cumsum(n) - n, n)
+                parts.append((rs[c], k, ii[sel][c]))
     if not parts:
         e = np.zeros(0, int)
         return (e, e, e), np.zeros(0), np.zeros(0)
@@ -582,7 +684,7 @@ def _frontier_rows(S: _Search, loop: np.ndarray, td: np.ndarray) -> list[Frontie
     out: list[Frontier | None] = [None] * len(loop)
     m = S.w.shape[1]
     nk = KP_FRACTIONS.size
-    block = max(1, BLOCK_ELEMENTS // (nk * m))
+    block = max(1, 2 * BLOCK_ELEMENTS // (nk * m))   # twice the usual: fewer calls on the rows' forbidden points
     for a in range(0, len(loop), block):
         rows = np.arange(a, min(a + block, len(loop)))
         li, tdb = loop[rows], td[rows]
@@ -599,16 +701,21 @@ def _frontier_rows(S: _Search, loop: np.ndarray, td: np.ndarray) -> list[Frontie
         w, P, r, pts, cd, cdP, li = w[ok], P[ok], r[ok], pts[ok], cd[ok], cdP[ok], li[ok]
         b = P / (1j * w)
         kp = kp_u[ok, None] * KP_FRACTIONS[None, :]
-        ki = _ki_contact(kp, cdP, b, r, pts)
+        lines = _contact_rows(cdP, b, r, pts, (kp[:, 0], kp[:, -1]))
+        ki = _ki_contacts(lines, kp, (KP_FRACTIONS, np.zeros(ok.size), kp_u[ok]))
         fin = np.isfinite(ki).all(-1)
         if not fin.any():
             continue
         keep = np.flatnonzero(fin)
         ok, w, P, r, pts, cd, cdP, b, kp, ki, li = (x[keep] for x in (ok, w, P, r, pts, cd, cdP, b, kp, ki, li))
+        if keep.size < fin.size:
+            lines = _contact_rows(cdP, b, r, pts, (kp[:, 0], kp[:, -1]))
         j = np.argmax(ki, -1)
         n = np.arange(len(keep))
-        kp2 = np.linspace(kp[n, np.maximum(j - 1, 0)], kp[n, np.minimum(j + 1, nk - 1)], 10, axis=-1)[:, 1:-1].copy()
-        ki2 = _ki_contact(kp2, cdP, b, r, pts)
+        # the refined gains start + k step, k = 1..8 (as np.linspace makes them)
+        start, stop = kp[n, np.maximum(j - 1, 0)], kp[n, np.minimum(j + 1, nk - 1)]
+        kp2 = np.linspace(start, stop, 10, axis=-1)[:, 1:-1].copy()
+        ki2 = _ki_contacts(lines, kp2, (np.arange(1.0, 9.0), start, (stop - start) / 9))
         kp, ki = np.concatenate([kp, kp2], -1), np.concatenate([ki, ki2], -1)
         order = np.argsort(kp, -1)
         kp, ki = np.take_along_axis(kp, order, -1), np.take_along_axis(ki, order, -1)
@@ -616,8 +723,10 @@ def _frontier_rows(S: _Search, loop: np.ndarray, td: np.ndarray) -> list[Frontie
         hb = S.has_band[li]
         if hb.any():
             h = np.flatnonzero(hb)
-            sel = S.sel[li[h]][:, None, :]
-            L = (kp[h, :, None] * cd[h, None, :] + ki[h, :, None] / (1j * w[h, None, :])) * P[h, None, :]
+            sel = S.sel[li[h]]
+            c = max(1, int(sel.sum(-1).max()))    # the band is a leading part of each grid
+            sel = sel[:, None, :c]
+            L = (kp[h, :, None] * cd[h, None, :c] + ki[h, :, None] / (1j * w[h, None, :c])) * P[h, None, :c]
             absS = np.where(sel, 1.0 / np.abs(1.0 + L), -np.inf).max(-1)
             with np.errstate(divide="ignore"):
                 band[h] = np.where(sel.any(-1), 20 * np.log10(absS), -np.inf)
