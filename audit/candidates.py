@@ -277,30 +277,43 @@ def _screen(L: np.ndarray, sel: np.ndarray, has_band: np.ndarray, pair: np.ndarr
     """Grid estimates of Ms, gain margins (up and down), phase margin and band level of L (..., n_w).
 
     ``sel`` marks the frequencies in the band (broadcast against L), ``has_band`` the rows with a
-    requirement, ``pair`` the neighbouring points that are both grid points.
+    requirement, ``pair`` the neighbouring points that are both grid points. The largest 1/|1 + L|
+    is taken as 1/(least |1 + L|) (the same number: 1/x rounds monotonically), and the crossings
+    of the real axis and of the unit circle are worked out only where they are.
     """
-    absS = 1.0 / np.abs(1.0 + L)
-    ms = absS.max(-1)
+    d = np.abs(1.0 + L)
+    with np.errstate(divide="ignore"):
+        ms = 1.0 / d.min(-1)
     insel = np.broadcast_to(sel, L.shape)
     with np.errstate(divide="ignore"):
-        band = np.where(insel.any(-1), 20 * np.log10(np.where(insel, absS, -np.inf).max(-1)), -np.inf)
+        band = np.where(insel.any(-1), 20 * np.log10(1.0 / np.where(insel, d, np.inf).min(-1)), -np.inf)
     band = np.where(has_band, band, np.nan)
     im, re = L.imag, L.real
-    c = (im[..., :-1] * im[..., 1:] <= 0) & (im[..., :-1] != im[..., 1:])
+    c = np.nonzero((im[..., :-1] * im[..., 1:] <= 0) & (im[..., :-1] != im[..., 1:]))
+    nxt = c[:-1] + (c[-1] + 1,)
+    i0, i1, r0 = im[c], im[nxt], re[c]
     with np.errstate(divide="ignore", invalid="ignore"):
-        f = im[..., :-1] / (im[..., :-1] - im[..., 1:])
-        x = re[..., :-1] + f * (re[..., 1:] - re[..., :-1])
-    neg = c & (x < 0)
-    up = np.where(neg & (x > -1), -x, 0.0).max(-1)
-    down = np.where(neg & (x < -1), -x, np.inf).min(-1)
+        f = i0 / (i0 - i1)
+        x = r0 + f * (re[nxt] - r0)
+    head = L.shape[:-1]
+    flat = np.ravel_multi_index(c[:-1], head) if len(head) else np.zeros(len(x), int)
+    up = np.zeros(head).reshape(-1)
+    down = np.full(head, np.inf).reshape(-1)
+    neg = x < 0
+    u = neg & (x > -1)
+    np.maximum.at(up, flat[u], -x[u])
+    dn = neg & (x < -1)
+    np.minimum.at(down, flat[dn], -x[dn])
+    up, down = up.reshape(head), down.reshape(head)
     with np.errstate(divide="ignore"):
         gm_db = -20 * np.log10(up)
         gm_down = 20 * np.log10(down)
     m = np.abs(L) - 1.0
-    cc = (m[..., :-1] * m[..., 1:] <= 0) & pair
-    ang = np.degrees(np.abs(np.angle(L[..., :-1])))
-    pm = np.where(cc, 180.0 - ang, np.inf).min(-1)
-    return Screen(ms, gm_db, gm_down, pm, band)
+    cc = np.nonzero((m[..., :-1] * m[..., 1:] <= 0) & pair)
+    pm = np.full(head, np.inf).reshape(-1)
+    ang = np.degrees(np.abs(np.angle(L[cc])))
+    np.minimum.at(pm, np.ravel_multi_index(cc[:-1], head) if len(head) else np.zeros(len(ang), int), 180.0 - ang)
+    return Screen(ms, gm_db, gm_down, pm.reshape(head), band)
 
 
 def _screen_ok(sc: Screen, ms_max, gm_min_db, pm_min_deg, level_db) -> np.ndarray:

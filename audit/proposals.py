@@ -861,6 +861,8 @@ def add_proposals(audit) -> None:
         todo_set = set(todo)
         proposed_models: dict[int, object] = {}
         jobs = max(1, int(getattr(audit.options, "jobs", 1) or 1))
+        # the results rows as plain dicts (a pandas row per loop costs more than its proposal's bookkeeping)
+        figures_rows = dict(zip(todo, res.iloc[todo].to_dict("records")))
         for level in tuning_levels(rows):
             batch = [i for i in level if i in todo_set]
             if not batch:
@@ -871,7 +873,7 @@ def add_proposals(audit) -> None:
                 j = inner_of.get(i)
                 if j is not None and i in composed and j in proposed_models:
                     m = compose(m, proposed_models[j])
-                items.append((m, rows[i], res.iloc[i]))
+                items.append((m, rows[i], figures_rows[i]))
             for (m, _, _), i, p in zip(items, batch, _propose_contained(audit, items, batch, policy, jobs)):
                 if p is None:   # an internal fault of this loop: no proposal, said on its row
                     out[i] = Proposal("", note="no proposal: internal fault (see findings)")
