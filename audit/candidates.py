@@ -240,16 +240,6 @@ def screening_grids(wc: np.ndarray, wd: np.ndarray, n: int = GRID_POINTS) -> Gri
 # screening on a frequency grid (search only; the exact engine decides what is reported)
 
 
-def _c_response(series: bool, kc, ti, td, alpha, s: np.ndarray) -> np.ndarray:
-    """C(jw) of many ideal- or series-form settings; arrays broadcast against s = jw, ti NaN for none."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        integ = np.where((ti > 0) & np.isfinite(ti), 1.0 / (np.where(ti > 0, ti, 1.0) * s), 0.0)
-    if series:
-        return kc * (1.0 + integ) * (td * s + 1.0) / (alpha * td * s + 1.0)
-    der = np.where(td > 0, td * s / (alpha * td * s + 1.0), 0.0)
-    return kc * (1.0 + integ + der)
-
-
 @dataclass(frozen=True)
 class Screen:
     """Grid estimates of the figures of many candidates (search only).
@@ -423,9 +413,13 @@ def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts
 class _ContactRows:
     """What the ki contacts of a block of rows share across their gains (:func:`_contact_rows`)."""
 
-    A: np.ndarray            # (R, n_w) (1 + D) P [-]
-    b: np.ndarray            # (R, n_w) P/(jw) [s]
-    r: np.ndarray            # (R,) disc radius [-]
+    br: np.ndarray           # (R, n_w) Re b, b = P/(jw) the direction of ki [s]
+    e: np.ndarray            # (R, n_w) Re(A conj b), A = (1 + D) P [s]
+    A2: np.ndarray           # (R, n_w) |A|^2 [-]
+    A2r: np.ndarray          # (R, n_w) 2 Re A [-]
+    bb: np.ndarray           # (R, n_w) |b|^2 [s^2]
+    nbb: np.ndarray          # (R, n_w) -|b|^2 [s^2]
+    c0: np.ndarray           # (R,) 1 - r^2, r the disc radius [-]
     points: list             # per forbidden-point column: a _PointRows
 
 
@@ -482,7 +476,9 @@ def _contact_rows(A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray,
         rr = f[rr]
         cells = (rr, ii, lo_c, hi_c, Ur[rr, ii], Ur[rr, ii + 1], Vr[rr, ii], Vr[rr, ii + 1])
         points.append(_PointRows(None if whole else rows, Ur, Ui, Vr, Vi, fast, (s_lo, s_hi), cells))
-    return _ContactRows(A, b, r, points)
+    br, bi, Ar, Ai = b.real, b.imag, A.real, A.imag
+    bb = br * br + bi * bi
+    return _ContactRows(br, Ar * br + Ai * bi, Ar * Ar + Ai * Ai, 2.0 * Ar, bb, -bb, 1.0 - r * r, points)
 
 
 def _ki_contacts(C: _ContactRows, kp: np.ndarray, grid=None) -> np.ndarray:
@@ -495,33 +491,26 @@ def _ki_contacts(C: _ContactRows, kp: np.ndarray, grid=None) -> np.ndarray:
     interval's ends and gains, so an interval whose bound exceeds every ki of the row is skipped
     (the minimum is unchanged).
     """
-    A, b, r = C.A, C.b, C.r
     k = kp[..., None]
-    br, bi = b.real[:, None, :], b.imag[:, None, :]
-    bb = br * br + bi * bi
-    ar = k * A.real[:, None, :]
-    ar += 1.0
-    ai = k * A.imag[:, None, :]
-    tmp = ai * bi
-    ab = ar * br
-    ab += tmp                                   # Re((1 + kp A) conj(b))
-    aa = np.multiply(ar, ar, out=ar)
-    aa += np.multiply(ai, ai, out=ai)
-    aa -= (r * r)[:, None, None]                # |1 + kp A|^2 - r^2
+    ab = k * C.e[:, None, :]
+    ab += C.br[:, None, :]                      # Re((1 + kp A) conj(b)) = Re(conj b) + kp Re(A conj b)
+    aa = k * C.A2[:, None, :]
+    aa += C.A2r[:, None, :]
+    aa *= k
+    aa += C.c0[:, None, None]                   # |1 + kp A|^2 - r^2 = 1 - r^2 + kp (2 Re A + kp |A|^2)
     bad = (aa < 0).any(-1)
-    disc = np.multiply(aa, bb, out=aa)
-    disc *= -1.0
-    disc += np.multiply(ab, ab, out=tmp)        # (Re a conj b)^2 - |b|^2 (|a|^2 - r^2)
-    k1 = np.maximum(disc, 0.0, out=tmp)
+    aa *= C.bb[:, None, :]
+    disc = np.multiply(ab, ab)
+    disc -= aa                                  # (Re a conj b)^2 - |b|^2 (|a|^2 - r^2)
+    ok = disc > 0
+    k1 = np.maximum(disc, 0.0, out=aa)
     np.sqrt(k1, out=k1)
     k1 += ab
-    np.negative(k1, out=k1)
     with np.errstate(divide="ignore", invalid="ignore"):
-        k1 /= bb                                # the smaller root in t
-    ok = disc > 0
+        k1 /= C.nbb[:, None, :]                 # the smaller root in t: -(Re a conj b + sqrt(disc))/|b|^2
     ok &= k1 > 0
     t = np.ascontiguousarray(np.where(ok, k1, np.inf).min(-1))
-    del ab, aa, disc, k1, tmp, ok
+    del ab, aa, disc, k1, ok
     flat_t = t.reshape(-1)   # a view: the contacts found below are written into t
     for pr in C.points:
         rows = pr.rows
@@ -873,10 +862,19 @@ def _tau_ok(S: _Search, reqs: Sequence[_Smooth], series: bool, taus: np.ndarray)
             integrating = np.isinf(t1)
             kc = np.where(integrating, 1.0 / (k * h), t1 / (k * h))
             ti = np.where(integrating, 4.0 * h, np.minimum(t1, 4.0 * h))
-        td = np.broadcast_to(t2 if series else np.zeros_like(t2), h.shape)
-        s = (1j * S.w[li])[:, None, :]
-        C = _c_response(series, kc[..., None], ti[..., None], td[..., None], S.alpha[li][:, None, None], s)
-        sc = _screen(C * S.P[li][:, None, :], S.sel[li][:, None, :], True, S.pair[li][:, None, :])
+            ki = np.where((ti > 0) & np.isfinite(ti), kc / np.where(ti > 0, ti, 1.0), 0.0)
+        # L = C P = kc F P + ki F P/s, F = (td s + 1)/(alpha td s + 1) of the series PID (1 for PI):
+        # the parts of each loop computed once for all its taus
+        s = 1j * S.w[li]
+        PF = S.P[li]
+        if series:
+            td = t2 * np.ones_like(s.real)
+            PF = PF * np.where(td > 0, (td * s + 1.0) / (S.alpha[li][:, None] * td * s + 1.0), 1.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            Pi = PF / s
+        L = kc[..., None] * PF[:, None, :]
+        L += ki[..., None] * Pi[:, None, :]
+        sc = _screen(L, S.sel[li][:, None, :], True, S.pair[li][:, None, :])
         out[a:a + block] = _screen_ok(sc, col([q.lim.ms_max for q in sub]), col([q.lim.gm_min_db for q in sub]),
                                       col([q.lim.pm_min_deg for q in sub]), col([q.req.level_db for q in sub]))
     return out
