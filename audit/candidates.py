@@ -62,6 +62,8 @@ TAU_POINTS = (32, 12)
 BLOCK_ELEMENTS = 1 << 18
 #: Frequencies on which the characteristic frequency is looked for. [rad/s]
 CHARACTERISTIC_GRID = np.logspace(-7, 5, 2401)
+#: Points of that grid computed at a time (a loop stops at its first hit). [-]
+CHARACTERISTIC_PIECE = 400
 
 
 # ----------------------------------------------------------------------------------------------
@@ -89,7 +91,7 @@ def _pad(polys: Sequence[Sequence[float]]) -> np.ndarray:
     return out
 
 
-def loop_responses(models: Sequence[LoopModel], w: np.ndarray) -> np.ndarray:
+def loop_responses(models: Sequence[LoopModel], w: np.ndarray, rats: Sequence | None = None) -> np.ndarray:
     """L(jw) of many loops, each on its own row of frequencies, as :meth:`LoopModel.L` computes it.
 
     Parameters
@@ -98,6 +100,8 @@ def loop_responses(models: Sequence[LoopModel], w: np.ndarray) -> np.ndarray:
         The loops (inner loops of cascades included through their set-point responses).
     w : ndarray
         Frequencies, (n_w,) shared or (n_models, n_w) one row per loop. [rad/s]
+    rats : sequence of Rational, optional
+        The models' ``rational`` when the caller has them already.
 
     Returns
     -------
@@ -114,9 +118,9 @@ def loop_responses(models: Sequence[LoopModel], w: np.ndarray) -> np.ndarray:
     for a in range(0, n, rows):
         sub = models[a:a + rows]
         ww = w[a:a + rows]
-        rats = [m.rational for m in sub]
+        rr = [m.rational for m in sub] if rats is None else rats[a:a + rows]
         s = 1j * ww
-        L = _polyval_rows(_pad([r.num for r in rats]), s) / _polyval_rows(_pad([r.den for r in rats]), s)
+        L = _polyval_rows(_pad([r.num for r in rr]), s) / _polyval_rows(_pad([r.den for r in rr]), s)
         delay = np.array([m.delay for m in sub], float)
         L = L * np.exp(-1j * ww * delay[:, None])
         inner = [k for k, m in enumerate(sub) if m.inner is not None]
@@ -135,13 +139,19 @@ def _setpoint_responses(models: Sequence[LoopModel], w: np.ndarray) -> np.ndarra
     return Lw / (F * (1.0 + Lw))
 
 
-def characteristic_ws(models: Sequence[LoopModel]) -> np.ndarray:
+def characteristic_ws(models: Sequence[LoopModel], rats: Sequence | None = None) -> np.ndarray:
     """:func:`characteristic_w` of many loops at once (NaN where there is none). [rad/s]
+
+    The grid is walked in pieces of :data:`CHARACTERISTIC_PIECE` points and a loop leaves the
+    walk at its first hit; the phase is unwrapped piece by piece with the running correction
+    carried over, the same sums in the same order as :func:`numpy.unwrap` on the whole grid.
 
     Parameters
     ----------
     models : sequence of LoopModel
         The loops; each controller is replaced by C = 1.
+    rats : sequence of Rational, optional
+        The ``rational`` of each loop with C = 1, when the caller has them already.
 
     Returns
     -------
@@ -153,12 +163,43 @@ def characteristic_ws(models: Sequence[LoopModel]) -> np.ndarray:
     out = np.full(len(models), np.nan)
     rows = max(1, 4 * BLOCK_ELEMENTS // w.size)
     for a in range(0, len(models), rows):
-        L = loop_responses([_unit_loop(m) for m in models[a:a + rows]], w)
-        ph = np.unwrap(np.angle(L), axis=-1)
-        first = ph[:, 0] - np.pi / 2
-        target = np.where(first < -np.pi, first, -np.pi)      # min(-pi, ph[0] - pi/2), NaN giving -pi
-        hit = ph <= target[:, None]
-        out[a:a + rows] = np.where(hit.any(-1), w[hit.argmax(-1)], np.nan)
+        units = [_unit_loop(m) for m in models[a:a + rows]]
+        ur = [u.rational for u in units] if rats is None else rats[a:a + rows]
+        live = np.arange(len(units))
+        found = np.full(len(units), np.nan)
+        last_p = last_s = target = None
+        for c0 in range(0, w.size, CHARACTERISTIC_PIECE):
+            ww = w[c0:c0 + CHARACTERISTIC_PIECE]
+            p = np.angle(loop_responses([units[i] for i in live], ww, [ur[i] for i in live]))
+            if c0 == 0:
+                dd = np.diff(p, axis=-1)
+                head = p[:, :1]
+            else:
+                dd = np.diff(np.concatenate([last_p[:, None], p], -1), axis=-1)
+            # numpy.unwrap's correction of each step
+            ddmod = np.mod(dd + np.pi, 2 * np.pi) - np.pi
+            np.copyto(ddmod, np.pi, where=(ddmod == -np.pi) & (dd > 0))
+            corr = ddmod - dd
+            np.copyto(corr, 0, where=abs(dd) < np.pi)
+            if c0 == 0:
+                cum = np.cumsum(corr, axis=-1)
+                ph = np.concatenate([head, p[:, 1:] + cum], -1)
+                first = ph[:, 0] - np.pi / 2
+                target = np.where(first < -np.pi, first, -np.pi)      # min(-pi, ph[0] - pi/2), NaN giving -pi
+                last_s = cum[:, -1] if cum.shape[1] else np.zeros(len(live))
+            else:
+                cum = np.cumsum(np.concatenate([last_s[:, None], corr], -1), axis=-1)[:, 1:]
+                ph = p + cum
+                last_s = cum[:, -1]
+            last_p = p[:, -1]
+            hit = ph <= target[:, None]
+            got = hit.any(-1)
+            found[live[got]] = ww[hit[got].argmax(-1)]
+            keep = ~got
+            live, last_p, last_s, target = live[keep], last_p[keep], last_s[keep], target[keep]
+            if not live.size:
+                break
+        out[a:a + rows] = found
     return out
 
 
@@ -666,9 +707,9 @@ class _Search:
 
 
 def _search_arrays(models: Sequence[LoopModel], wc: np.ndarray, wd: np.ndarray, limits: Sequence[Limits],
-                   alpha: Sequence[float]) -> _Search:
+                   alpha: Sequence[float], rats: Sequence | None = None) -> _Search:
     g = screening_grids(wc, wd)
-    P = loop_responses([_unit_loop(m) for m in models], g.w)
+    P = loop_responses([_unit_loop(m) for m in models], g.w, rats)
     pts = [_forbidden_points(lim) for lim in limits]
     q = max((p.size for p in pts), default=0)
     pad = np.full((len(pts), q), np.nan + 0j)
@@ -984,12 +1025,13 @@ def _candidates_batch(models: Sequence[LoopModel], limits: Sequence[Limits], req
                       alphas: Sequence[float]) -> list[CandidateSet]:
     n = len(models)
     out = [CandidateSet() for _ in range(n)]
-    wc = characteristic_ws(models)
+    rats = [_unit_loop(m).rational for m in models]   # sign P F of each loop, shared by both searches
+    wc = characteristic_ws(models, rats)
     has = np.flatnonzero(np.isfinite(wc))
     loop_of = {int(i): k for k, i in enumerate(has)}
     wd = np.array([float(reqs[i].band_rad_s) if reqs[i].active else np.nan for i in has], float)
     S = _search_arrays([models[i] for i in has], wc[has], wd, [limits[i] for i in has],
-                       [alphas[i] for i in has]) if has.size else None
+                       [alphas[i] for i in has], [rats[i] for i in has]) if has.size else None
     smooth: list[_Smooth] = []
     plans: list = [None] * n
     for i in range(n):
