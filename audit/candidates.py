@@ -462,6 +462,9 @@ class _ContactRows:
     nbb: np.ndarray          # (R, n_w) -|b|^2 [s^2]
     c0: np.ndarray           # (R,) 1 - r^2, r the disc radius [-]
     points: list             # per forbidden-point column: a _PointRows
+    span: tuple              # (lo, hi) (R,) the gains the bounds below hold for
+    never: np.ndarray | None  # (R, n_w) no disc contact for a gain of the span (None: not worked out)
+    lb: np.ndarray | None     # (R, n_w) lower bound of the disc contact of the span's gains [1/s]
 
 
 @dataclass
@@ -519,7 +522,11 @@ def _contact_rows(A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray,
         points.append(_PointRows(None if whole else rows, Ur, Ui, Vr, Vi, fast, (s_lo, s_hi), cells))
     br, bi, Ar, Ai = b.real, b.imag, A.real, A.imag
     bb = br * br + bi * bi
-    return _ContactRows(br, Ar * br + Ai * bi, Ar * Ar + Ai * Ai, 2.0 * Ar, bb, -bb, 1.0 - r * r, points)
+    e, A2, A2r, c0 = Ar * br + Ai * bi, Ar * Ar + Ai * Ai, 2.0 * Ar, 1.0 - r * r
+    never = lb = None
+    if A.shape[1] >= 8 * DISC_PROBES and np.isfinite(span[0]).all() and np.isfinite(span[1]).all():
+        never, lb = _disc_bounds(e, br, A2, A2r, bb, c0, span[0], span[1])
+    return _ContactRows(br, e, A2, A2r, bb, -bb, c0, points, span, never, lb)
 
 
 def _ki_contacts(C: _ContactRows, kp: np.ndarray, grid=None) -> np.ndarray:
@@ -532,26 +539,13 @@ def _ki_contacts(C: _ContactRows, kp: np.ndarray, grid=None) -> np.ndarray:
     interval's ends and gains, so an interval whose bound exceeds every ki of the row is skipped
     (the minimum is unchanged).
     """
+    cols = _disc_columns(C, kp)
+    if cols is None:
+        e, br, A2, A2r, bb, nbb = C.e, C.br, C.A2, C.A2r, C.bb, C.nbb
+    else:
+        e, br, A2, A2r, bb, nbb = (np.take_along_axis(x, cols, -1) for x in (C.e, C.br, C.A2, C.A2r, C.bb, C.nbb))
+    t, bad = _disc_contact(kp, e, br, A2, A2r, bb, nbb, C.c0)
     k = kp[..., None]
-    ab = k * C.e[:, None, :]
-    ab += C.br[:, None, :]                      # Re((1 + kp A) conj(b)) = Re(conj b) + kp Re(A conj b)
-    aa = k * C.A2[:, None, :]
-    aa += C.A2r[:, None, :]
-    aa *= k
-    aa += C.c0[:, None, None]                   # |1 + kp A|^2 - r^2 = 1 - r^2 + kp (2 Re A + kp |A|^2)
-    bad = (aa < 0).any(-1)
-    aa *= C.bb[:, None, :]
-    disc = np.multiply(ab, ab)
-    disc -= aa                                  # (Re a conj b)^2 - |b|^2 (|a|^2 - r^2)
-    ok = disc > 0
-    k1 = np.maximum(disc, 0.0, out=aa)
-    np.sqrt(k1, out=k1)
-    k1 += ab
-    with np.errstate(divide="ignore", invalid="ignore"):
-        k1 /= C.nbb[:, None, :]                 # the smaller root in t: -(Re a conj b + sqrt(disc))/|b|^2
-    ok &= k1 > 0
-    t = np.ascontiguousarray(np.where(ok, k1, np.inf).min(-1))
-    del ab, aa, disc, k1, ok
     flat_t = t.reshape(-1)   # a view: the contacts found below are written into t
     for pr in C.points:
         rows = pr.rows
@@ -575,6 +569,106 @@ def _ki_contacts(C: _ContactRows, kp: np.ndarray, grid=None) -> np.ndarray:
             where = _lift(where, rows, kk.shape[:-1], t.shape)
         np.minimum.at(flat_t, where, kr[good])
     return np.where(bad, 0.0, t)
+
+
+def _disc_contact(kp, e, br, A2, A2r, bb, nbb, c0) -> tuple[np.ndarray, np.ndarray]:
+    """Smallest t > 0 at which 1 + kp A + t b enters the disc |.| < r, over the given frequencies (inf: never),
+    and whether 1 + kp A is inside it at some frequency: (R, K) each (see :class:`_ContactRows`)."""
+    k = kp[..., None]
+    ab = k * e[:, None, :]
+    ab += br[:, None, :]                        # Re((1 + kp A) conj(b)) = Re(conj b) + kp Re(A conj b)
+    aa = k * A2[:, None, :]
+    aa += A2r[:, None, :]
+    aa *= k
+    aa += c0[:, None, None]                     # |1 + kp A|^2 - r^2 = 1 - r^2 + kp (2 Re A + kp |A|^2)
+    bad = (aa < 0).any(-1)
+    aa *= bb[:, None, :]
+    disc = np.multiply(ab, ab)
+    disc -= aa                                  # (Re a conj b)^2 - |b|^2 (|a|^2 - r^2)
+    ok = disc > 0
+    k1 = np.maximum(disc, 0.0, out=aa)
+    np.sqrt(k1, out=k1)
+    k1 += ab
+    with np.errstate(divide="ignore", invalid="ignore"):
+        k1 /= nbb[:, None, :]                   # the smaller root in t: -(Re a conj b + sqrt(disc))/|b|^2
+    ok &= k1 > 0
+    return np.ascontiguousarray(np.where(ok, k1, np.inf).min(-1)), bad
+
+
+#: Frequencies per row at which the disc contact is worked out first, for an upper bound of the row's ki. [-]
+DISC_PROBES = 4
+
+
+def _disc_bounds(e, br, A2, A2r, bb, c0, lo, hi) -> tuple[np.ndarray, np.ndarray]:
+    """For gains in [lo, hi] (R,) each: where the line 1 + kp A + t b cannot enter the disc at t > 0 with
+    1 + kp A outside it (``never``), and a lower bound of the contact t elsewhere (``lb``, 0 where
+    1 + kp A may be inside): (R, n_w) each.
+
+    Over the range of gains, |1 + kp A|^2 - r^2 is a convex quadratic in kp, Re((1 + kp A) conj b)
+    is linear and the discriminant of the contact is a concave quadratic, so each has its least or
+    largest value at an end of the range or at its vertex; the contact t is at least
+    (|1 + kp A| - r)/|b|. Margins cover the rounding of the contacts themselves.
+    """
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        lo, hi, c0 = lo[:, None], hi[:, None], c0[:, None]
+        kv = np.clip(np.where(A2 > 0, -A2r / (2.0 * A2), lo), lo, hi)
+
+        def aa(k):
+            return c0 + k * (A2r + k * A2)
+
+        a_lo, a_hi = aa(lo), aa(hi)
+        aa_min = np.minimum(np.minimum(a_lo, a_hi), aa(kv))
+        scale_a = np.abs(c0) + hi * np.abs(A2r) + hi * hi * A2
+        outside = aa_min > 1e-12 * scale_a
+        ab_lo, ab_hi = br + lo * e, br + hi * e
+        behind = np.minimum(ab_lo, ab_hi) > 1e-12 * (np.abs(br) + hi * np.abs(e))
+        q2 = e * e - bb * A2
+        q1 = 2.0 * br * e - bb * A2r
+        kd = np.clip(np.where(q2 < 0, -q1 / (2.0 * q2), lo), lo, hi)
+        d_max = np.maximum(np.maximum(ab_lo * ab_lo - bb * a_lo, ab_hi * ab_hi - bb * a_hi),
+                           (br + kd * e) ** 2 - bb * aa(kd))
+        ab_big = np.maximum(np.abs(ab_lo), np.abs(ab_hi))
+        miss = d_max < -1e-10 * (ab_big * ab_big + bb * scale_a)
+        never = outside & (behind | miss)
+        r = np.sqrt(1.0 - c0)
+        lb = np.where(outside, (np.sqrt(aa_min + r * r) - r) / np.sqrt(bb), 0.0)
+    return never, np.where(np.isfinite(lb), lb, 0.0)
+
+
+def _disc_columns(C: _ContactRows, kp: np.ndarray) -> np.ndarray | None:
+    """The frequencies of each row (R, n) that can hold the disc contact of one of its gains, or None for all.
+
+    A frequency is left out when, for every gain of the row's span (:func:`_disc_bounds`), the point
+    1 + kp A is outside the disc there (so it cannot make the row 'inside') and either the line
+    cannot enter the disc at a positive t or it cannot enter before the bound ``lb``, more than twice
+    an upper bound of every gain's contact (its contacts at the row's :data:`DISC_PROBES`
+    frequencies of least bound). The least contact of every gain is then at a frequency kept (the
+    same number), and 'inside' is unchanged. Rows are padded with a repeat of a kept frequency.
+    """
+    if C.never is None:
+        return None
+    R, m = C.e.shape
+    with np.errstate(invalid="ignore"):
+        if not ((np.nanmin(kp, -1) >= C.span[0]) & (np.nanmax(kp, -1) <= C.span[1])).all():
+            return None
+    never, lb = C.never, C.lb
+    probe = np.argpartition(np.where(never, np.inf, lb), DISC_PROBES - 1, -1)[:, :DISC_PROBES]
+    t, _ = _disc_contact(kp, *(np.take_along_axis(x, probe, -1) for x in (C.e, C.br, C.A2, C.A2r, C.bb, C.nbb)), C.c0)
+    ub = t.max(-1)
+    with np.errstate(invalid="ignore"):
+        keep = ~(never | (lb > 2.0 * np.where(np.isfinite(ub), ub, np.inf)[:, None]))
+    n = keep.sum(-1)
+    top = int(n.max()) if R else 0
+    if top > 0.7 * m:
+        return None
+    # the kept frequencies first (in order), padded with a repeat of the first kept one (or of 0)
+    r, c = np.nonzero(keep)
+    start = np.cumsum(n) - n
+    first = np.zeros(R, int)
+    first[n > 0] = c[start[n > 0]]
+    out = np.repeat(first[:, None], max(top, 1), -1)
+    out[r, np.arange(r.size) - start[r]] = c
+    return out
 
 
 def _point_changes(pr: _PointRows, kp: np.ndarray, top: np.ndarray, grid):
