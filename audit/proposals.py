@@ -17,8 +17,9 @@ the deepest band attenuation is shown as the best effort.
 
 Batches. :func:`propose_many` works on many loops at once: the action checks, the candidate
 search, the exact evaluation and the load-step IAE of the recommended settings each run once
-for the whole batch; with ``--jobs N`` the proposals stage spreads the batch over processes.
-A loop whose own computation raises is marked on its row and the others go on.
+for the whole batch; with ``--jobs N`` the proposals stage spreads the batch over processes,
+each simulating the load steps of its own recommendations (only the load step: the set-point
+step is not read). A loop whose own computation raises is marked on its row and the others go on.
 
 References
 ----------
