@@ -62,6 +62,8 @@ TAU_POINTS = (32, 12)
 BLOCK_ELEMENTS = 1 << 18
 #: Frequencies on which the characteristic frequency is looked for. [rad/s]
 CHARACTERISTIC_GRID = np.logspace(-7, 5, 2401)
+#: Points of that grid computed at a time (a loop stops at its first hit). [-]
+CHARACTERISTIC_PIECE = 400
 
 
 # ----------------------------------------------------------------------------------------------
@@ -89,7 +91,7 @@ def _pad(polys: Sequence[Sequence[float]]) -> np.ndarray:
     return out
 
 
-def loop_responses(models: Sequence[LoopModel], w: np.ndarray) -> np.ndarray:
+def loop_responses(models: Sequence[LoopModel], w: np.ndarray, rats: Sequence | None = None) -> np.ndarray:
     """L(jw) of many loops, each on its own row of frequencies, as :meth:`LoopModel.L` computes it.
 
     Parameters
@@ -98,6 +100,8 @@ def loop_responses(models: Sequence[LoopModel], w: np.ndarray) -> np.ndarray:
         The loops (inner loops of cascades included through their set-point responses).
     w : ndarray
         Frequencies, (n_w,) shared or (n_models, n_w) one row per loop. [rad/s]
+    rats : sequence of Rational, optional
+        The models' ``rational`` when the caller has them already.
 
     Returns
     -------
@@ -114,9 +118,9 @@ def loop_responses(models: Sequence[LoopModel], w: np.ndarray) -> np.ndarray:
     for a in range(0, n, rows):
         sub = models[a:a + rows]
         ww = w[a:a + rows]
-        rats = [m.rational for m in sub]
+        rr = [m.rational for m in sub] if rats is None else rats[a:a + rows]
         s = 1j * ww
-        L = _polyval_rows(_pad([r.num for r in rats]), s) / _polyval_rows(_pad([r.den for r in rats]), s)
+        L = _polyval_rows(_pad([r.num for r in rr]), s) / _polyval_rows(_pad([r.den for r in rr]), s)
         delay = np.array([m.delay for m in sub], float)
         L = L * np.exp(-1j * ww * delay[:, None])
         inner = [k for k, m in enumerate(sub) if m.inner is not None]
@@ -135,13 +139,19 @@ def _setpoint_responses(models: Sequence[LoopModel], w: np.ndarray) -> np.ndarra
     return Lw / (F * (1.0 + Lw))
 
 
-def characteristic_ws(models: Sequence[LoopModel]) -> np.ndarray:
+def characteristic_ws(models: Sequence[LoopModel], rats: Sequence | None = None) -> np.ndarray:
     """:func:`characteristic_w` of many loops at once (NaN where there is none). [rad/s]
+
+    The grid is walked in pieces of :data:`CHARACTERISTIC_PIECE` points and a loop leaves the
+    walk at its first hit; the phase is unwrapped piece by piece with the running correction
+    carried over, the same sums in the same order as :func:`numpy.unwrap` on the whole grid.
 
     Parameters
     ----------
     models : sequence of LoopModel
         The loops; each controller is replaced by C = 1.
+    rats : sequence of Rational, optional
+        The ``rational`` of each loop with C = 1, when the caller has them already.
 
     Returns
     -------
@@ -153,12 +163,43 @@ def characteristic_ws(models: Sequence[LoopModel]) -> np.ndarray:
     out = np.full(len(models), np.nan)
     rows = max(1, 4 * BLOCK_ELEMENTS // w.size)
     for a in range(0, len(models), rows):
-        L = loop_responses([_unit_loop(m) for m in models[a:a + rows]], w)
-        ph = np.unwrap(np.angle(L), axis=-1)
-        first = ph[:, 0] - np.pi / 2
-        target = np.where(first < -np.pi, first, -np.pi)      # min(-pi, ph[0] - pi/2), NaN giving -pi
-        hit = ph <= target[:, None]
-        out[a:a + rows] = np.where(hit.any(-1), w[hit.argmax(-1)], np.nan)
+        units = [_unit_loop(m) for m in models[a:a + rows]]
+        ur = [u.rational for u in units] if rats is None else rats[a:a + rows]
+        live = np.arange(len(units))
+        found = np.full(len(units), np.nan)
+        last_p = last_s = target = None
+        for c0 in range(0, w.size, CHARACTERISTIC_PIECE):
+            ww = w[c0:c0 + CHARACTERISTIC_PIECE]
+            p = np.angle(loop_responses([units[i] for i in live], ww, [ur[i] for i in live]))
+            if c0 == 0:
+                dd = np.diff(p, axis=-1)
+                head = p[:, :1]
+            else:
+                dd = np.diff(np.concatenate([last_p[:, None], p], -1), axis=-1)
+            # numpy.unwrap's correction of each step
+            ddmod = np.mod(dd + np.pi, 2 * np.pi) - np.pi
+            np.copyto(ddmod, np.pi, where=(ddmod == -np.pi) & (dd > 0))
+            corr = ddmod - dd
+            np.copyto(corr, 0, where=abs(dd) < np.pi)
+            if c0 == 0:
+                cum = np.cumsum(corr, axis=-1)
+                ph = np.concatenate([head, p[:, 1:] + cum], -1)
+                first = ph[:, 0] - np.pi / 2
+                target = np.where(first < -np.pi, first, -np.pi)      # min(-pi, ph[0] - pi/2), NaN giving -pi
+                last_s = cum[:, -1] if cum.shape[1] else np.zeros(len(live))
+            else:
+                cum = np.cumsum(np.concatenate([last_s[:, None], corr], -1), axis=-1)[:, 1:]
+                ph = p + cum
+                last_s = cum[:, -1]
+            last_p = p[:, -1]
+            hit = ph <= target[:, None]
+            got = hit.any(-1)
+            found[live[got]] = ww[hit[got].argmax(-1)]
+            keep = ~got
+            live, last_p, last_s, target = live[keep], last_p[keep], last_s[keep], target[keep]
+            if not live.size:
+                break
+        out[a:a + rows] = found
     return out
 
 
@@ -240,16 +281,6 @@ def screening_grids(wc: np.ndarray, wd: np.ndarray, n: int = GRID_POINTS) -> Gri
 # screening on a frequency grid (search only; the exact engine decides what is reported)
 
 
-def _c_response(series: bool, kc, ti, td, alpha, s: np.ndarray) -> np.ndarray:
-    """C(jw) of many ideal- or series-form settings; arrays broadcast against s = jw, ti NaN for none."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        integ = np.where((ti > 0) & np.isfinite(ti), 1.0 / (np.where(ti > 0, ti, 1.0) * s), 0.0)
-    if series:
-        return kc * (1.0 + integ) * (td * s + 1.0) / (alpha * td * s + 1.0)
-    der = np.where(td > 0, td * s / (alpha * td * s + 1.0), 0.0)
-    return kc * (1.0 + integ + der)
-
-
 @dataclass(frozen=True)
 class Screen:
     """Grid estimates of the figures of many candidates (search only).
@@ -277,30 +308,43 @@ def _screen(L: np.ndarray, sel: np.ndarray, has_band: np.ndarray, pair: np.ndarr
     """Grid estimates of Ms, gain margins (up and down), phase margin and band level of L (..., n_w).
 
     ``sel`` marks the frequencies in the band (broadcast against L), ``has_band`` the rows with a
-    requirement, ``pair`` the neighbouring points that are both grid points.
+    requirement, ``pair`` the neighbouring points that are both grid points. The largest 1/|1 + L|
+    is taken as 1/(least |1 + L|) (the same number: 1/x rounds monotonically), and the crossings
+    of the real axis and of the unit circle are worked out only where they are.
     """
-    absS = 1.0 / np.abs(1.0 + L)
-    ms = absS.max(-1)
+    d = np.abs(1.0 + L)
+    with np.errstate(divide="ignore"):
+        ms = 1.0 / d.min(-1)
     insel = np.broadcast_to(sel, L.shape)
     with np.errstate(divide="ignore"):
-        band = np.where(insel.any(-1), 20 * np.log10(np.where(insel, absS, -np.inf).max(-1)), -np.inf)
+        band = np.where(insel.any(-1), 20 * np.log10(1.0 / np.where(insel, d, np.inf).min(-1)), -np.inf)
     band = np.where(has_band, band, np.nan)
     im, re = L.imag, L.real
-    c = (im[..., :-1] * im[..., 1:] <= 0) & (im[..., :-1] != im[..., 1:])
+    c = np.nonzero((im[..., :-1] * im[..., 1:] <= 0) & (im[..., :-1] != im[..., 1:]))
+    nxt = c[:-1] + (c[-1] + 1,)
+    i0, i1, r0 = im[c], im[nxt], re[c]
     with np.errstate(divide="ignore", invalid="ignore"):
-        f = im[..., :-1] / (im[..., :-1] - im[..., 1:])
-        x = re[..., :-1] + f * (re[..., 1:] - re[..., :-1])
-    neg = c & (x < 0)
-    up = np.where(neg & (x > -1), -x, 0.0).max(-1)
-    down = np.where(neg & (x < -1), -x, np.inf).min(-1)
+        f = i0 / (i0 - i1)
+        x = r0 + f * (re[nxt] - r0)
+    head = L.shape[:-1]
+    flat = np.ravel_multi_index(c[:-1], head) if len(head) else np.zeros(len(x), int)
+    up = np.zeros(head).reshape(-1)
+    down = np.full(head, np.inf).reshape(-1)
+    neg = x < 0
+    u = neg & (x > -1)
+    np.maximum.at(up, flat[u], -x[u])
+    dn = neg & (x < -1)
+    np.minimum.at(down, flat[dn], -x[dn])
+    up, down = up.reshape(head), down.reshape(head)
     with np.errstate(divide="ignore"):
         gm_db = -20 * np.log10(up)
         gm_down = 20 * np.log10(down)
     m = np.abs(L) - 1.0
-    cc = (m[..., :-1] * m[..., 1:] <= 0) & pair
-    ang = np.degrees(np.abs(np.angle(L[..., :-1])))
-    pm = np.where(cc, 180.0 - ang, np.inf).min(-1)
-    return Screen(ms, gm_db, gm_down, pm, band)
+    cc = np.nonzero((m[..., :-1] * m[..., 1:] <= 0) & pair)
+    pm = np.full(head, np.inf).reshape(-1)
+    ang = np.degrees(np.abs(np.angle(L[cc])))
+    np.minimum.at(pm, np.ravel_multi_index(cc[:-1], head) if len(head) else np.zeros(len(ang), int), 180.0 - ang)
+    return Screen(ms, gm_db, gm_down, pm.reshape(head), band)
 
 
 def _screen_ok(sc: Screen, ms_max, gm_min_db, pm_min_deg, level_db) -> np.ndarray:
@@ -372,13 +416,15 @@ def _first_contact(L0: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray
     return np.where(bad, 0.0, t)
 
 
-def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray) -> np.ndarray:
+def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray,
+                grid: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """:func:`_first_contact` of L0 = kp A (rows x gains) along b, in real arithmetic.
 
     With L0 = kp A the point of each frequency where L0 + t b meets a forbidden point x solves
     Im((x - kp A)/b) = Im(x/b) - kp Im(A/b) = 0: per gain only a product and a difference of
     arrays shared by the row's gains, and the real part only where the sign changes. The same
-    contacts as :func:`_first_contact`, to rounding.
+    contacts as :func:`_first_contact`, to rounding. One call of :func:`_ki_contacts` on
+    :func:`_contact_rows` (callers with several sets of gains on the same rows share the latter).
 
     Parameters
     ----------
@@ -392,58 +438,130 @@ def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts
         Radius of the forbidden disc about -1. [-]
     pts : ndarray (R, q)
         Forbidden points, NaN padded. [-]
+    grid : (u, c0, c1) or None
+        When the gains are c0 + c1 u (u (K,) ascending and shared by the rows, c0 and c1 (R,)),
+        that description (it makes the search of the gains between two frequencies cheaper).
 
     Returns
     -------
     ndarray (R, K)
         The largest ki of each gain (0 inside the disc at ki = 0, inf where never). [1/s]
     """
-    k = kp[..., None]
-    br, bi = b.real[:, None, :], b.imag[:, None, :]
-    bb = br * br + bi * bi
-    ar = k * A.real[:, None, :]
-    ar += 1.0
-    ai = k * A.imag[:, None, :]
-    tmp = ai * bi
-    ab = ar * br
-    ab += tmp                                   # Re((1 + kp A) conj(b))
-    aa = np.multiply(ar, ar, out=ar)
-    aa += np.multiply(ai, ai, out=ai)
-    aa -= (r * r)[:, None, None]                # |1 + kp A|^2 - r^2
-    bad = (aa < 0).any(-1)
-    disc = np.multiply(aa, bb, out=aa)
-    disc *= -1.0
-    disc += np.multiply(ab, ab, out=tmp)        # (Re a conj b)^2 - |b|^2 (|a|^2 - r^2)
-    k1 = np.maximum(disc, 0.0, out=tmp)
-    np.sqrt(k1, out=k1)
-    k1 += ab
-    np.negative(k1, out=k1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        k1 /= bb                                # the smaller root in t
-    ok = disc > 0
-    ok &= k1 > 0
-    t = np.ascontiguousarray(np.where(ok, k1, np.inf).min(-1))
-    flat_t = t.reshape(-1)   # a view: the contacts found below are written into t
+    return _ki_contacts(_contact_rows(A, b, r, pts), kp, grid)
+
+
+@dataclass
+class _ContactRows:
+    """What the ki contacts of a block of rows share across their gains (:func:`_contact_rows`)."""
+
+    br: np.ndarray           # (R, n_w) Re b, b = P/(jw) the direction of ki [s]
+    e: np.ndarray            # (R, n_w) Re(A conj b), A = (1 + D) P [s]
+    A2: np.ndarray           # (R, n_w) |A|^2 [-]
+    A2r: np.ndarray          # (R, n_w) 2 Re A [-]
+    bb: np.ndarray           # (R, n_w) |b|^2 [s^2]
+    nbb: np.ndarray          # (R, n_w) -|b|^2 [s^2]
+    c0: np.ndarray           # (R,) 1 - r^2, r the disc radius [-]
+    points: list             # per forbidden-point column: a _PointRows
+    span: tuple              # (lo, hi) (R,) the gains the bounds below hold for
+    never: np.ndarray | None  # (R, n_w) no disc contact for a gain of the span (None: not worked out)
+    lb: np.ndarray | None     # (R, n_w) lower bound of the disc contact of the span's gains [1/s]
+
+
+@dataclass
+class _PointRows:
+    """One forbidden point x of each of some rows: x/b and A/b, and the intervals where Im((x - kp A)/b)
+    may change sign for a gain within the rows' span."""
+
+    rows: np.ndarray | None  # rows of the block that have this point (None: all)
+    Ur: np.ndarray           # (R', n_w) Re(x/b)
+    Ui: np.ndarray           # (R', n_w) Im(x/b)
+    Vr: np.ndarray           # (R', n_w) Re(A/b)
+    Vi: np.ndarray           # (R', n_w) Im(A/b)
+    fast: np.ndarray         # (R',) Im(A/b) > 0 throughout and everything finite: the intervals below hold
+    span: tuple              # (lo, hi) (R',) the gains the intervals were found for
+    cells: tuple             # (row, interval, lo, hi, Ur0, Ur1, Vr0, Vr1): the intervals of fast rows
+                             # whose range [lo, hi] of Ui/Vi (with slack) meets the span
+
+
+def _contact_rows(A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray,
+                  span: tuple[np.ndarray, np.ndarray] | None = None) -> _ContactRows:
+    """The parts of :func:`_ki_contacts` that do not depend on the gains: x/b and A/b of every forbidden
+    point x and, where Im(A/b) > 0 throughout a row, the intervals between neighbouring frequencies
+    where Im((x - kp A)/b) changes sign for some gain kp of ``span`` (lowest and highest gain of each
+    row, (R,) each; None: any gain)."""
+    R = A.shape[0]
     with np.errstate(divide="ignore", invalid="ignore"):
         V = A / b
+    if span is None:
+        span = (np.full(R, -np.inf), np.full(R, np.inf))
+    points = []
     for q in range(pts.shape[1]):
         rows = np.flatnonzero(np.isfinite(pts[:, q]))
         if not rows.size:
             continue
-        whole = rows.size == pts.shape[0]
+        whole = rows.size == R
         x = pts[:, q] if whole else pts[rows, q]
-        v, kk = (V, k) if whole else (V[rows], k[rows])
+        v = V if whole else V[rows]
         with np.errstate(divide="ignore", invalid="ignore"):
             U = x[:, None] / (b if whole else b[rows])
-        hit, i0, i1 = _sign_changes(U.imag, v.imag, kk[..., 0])
+        Ur, Ui, Vr, Vi = U.real, U.imag, v.real, v.imag
+        s_lo, s_hi = (span[0], span[1]) if whole else (span[0][rows], span[1][rows])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            fast = (Vi > 0).all(-1) & np.isfinite(Ui).all(-1) & np.isfinite(Vi).all(-1)
+            f = np.flatnonzero(fast)
+            rho = Ui[f] / Vi[f]
+        lo = np.minimum(rho[:, :-1], rho[:, 1:])
+        hi = np.maximum(rho[:, :-1], rho[:, 1:])
+        lo -= 1e-9 * np.abs(lo)
+        hi += 1e-9 * np.abs(hi)
+        with np.errstate(invalid="ignore"):
+            rr, ii = np.nonzero((hi >= s_lo[f, None]) & (lo <= s_hi[f, None]))
+        lo_c, hi_c = lo[rr, ii], hi[rr, ii]
+        rr = f[rr]
+        cells = (rr, ii, lo_c, hi_c, Ur[rr, ii], Ur[rr, ii + 1], Vr[rr, ii], Vr[rr, ii + 1])
+        points.append(_PointRows(None if whole else rows, Ur, Ui, Vr, Vi, fast, (s_lo, s_hi), cells))
+    br, bi, Ar, Ai = b.real, b.imag, A.real, A.imag
+    bb = br * br + bi * bi
+    e, A2, A2r, c0 = Ar * br + Ai * bi, Ar * Ar + Ai * Ai, 2.0 * Ar, 1.0 - r * r
+    never = lb = None
+    if A.shape[1] >= 8 * DISC_PROBES and np.isfinite(span[0]).all() and np.isfinite(span[1]).all():
+        never, lb = _disc_bounds(e, br, A2, A2r, bb, c0, span[0], span[1])
+    return _ContactRows(br, e, A2, A2r, bb, -bb, c0, points, span, never, lb)
+
+
+def _ki_contacts(C: _ContactRows, kp: np.ndarray, grid=None) -> np.ndarray:
+    """:func:`_ki_contact` of gains ``kp`` (R, K) on rows prepared by :func:`_contact_rows`.
+
+    The disc is met where a quadratic in t has a positive root (every row, gain and frequency).
+    A forbidden point is met where Im((x - kp A)/b) changes sign between two frequencies; only
+    the intervals where that contact could still lower a row's largest ki so far are looked at:
+    the contact there is Re((x - kp A)/b) interpolated, not less than its smallest value at the
+    interval's ends and gains, so an interval whose bound exceeds every ki of the row is skipped
+    (the minimum is unchanged).
+    """
+    cols = _disc_columns(C, kp)
+    if cols is None:
+        e, br, A2, A2r, bb, nbb = C.e, C.br, C.A2, C.A2r, C.bb, C.nbb
+    else:
+        e, br, A2, A2r, bb, nbb = (np.take_along_axis(x, cols, -1) for x in (C.e, C.br, C.A2, C.A2r, C.bb, C.nbb))
+    t, bad = _disc_contact(kp, e, br, A2, A2r, bb, nbb, C.c0)
+    k = kp[..., None]
+    flat_t = t.reshape(-1)   # a view: the contacts found below are written into t
+    for pr in C.points:
+        rows = pr.rows
+        whole = rows is None
+        kk = k if whole else k[rows]
+        top = t.max(-1) if whole else t[rows].max(-1)      # the row's largest ki so far
+        g = None if grid is None else (grid[0], grid[1] if whole else grid[1][rows], grid[2] if whole else grid[2][rows])
+        hit, i0, i1 = _point_changes(pr, kk[..., 0], top, g)
         if not hit[0].size:
             continue
         kh = kk[hit[0], hit[1], 0]
-        rr = U.real
+        Ur, Vr = pr.Ur, pr.Vr
         with np.errstate(divide="ignore", invalid="ignore"):
             f = i0 / (i0 - i1)
-            r0 = rr[hit[0], hit[2]] - kh * v.real[hit[0], hit[2]]
-            r1 = rr[hit[0], hit[2] + 1] - kh * v.real[hit[0], hit[2] + 1]
+            r0 = Ur[hit[0], hit[2]] - kh * Vr[hit[0], hit[2]]
+            r1 = Ur[hit[0], hit[2] + 1] - kh * Vr[hit[0], hit[2] + 1]
             kr = r0 + f * (r1 - r0)
         good = (kr > 0) & np.isfinite(kr)
         where = np.ravel_multi_index(hit[:-1], kk.shape[:-1])[good]
@@ -453,57 +571,178 @@ def _ki_contact(kp: np.ndarray, A: np.ndarray, b: np.ndarray, r: np.ndarray, pts
     return np.where(bad, 0.0, t)
 
 
-def _sign_changes(Ui: np.ndarray, Vi: np.ndarray, kp: np.ndarray) -> tuple[tuple[np.ndarray, ...], np.ndarray, np.ndarray]:
-    """Where im = Ui - kp Vi changes sign between neighbouring frequencies, for every gain of a row.
+def _disc_contact(kp, e, br, A2, A2r, bb, nbb, c0) -> tuple[np.ndarray, np.ndarray]:
+    """Smallest t > 0 at which 1 + kp A + t b enters the disc |.| < r, over the given frequencies (inf: never),
+    and whether 1 + kp A is inside it at some frequency: (R, K) each (see :class:`_ContactRows`)."""
+    k = kp[..., None]
+    ab = k * e[:, None, :]
+    ab += br[:, None, :]                        # Re((1 + kp A) conj(b)) = Re(conj b) + kp Re(A conj b)
+    aa = k * A2[:, None, :]
+    aa += A2r[:, None, :]
+    aa *= k
+    aa += c0[:, None, None]                     # |1 + kp A|^2 - r^2 = 1 - r^2 + kp (2 Re A + kp |A|^2)
+    bad = (aa < 0).any(-1)
+    aa *= bb[:, None, :]
+    disc = np.multiply(ab, ab)
+    disc -= aa                                  # (Re a conj b)^2 - |b|^2 (|a|^2 - r^2)
+    ok = disc > 0
+    k1 = np.maximum(disc, 0.0, out=aa)
+    np.sqrt(k1, out=k1)
+    k1 += ab
+    with np.errstate(divide="ignore", invalid="ignore"):
+        k1 /= nbb[:, None, :]                   # the smaller root in t: -(Re a conj b + sqrt(disc))/|b|^2
+    ok &= k1 > 0
+    return np.ascontiguousarray(np.where(ok, k1, np.inf).min(-1)), bad
 
-    Exactly the (row, gain, interval) with im0 im1 <= 0 and im0 != im1, and im at both ends.
-    Where Vi > 0 throughout a row and its gains ascend (the ki search: Vi = w Re(1 + D(jw)) > 0),
-    im falls with kp through zero at Ui/Vi, so the gains with a change between two frequencies
-    lie between the two roots: they are found by a sorted search (with a 1e-9 relative slack,
-    far above rounding) and only they are tested; other rows are tested in full.
+
+#: Frequencies per row at which the disc contact is worked out first, for an upper bound of the row's ki. [-]
+DISC_PROBES = 4
+
+
+def _disc_bounds(e, br, A2, A2r, bb, c0, lo, hi) -> tuple[np.ndarray, np.ndarray]:
+    """For gains in [lo, hi] (R,) each: where the line 1 + kp A + t b cannot enter the disc at t > 0 with
+    1 + kp A outside it (``never``), and a lower bound of the contact t elsewhere (``lb``, 0 where
+    1 + kp A may be inside): (R, n_w) each.
+
+    Over the range of gains, |1 + kp A|^2 - r^2 is a convex quadratic in kp, Re((1 + kp A) conj b)
+    is linear and the discriminant of the contact is a concave quadratic, so each has its least or
+    largest value at an end of the range or at its vertex; the contact t is at least
+    (|1 + kp A| - r)/|b|. Margins cover the rounding of the contacts themselves.
+    """
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        lo, hi, c0 = lo[:, None], hi[:, None], c0[:, None]
+        kv = np.clip(np.where(A2 > 0, -A2r / (2.0 * A2), lo), lo, hi)
+
+        def aa(k):
+            return c0 + k * (A2r + k * A2)
+
+        a_lo, a_hi = aa(lo), aa(hi)
+        aa_min = np.minimum(np.minimum(a_lo, a_hi), aa(kv))
+        scale_a = np.abs(c0) + hi * np.abs(A2r) + hi * hi * A2
+        outside = aa_min > 1e-12 * scale_a
+        ab_lo, ab_hi = br + lo * e, br + hi * e
+        behind = np.minimum(ab_lo, ab_hi) > 1e-12 * (np.abs(br) + hi * np.abs(e))
+        q2 = e * e - bb * A2
+        q1 = 2.0 * br * e - bb * A2r
+        kd = np.clip(np.where(q2 < 0, -q1 / (2.0 * q2), lo), lo, hi)
+        d_max = np.maximum(np.maximum(ab_lo * ab_lo - bb * a_lo, ab_hi * ab_hi - bb * a_hi),
+                           (br + kd * e) ** 2 - bb * aa(kd))
+        ab_big = np.maximum(np.abs(ab_lo), np.abs(ab_hi))
+        miss = d_max < -1e-10 * (ab_big * ab_big + bb * scale_a)
+        never = outside & (behind | miss)
+        r = np.sqrt(1.0 - c0)
+        lb = np.where(outside, (np.sqrt(aa_min + r * r) - r) / np.sqrt(bb), 0.0)
+    return never, np.where(np.isfinite(lb), lb, 0.0)
+
+
+def _disc_columns(C: _ContactRows, kp: np.ndarray) -> np.ndarray | None:
+    """The frequencies of each row (R, n) that can hold the disc contact of one of its gains, or None for all.
+
+    A frequency is left out when, for every gain of the row's span (:func:`_disc_bounds`), the point
+    1 + kp A is outside the disc there (so it cannot make the row 'inside') and either the line
+    cannot enter the disc at a positive t or it cannot enter before the bound ``lb``, more than twice
+    an upper bound of every gain's contact (its contacts at the row's :data:`DISC_PROBES`
+    frequencies of least bound). The least contact of every gain is then at a frequency kept (the
+    same number), and 'inside' is unchanged. Rows are padded with a repeat of a kept frequency.
+    """
+    if C.never is None:
+        return None
+    R, m = C.e.shape
+    with np.errstate(invalid="ignore"):
+        if not ((np.nanmin(kp, -1) >= C.span[0]) & (np.nanmax(kp, -1) <= C.span[1])).all():
+            return None
+    never, lb = C.never, C.lb
+    probe = np.argpartition(np.where(never, np.inf, lb), DISC_PROBES - 1, -1)[:, :DISC_PROBES]
+    t, _ = _disc_contact(kp, *(np.take_along_axis(x, probe, -1) for x in (C.e, C.br, C.A2, C.A2r, C.bb, C.nbb)), C.c0)
+    ub = t.max(-1)
+    with np.errstate(invalid="ignore"):
+        keep = ~(never | (lb > 2.0 * np.where(np.isfinite(ub), ub, np.inf)[:, None]))
+    n = keep.sum(-1)
+    top = int(n.max()) if R else 0
+    if top > 0.7 * m:
+        return None
+    # the kept frequencies first (in order), padded with a repeat of the first kept one (or of 0)
+    r, c = np.nonzero(keep)
+    start = np.cumsum(n) - n
+    first = np.zeros(R, int)
+    first[n > 0] = c[start[n > 0]]
+    out = np.repeat(first[:, None], max(top, 1), -1)
+    out[r, np.arange(r.size) - start[r]] = c
+    return out
+
+
+def _point_changes(pr: _PointRows, kp: np.ndarray, top: np.ndarray, grid):
+    """Where im = Ui - kp Vi changes sign between neighbouring frequencies, for every gain of a row,
+    leaving out intervals whose contact cannot be below ``top`` (R',) (see :func:`_ki_contacts`).
+
+    Exactly the (row, gain, interval) with im0 im1 <= 0 and im0 != im1 that are not left out,
+    and im at both ends. Where Vi > 0 throughout a row and its gains ascend within the span of
+    :func:`_contact_rows`, im falls with kp through zero at Ui/Vi, so the gains with a change in
+    an interval lie between the interval's bounds of Ui/Vi (with a 1e-9 relative slack, far above
+    rounding): they are found by a sorted search and only they are tested; other rows are tested
+    in full.
 
     Parameters
     ----------
-    Ui, Vi : ndarray (R, n_w)
-        Imaginary parts of x/b and of A/b. [s^-1], [-]
-    kp : ndarray (R, K)
+    pr : _PointRows
+        The rows' point.
+    kp : ndarray (R', K)
         Gains of each row. [-]
+    top : ndarray (R',)
+        Largest ki of each row so far (inf: none). [1/s]
+    grid : (u, c0, c1) or None
+        The gains as c0 + c1 u (u (K,) shared), when they are.
 
     Returns
     -------
     tuple
         (rows, gains, intervals) index arrays, and im at the interval's two ends.
     """
-    R, m = Ui.shape
+    Ui, Vi = pr.Ui, pr.Vi
     K = kp.shape[1]
     with np.errstate(invalid="ignore"):
-        fast = (Vi > 0).all(-1) & np.isfinite(Ui).all(-1) & np.isfinite(Vi).all(-1) & (kp > 0).all(-1) \
-            & (np.diff(kp, axis=-1) > 0).all(-1)
+        fast = pr.fast & (kp > 0).all(-1) & (np.diff(kp, axis=-1) > 0).all(-1) \
+            & (kp[:, 0] >= pr.span[0]) & (kp[:, -1] <= pr.span[1])
     parts = []
     slow = np.flatnonzero(~fast)
     if slow.size:
         im = Ui[slow, None, :] - kp[slow, :, None] * Vi[slow, None, :]
         h = np.nonzero(im[..., :-1] * im[..., 1:] <= 0)
         parts.append((slow[h[0]], h[1], h[2]))
-    f = np.flatnonzero(fast)
-    if f.size:
-        rho = Ui[f] / Vi[f]
-        lo = np.minimum(rho[:, :-1], rho[:, 1:])
-        hi = np.maximum(rho[:, :-1], rho[:, 1:])
-        lo -= 1e-9 * np.abs(lo)
-        hi += 1e-9 * np.abs(hi)
-        scale = kp[f, -1:]
-        base = 4.0 * np.arange(f.size)[:, None]          # rows apart: arctan spans less than pi
-        keys = (np.arctan(kp[f] / scale) + base).ravel()  # ascending within and across rows
-        start = K * np.arange(f.size)[:, None]
-        a = np.searchsorted(keys, (np.arctan(lo / scale) + base).ravel(), "left").reshape(lo.shape) - start
-        b = np.searchsorted(keys, (np.arctan(hi / scale) + base).ravel(), "right").reshape(hi.shape) - start
-        a, b = np.clip(a, 0, K), np.clip(b, 0, K)
-        n = np.maximum(b - a, 0).ravel()
-        if n.sum():
-            cell = np.repeat(np.arange(n.size), n)
-            k = np.repeat(a.ravel(), n) + np.arange(n.sum()) - np.repeat(np.cumsum(n) - n, n)
-            parts.append((f[cell // (m - 1)], k, cell % (m - 1)))
+    rr, ii, lo, hi, ur0, ur1, vr0, vr1 = pr.cells
+    if rr.size and fast.any():
+        kmin, kmax = kp[rr, 0], kp[rr, -1]
+        cell = fast[rr] & (hi >= kmin) & (lo <= kmax)
+        lim = top[rr]
+        fin = np.isfinite(lim)
+        if fin.any():
+            # the contact of a gain in [kl, kh] in an interval is at least the least of
+            # Ur - kp Vr at its two ends and at kl, kh (linear in kp; interpolation is convex)
+            kl = np.maximum(lo, kmin)
+            kh = np.minimum(hi, kmax)
+            bound = np.minimum(np.minimum(ur0 - kl * vr0, ur0 - kh * vr0), np.minimum(ur1 - kl * vr1, ur1 - kh * vr1))
+            bound -= 1e-12 * (np.abs(ur0) + np.abs(ur1) + kmax * (np.abs(vr0) + np.abs(vr1)))  # rounding
+            with np.errstate(invalid="ignore"):
+                cell &= ~(bound > np.where(fin, lim * (1.0 + 1e-12), np.inf))
+        sel = np.flatnonzero(cell)
+        if sel.size:
+            rs, lo_c, hi_c = rr[sel], lo[sel], hi[sel]
+            if grid is not None:
+                u, c0, c1 = grid
+                a = np.searchsorted(u, (lo_c - c0[rs]) / c1[rs], "left")
+                e = np.searchsorted(u, (hi_c - c0[rs]) / c1[rs], "right")
+            else:
+                scale = kp[:, -1]
+                base = 4.0 * np.arange(kp.shape[0])[:, None]      # rows apart: arctan spans less than pi
+                keys = (np.arctan(kp / scale[:, None]) + base).ravel()  # ascending within and across rows
+                a = np.searchsorted(keys, np.arctan(lo_c / scale[rs]) + base[rs, 0], "left") - K * rs
+                e = np.searchsorted(keys, np.arctan(hi_c / scale[rs]) + base[rs, 0], "right") - K * rs
+            a, e = np.clip(a, 0, K), np.clip(e, 0, K)
+            n = np.maximum(e - a, 0)
+            if n.sum():
+                c = np.repeat(np.arange(n.size), n)
+                k = np.repeat(a, n) + np.arange(n.sum()) - np.repeat(np.cumsum(n) - n, n)
+                parts.append((rs[c], k, ii[sel][c]))
     if not parts:
         e = np.zeros(0, int)
         return (e, e, e), np.zeros(0), np.zeros(0)
@@ -562,9 +801,9 @@ class _Search:
 
 
 def _search_arrays(models: Sequence[LoopModel], wc: np.ndarray, wd: np.ndarray, limits: Sequence[Limits],
-                   alpha: Sequence[float]) -> _Search:
+                   alpha: Sequence[float], rats: Sequence | None = None) -> _Search:
     g = screening_grids(wc, wd)
-    P = loop_responses([_unit_loop(m) for m in models], g.w)
+    P = loop_responses([_unit_loop(m) for m in models], g.w, rats)
     pts = [_forbidden_points(lim) for lim in limits]
     q = max((p.size for p in pts), default=0)
     pad = np.full((len(pts), q), np.nan + 0j)
@@ -582,7 +821,7 @@ def _frontier_rows(S: _Search, loop: np.ndarray, td: np.ndarray) -> list[Frontie
     out: list[Frontier | None] = [None] * len(loop)
     m = S.w.shape[1]
     nk = KP_FRACTIONS.size
-    block = max(1, BLOCK_ELEMENTS // (nk * m))
+    block = max(1, 2 * BLOCK_ELEMENTS // (nk * m))   # twice the usual: fewer calls on the rows' forbidden points
     for a in range(0, len(loop), block):
         rows = np.arange(a, min(a + block, len(loop)))
         li, tdb = loop[rows], td[rows]
@@ -599,16 +838,21 @@ def _frontier_rows(S: _Search, loop: np.ndarray, td: np.ndarray) -> list[Frontie
         w, P, r, pts, cd, cdP, li = w[ok], P[ok], r[ok], pts[ok], cd[ok], cdP[ok], li[ok]
         b = P / (1j * w)
         kp = kp_u[ok, None] * KP_FRACTIONS[None, :]
-        ki = _ki_contact(kp, cdP, b, r, pts)
+        lines = _contact_rows(cdP, b, r, pts, (kp[:, 0], kp[:, -1]))
+        ki = _ki_contacts(lines, kp, (KP_FRACTIONS, np.zeros(ok.size), kp_u[ok]))
         fin = np.isfinite(ki).all(-1)
         if not fin.any():
             continue
         keep = np.flatnonzero(fin)
         ok, w, P, r, pts, cd, cdP, b, kp, ki, li = (x[keep] for x in (ok, w, P, r, pts, cd, cdP, b, kp, ki, li))
+        if keep.size < fin.size:
+            lines = _contact_rows(cdP, b, r, pts, (kp[:, 0], kp[:, -1]))
         j = np.argmax(ki, -1)
         n = np.arange(len(keep))
-        kp2 = np.linspace(kp[n, np.maximum(j - 1, 0)], kp[n, np.minimum(j + 1, nk - 1)], 10, axis=-1)[:, 1:-1].copy()
-        ki2 = _ki_contact(kp2, cdP, b, r, pts)
+        # the refined gains start + k step, k = 1..8 (as np.linspace makes them)
+        start, stop = kp[n, np.maximum(j - 1, 0)], kp[n, np.minimum(j + 1, nk - 1)]
+        kp2 = np.linspace(start, stop, 10, axis=-1)[:, 1:-1].copy()
+        ki2 = _ki_contacts(lines, kp2, (np.arange(1.0, 9.0), start, (stop - start) / 9))
         kp, ki = np.concatenate([kp, kp2], -1), np.concatenate([ki, ki2], -1)
         order = np.argsort(kp, -1)
         kp, ki = np.take_along_axis(kp, order, -1), np.take_along_axis(ki, order, -1)
@@ -616,8 +860,10 @@ def _frontier_rows(S: _Search, loop: np.ndarray, td: np.ndarray) -> list[Frontie
         hb = S.has_band[li]
         if hb.any():
             h = np.flatnonzero(hb)
-            sel = S.sel[li[h]][:, None, :]
-            L = (kp[h, :, None] * cd[h, None, :] + ki[h, :, None] / (1j * w[h, None, :])) * P[h, None, :]
+            sel = S.sel[li[h]]
+            c = max(1, int(sel.sum(-1).max()))    # the band is a leading part of each grid
+            sel = sel[:, None, :c]
+            L = (kp[h, :, None] * cd[h, None, :c] + ki[h, :, None] / (1j * w[h, None, :c])) * P[h, None, :c]
             absS = np.where(sel, 1.0 / np.abs(1.0 + L), -np.inf).max(-1)
             with np.errstate(divide="ignore"):
                 band[h] = np.where(sel.any(-1), 20 * np.log10(absS), -np.inf)
@@ -751,10 +997,19 @@ def _tau_ok(S: _Search, reqs: Sequence[_Smooth], series: bool, taus: np.ndarray)
             integrating = np.isinf(t1)
             kc = np.where(integrating, 1.0 / (k * h), t1 / (k * h))
             ti = np.where(integrating, 4.0 * h, np.minimum(t1, 4.0 * h))
-        td = np.broadcast_to(t2 if series else np.zeros_like(t2), h.shape)
-        s = (1j * S.w[li])[:, None, :]
-        C = _c_response(series, kc[..., None], ti[..., None], td[..., None], S.alpha[li][:, None, None], s)
-        sc = _screen(C * S.P[li][:, None, :], S.sel[li][:, None, :], True, S.pair[li][:, None, :])
+            ki = np.where((ti > 0) & np.isfinite(ti), kc / np.where(ti > 0, ti, 1.0), 0.0)
+        # L = C P = kc F P + ki F P/s, F = (td s + 1)/(alpha td s + 1) of the series PID (1 for PI):
+        # the parts of each loop computed once for all its taus
+        s = 1j * S.w[li]
+        PF = S.P[li]
+        if series:
+            td = t2 * np.ones_like(s.real)
+            PF = PF * np.where(td > 0, (td * s + 1.0) / (S.alpha[li][:, None] * td * s + 1.0), 1.0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            Pi = PF / s
+        L = kc[..., None] * PF[:, None, :]
+        L += ki[..., None] * Pi[:, None, :]
+        sc = _screen(L, S.sel[li][:, None, :], True, S.pair[li][:, None, :])
         out[a:a + block] = _screen_ok(sc, col([q.lim.ms_max for q in sub]), col([q.lim.gm_min_db for q in sub]),
                                       col([q.lim.pm_min_deg for q in sub]), col([q.req.level_db for q in sub]))
     return out
@@ -864,12 +1119,13 @@ def _candidates_batch(models: Sequence[LoopModel], limits: Sequence[Limits], req
                       alphas: Sequence[float]) -> list[CandidateSet]:
     n = len(models)
     out = [CandidateSet() for _ in range(n)]
-    wc = characteristic_ws(models)
+    rats = [_unit_loop(m).rational for m in models]   # sign P F of each loop, shared by both searches
+    wc = characteristic_ws(models, rats)
     has = np.flatnonzero(np.isfinite(wc))
     loop_of = {int(i): k for k, i in enumerate(has)}
     wd = np.array([float(reqs[i].band_rad_s) if reqs[i].active else np.nan for i in has], float)
     S = _search_arrays([models[i] for i in has], wc[has], wd, [limits[i] for i in has],
-                       [alphas[i] for i in has]) if has.size else None
+                       [alphas[i] for i in has], [rats[i] for i in has]) if has.size else None
     smooth: list[_Smooth] = []
     plans: list = [None] * n
     for i in range(n):

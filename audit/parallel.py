@@ -208,8 +208,9 @@ def _run_part(idx: np.ndarray):
 def map_parts(fn, n: int, jobs: int, extra: tuple = (), min_per_job: int = MIN_LOOPS_PER_JOB) -> list:
     """``fn(*extra, indices)`` on consecutive parts of ``range(n)`` in ``jobs`` processes; results in order.
 
-    With one job (or too few items to pay for workers) ``fn`` runs once, here, on every index.
-    Forked workers inherit ``extra``: only the indices and the results cross the process boundary.
+    With one job (or too few items to pay for workers) ``fn`` runs once, here, on every index;
+    otherwise this process does the first part and ``jobs - 1`` forked workers the others. Forked
+    workers inherit ``extra``: only the indices and the results cross the process boundary.
 
     Parameters
     ----------
@@ -237,7 +238,11 @@ def map_parts(fn, n: int, jobs: int, extra: tuple = (), min_per_job: int = MIN_L
     global _PARTS
     _PARTS = (fn, extra)
     try:
-        with ProcessPoolExecutor(max_workers=jobs, mp_context=_CONTEXT) as pool:
-            return list(pool.map(_run_part, parts))
+        # jobs - 1 workers; this process does the first part meanwhile (one process fewer to
+        # start, one part's result not pickled)
+        with ProcessPoolExecutor(max_workers=jobs - 1, mp_context=_CONTEXT) as pool:
+            rest = pool.map(_run_part, parts[1:])
+            first = fn(*extra, parts[0])
+            return [first, *rest]
     finally:
         _PARTS = None

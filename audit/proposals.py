@@ -17,8 +17,9 @@ the deepest band attenuation is shown as the best effort.
 
 Batches. :func:`propose_many` works on many loops at once: the action checks, the candidate
 search, the exact evaluation and the load-step IAE of the recommended settings each run once
-for the whole batch; with ``--jobs N`` the proposals stage spreads the batch over processes.
-A loop whose own computation raises is marked on its row and the others go on.
+for the whole batch; with ``--jobs N`` the proposals stage spreads the batch over processes,
+each simulating the load steps of its own recommendations (only the load step: the set-point
+step is not read). A loop whose own computation raises is marked on its row and the others go on.
 
 References
 ----------
@@ -517,18 +518,19 @@ def _finish(job: _Job, step_iae: float = math.nan) -> Proposal:
 
 
 def _iae_of(models: Sequence[LoopModel | None], policy: Policy, jobs: int = 1) -> list[float]:
-    """Load-step IAE of each loop (NaN where None, unknown or no time-domain module). [s]"""
+    """Load-step IAE of each loop (NaN where None, unknown or no time-domain module). [s]
+
+    Only the load step is simulated (:func:`audit.timedomain.load_step_figures`), in this
+    process: the proposals stage spreads it over its workers with the search (``jobs`` is kept
+    for callers and ignored).
+    """
     try:
-        from .timedomain import step_figures
+        from .timedomain import load_step_figures
     except ImportError:
         return [math.nan] * len(models)
     if not any(m is not None for m in models):
         return [math.nan] * len(models)
-    if jobs > 1:
-        from .parallel import step_figures_parallel
-        df = step_figures_parallel(models, policy, jobs=jobs)
-    else:
-        df = step_figures(models, policy)
+    df = load_step_figures(models, policy)
     return [float(v) if _finite(v) else math.nan for v in df["load_iae_s"].tolist()]
 
 
@@ -734,39 +736,74 @@ def proposal_record(p: Proposal | None) -> dict[str, Any]:
 MIN_LOOPS_PER_PROPOSAL_JOB = 200
 
 
-def _propose_part(items, policy: Policy, idx: Sequence[int]) -> tuple[list[Proposal | None], dict[int, BaseException]]:
-    """Worker side of :func:`_propose_spread`: the proposals of ``items[idx]`` and their loops' faults."""
+def _iae_safe(models: list[LoopModel | None], policy: Policy, errors: dict[int, BaseException],
+              at: Sequence[int]) -> list[float]:
+    """:func:`_iae_of` of many loops; after a fault, halves until the loop at fault is found (NaN, its
+    exception in ``errors`` under its position ``at[k]``)."""
+    try:
+        return _iae_of(models, policy)
+    except Exception as exc:  # noqa: BLE001 - one loop's fault must not cost the others
+        if len(models) == 1:
+            errors[int(at[0])] = exc
+            return [math.nan]
+    h = len(models) // 2
+    return _iae_safe(models[:h], policy, errors, at[:h]) + _iae_safe(models[h:], policy, errors, at[h:])
+
+
+def _with_iae(items, got: list[Proposal | None], policy: Policy, at: Sequence[int]) -> dict[int, BaseException]:
+    """Put the load-step IAE of every recommendation of ``got`` (proposals of ``items``) in place, in one
+    simulation; the faults of single loops by position ``at[k]``."""
+    live = [k for k, p in enumerate(got) if p is not None and p.settings is not None and p.after is not None]
     errors: dict[int, BaseException] = {}
-    got = propose_many([items[k] for k in idx], policy, with_iae=False, errors=errors)
-    return got, {int(idx[k]): e for k, e in errors.items()}
+    iae = _iae_safe([tuned_model(items[k][0], got[k]) for k in live], policy, errors, [at[k] for k in live])
+    for k, v in zip(live, iae):
+        got[k] = replace(got[k], after=replace(got[k].after, iae=v))
+    return errors
 
 
-def _propose_spread(items, policy: Policy, jobs: int, errors: dict[int, BaseException]) -> list[Proposal | None]:
-    """:func:`propose_many` without IAE, the loops split over ``jobs`` processes when they are enough."""
+def _propose_part(items, policy: Policy, with_iae: bool, idx: Sequence[int]):
+    """Worker side of :func:`_propose_spread`: the proposals of ``items[idx]`` (with their load-step
+    IAE when ``with_iae``), their loops' faults and the IAE's faults of single loops."""
+    errors: dict[int, BaseException] = {}
+    sub = [items[k] for k in idx]
+    got = propose_many(sub, policy, with_iae=False, errors=errors)
+    iae_errors = _with_iae(sub, got, policy, idx) if with_iae else {}
+    return got, {int(idx[k]): e for k, e in errors.items()}, iae_errors
+
+
+def _propose_spread(items, policy: Policy, jobs: int, errors: dict[int, BaseException],
+                    with_iae: bool = False, iae_errors: dict[int, BaseException] | None = None
+                    ) -> list[Proposal | None]:
+    """:func:`propose_many` (IAE when ``with_iae``), the loops split over ``jobs`` processes when they are
+    enough; each process simulates the load steps of its own recommendations."""
     from .parallel import map_parts
-    parts = map_parts(_propose_part, len(items), jobs, (items, policy), MIN_LOOPS_PER_PROPOSAL_JOB)
+    parts = map_parts(_propose_part, len(items), jobs, (items, policy, with_iae), MIN_LOOPS_PER_PROPOSAL_JOB)
     out: list[Proposal | None] = []
-    for got, errs in parts:
+    for got, errs, iae_errs in parts:
         out += got
         errors.update(errs)
+        if iae_errors is not None:
+            iae_errors.update(iae_errs)
     return out
 
 
 def _propose_contained(audit, items, batch: list[int], policy: Policy, jobs: int = 1) -> list[Proposal | None]:
-    """Proposals without IAE, a loop's own fault marked on its row; after a fault of the batch as a
-    whole, loop by loop (None for a loop that raises)."""
+    """Proposals with the load-step IAE of their recommendations, a loop's own fault marked on its row;
+    after a fault of the batch as a whole, loop by loop (None for a loop that raises)."""
+    iae_errors: dict[int, BaseException] = {}
     try:
         errors: dict[int, BaseException] = {}
-        got = _propose_spread(items, policy, jobs, errors)
+        got = _propose_spread(items, policy, jobs, errors, True, iae_errors)
     except Exception:  # noqa: BLE001 - one loop's fault must not cost the others
-        got, errors = [], {}
+        got, errors, iae_errors = [], {}, {}
         for k, item in enumerate(items):
             try:
                 got.append(propose_many([item], policy, with_iae=False)[0])
             except Exception as exc:  # noqa: BLE001 - marked on its row
                 errors[k] = exc
                 got.append(None)
-    for k, exc in sorted(errors.items()):
+        iae_errors = _with_iae(items, got, policy, range(len(items)))
+    for k, exc in sorted({**iae_errors, **errors}.items()):
         _mark(audit, batch[k], exc)
     return got
 
@@ -778,19 +815,6 @@ def _mark(audit, i: int, exc: BaseException) -> None:
         raise exc
     except Exception as e:  # noqa: BLE001 - row_fault takes the traceback from here
         row_fault(audit, "proposals", i, e)
-
-
-def _iae_contained(audit, rows: list[int], models: list[LoopModel], policy: Policy, jobs: int) -> list[float]:
-    """:func:`_iae_of` of many loops; after a fault, halves until the loop at fault is found (NaN, marked)."""
-    try:
-        return _iae_of(models, policy, jobs)
-    except Exception as exc:  # noqa: BLE001 - one loop's fault must not cost the others
-        if len(models) == 1:
-            _mark(audit, rows[0], exc)
-            return [math.nan]
-    h = len(models) // 2
-    return _iae_contained(audit, rows[:h], models[:h], policy, 1) + \
-        _iae_contained(audit, rows[h:], models[h:], policy, 1)
 
 
 def add_proposals(audit) -> None:
@@ -837,8 +861,9 @@ def add_proposals(audit) -> None:
         composed = getattr(links, "composed", frozenset()) or frozenset()
         todo_set = set(todo)
         proposed_models: dict[int, object] = {}
-        tuned: dict[int, LoopModel] = {}
         jobs = max(1, int(getattr(audit.options, "jobs", 1) or 1))
+        # the results rows as plain dicts (a pandas row per loop costs more than its proposal's bookkeeping)
+        figures_rows = dict(zip(todo, res.iloc[todo].to_dict("records")))
         for level in tuning_levels(rows):
             batch = [i for i in level if i in todo_set]
             if not batch:
@@ -849,7 +874,7 @@ def add_proposals(audit) -> None:
                 j = inner_of.get(i)
                 if j is not None and i in composed and j in proposed_models:
                     m = compose(m, proposed_models[j])
-                items.append((m, rows[i], res.iloc[i]))
+                items.append((m, rows[i], figures_rows[i]))
             for (m, _, _), i, p in zip(items, batch, _propose_contained(audit, items, batch, policy, jobs)):
                 if p is None:   # an internal fault of this loop: no proposal, said on its row
                     out[i] = Proposal("", note="no proposal: internal fault (see findings)")
@@ -857,11 +882,6 @@ def add_proposals(audit) -> None:
                 out[i] = p
                 if p.settings is not None:
                     proposed_models[i] = m.with_controller(p.settings.controller())
-                    tuned[i] = tuned_model(m, p)
-        # the load-step IAE of every recommended setting, all levels in one simulation
-        idx = [i for i in todo if i in tuned and out[i].after is not None]
-        for i, v in zip(idx, _iae_contained(audit, idx, [tuned[i] for i in idx], policy, jobs)):
-            out[i] = replace(out[i], after=replace(out[i].after, iae=v))
     recs = [proposal_record(out.get(i)) for i in range(len(rows))]
     for c in PROPOSAL_COLUMNS:
         vals = [r[c] for r in recs]

@@ -340,6 +340,37 @@ def step_figures(models: Sequence[LoopModel | None], policy: Policy = Policy(),
     ----------
     .. [1] K. J. Astrom and T. Hagglund, Advanced PID Control, ISA, 2006, sec. 4.3.
     """
+    return _step_frame(models, policy, stable, ("load", "setpoint"))
+
+
+def load_step_figures(models: Sequence[LoopModel | None], policy: Policy = Policy(),
+                      stable: Sequence[bool] | np.ndarray | None = None) -> pd.DataFrame:
+    """The load-step figures of :func:`step_figures` alone (the set-point step is not simulated).
+
+    The ``load_*`` columns are those :func:`step_figures` gives (the load and set-point
+    responses are simulated separately); the ``sp_*`` columns are NaN and ``step_horizon_s``
+    and ``step_note`` speak of the load step only. For callers that read only the load step
+    (the IAE of retuning proposals), at about half the cost.
+
+    Parameters
+    ----------
+    models : sequence of LoopModel or None
+        One per row; None gives a row of NaN.
+    policy : Policy
+        ``settle_band_pct`` sets the settling band. [%]
+    stable : array-like of bool, optional
+        As for :func:`step_figures`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per model, columns :data:`STEP_COLUMNS`.
+    """
+    return _step_frame(models, policy, stable, ("load",))
+
+
+def _step_frame(models: Sequence[LoopModel | None], policy: Policy, stable, kinds: tuple[str, ...]) -> pd.DataFrame:
+    """:func:`step_figures` of the step kinds ``kinds`` (``load``, ``setpoint``)."""
     pct = float(policy.settle_band_pct)
     n = len(models)
     cols = {c: np.full(n, np.nan) for c in STEP_COLUMNS[:-1]}
@@ -356,7 +387,7 @@ def step_figures(models: Sequence[LoopModel | None], policy: Policy = Policy(),
     if todo:
         ms = [models[i] for i in todo]
         base = np.array([HORIZON_FACTOR * characteristic_time(m) for m in ms])
-        for kind in ("load", "setpoint"):
+        for kind in kinds:
             batch, errors = build_batch(ms, kind)
             for j, msg in errors.items():
                 if "no step figures" not in notes[todo[j]]:

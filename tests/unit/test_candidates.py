@@ -132,10 +132,10 @@ def test_a_fault_of_the_batched_arithmetic_costs_only_its_loop(monkeypatch):
     clean = candidate_settings_many(models, lims, reqs, alphas)
     real = cand.characteristic_ws
 
-    def wcs(ms):
+    def wcs(ms, *args, **kwargs):
         if any(m.tag == "T-1" for m in ms):
             raise FloatingPointError("planted arithmetic fault")
-        return real(ms)
+        return real(ms, *args, **kwargs)
 
     monkeypatch.setattr(cand, "characteristic_ws", wcs)
     got = candidate_settings_many(models, lims, reqs, alphas)
@@ -210,3 +210,71 @@ def test_max_ki_is_unchanged_by_the_batch_of_one():
     got = candidate_settings_many(models[:1], lims[:1], [Requirement()], [0.1])[0]
     pick = [c for c in got.settings if c.method.startswith("max-ki PI")][0]
     assert s.kc == pick.kc and s.ti == pick.ti
+
+
+def test_disc_pruning_leaves_every_ki_contact_unchanged():
+    """The disc contacts worked out only where the bounds over the block's gains allow (as the ki
+    frontiers call them) equal the contacts over every frequency, number for number, and the
+    general contact of the line L0 + t b (the same geometry solved two ways: common practice)."""
+    rng = np.random.default_rng(11)
+    R, K, n = 6, 16, 501
+    w = np.logspace(-2.5, 1.2, n)
+    A = (rng.uniform(0.5, 3.0, (R, 1)) / (1j * w * rng.uniform(1.0, 20.0, (R, 1)) + 1)) \
+        * np.exp(-1j * w[None, :] * rng.uniform(0.5, 2.0, (R, 1)))
+    b = A / (1j * w[None, :])
+    kp_u = rng.uniform(0.2, 1.0, R)
+    kp = kp_u[:, None] * cand.KP_FRACTIONS[None, :]
+    r = np.full(R, 0.5)
+    pts = np.array([cand._forbidden_points(Limits(2.0, 6.0, 45.0))] * R)
+    rows = cand._contact_rows(A, b, r, pts, (kp[:, 0], kp[:, -1]))
+    cols = cand._disc_columns(rows, kp)
+    assert cols is not None and cols.shape[1] < n          # frequencies were left out
+    got = cand._ki_contacts(rows, kp, (cand.KP_FRACTIONS, np.zeros(R), kp_u))
+    whole = cand._ki_contacts(cand._contact_rows(A, b, r, pts), kp)     # no span: every frequency
+    np.testing.assert_array_equal(got, whole)
+    ref = cand._first_contact(kp[..., None] * A[:, None, :], b[:, None, :], r, pts)
+    np.testing.assert_allclose(got, ref, rtol=1e-9)
+    assert np.isfinite(got).all() and (got > 0).all()
+
+
+def test_characteristic_w_in_pieces_equals_the_whole_grid_unwrapped():
+    """The characteristic frequencies found piece by piece equal the first grid point where numpy's
+    unwrap of the whole grid falls past the target (the definition: common practice)."""
+    models, _, _ = _models()
+    got = characteristic_ws(models)
+    w = cand.CHARACTERISTIC_GRID
+    for m, g in zip(models, got):
+        ph = np.unwrap(np.angle(loop_responses([cand._unit_loop(m)], w)[0]))
+        target = min(-np.pi, ph[0] - np.pi / 2)
+        hit = np.flatnonzero(ph <= target)
+        assert (g == w[hit[0]]) if hit.size else np.isnan(g), m.tag
+
+
+def test_screen_equals_its_plain_definitions():
+    """The screen's Ms, band level, gain margins and phase margin equal their plain grid definitions
+    (largest 1/|1 + L|; real-axis crossings interpolated; unit-circle crossings): common practice."""
+    rng = np.random.default_rng(3)
+    w = np.logspace(-2, 1.5, 300)
+    L = (rng.uniform(0.5, 4.0, (5, 3, 1)) * np.exp(-1j * w * rng.uniform(0.5, 2.0, (5, 3, 1)))
+         / (1j * w * rng.uniform(1.0, 10.0, (5, 3, 1)) + 1) * (1 + 1 / (1j * w * rng.uniform(2.0, 20.0, (5, 3, 1)))))
+    sel = (w <= 0.1)[None, None, :]
+    pair = np.ones(w.size - 1, bool)
+    sc = cand._screen(L, sel, np.ones((5, 1), bool), pair)
+    absS = 1.0 / np.abs(1.0 + L)
+    np.testing.assert_array_equal(sc.ms, absS.max(-1))
+    np.testing.assert_array_equal(sc.band_s_db, 20 * np.log10(absS[..., w <= 0.1].max(-1)))
+    for i in range(5):
+        for j in range(3):
+            l = L[i, j]
+            xs, pms = [], []
+            for k in range(w.size - 1):
+                a, c = l[k], l[k + 1]
+                if a.imag * c.imag <= 0 and a.imag != c.imag:
+                    xs.append(a.real + a.imag / (a.imag - c.imag) * (c.real - a.real))
+                if (abs(a) - 1) * (abs(c) - 1) <= 0:
+                    pms.append(180.0 - np.degrees(abs(np.angle(a))))
+            up = max([-x for x in xs if -1 < x < 0], default=0.0)
+            down = min([-x for x in xs if x < -1], default=np.inf)
+            with np.errstate(divide="ignore"):
+                assert sc.gm_db[i, j] == -20 * np.log10(up) and sc.gm_down_db[i, j] == 20 * np.log10(down)
+            assert sc.pm_deg[i, j] == min(pms, default=np.inf)

@@ -146,3 +146,22 @@ def test_add_step_results_stage(tmp_path):
     assert set(STEP_COLUMNS) <= set(r.columns) and len(r) == 3
     assert np.isfinite(r.at[0, "load_iae_s"]) and np.isnan(r.at[1, "load_iae_s"]) and np.isnan(r.at[2, "sp_rise_s"])
     assert r.at[2, "step_note"] == "closed loop unstable: no step figures"
+
+
+def test_load_step_figures_are_step_figures_load_columns():
+    """The load-step figures simulated alone equal those of the load and set-point run (the two
+    responses are simulated separately: common practice); the set-point columns are left blank."""
+    from audit.timedomain import load_step_figures
+    ms = [LoopModel("a", make_process("fopdt", 1.0, 10.0, dead_time=2.0), Controller("ideal", kc=1.5, ti=10.0)),
+          LoopModel("b", make_process("ipdt", 0.05, dead_time=3.0), Controller("ideal", kc=2.0, ti=60.0)),
+          None,
+          LoopModel("c", make_process("sopdt", 2.0, 30.0, 5.0, dead_time=1.0), Controller("ideal", kc=0.8)),
+          LoopModel("d", make_process("fopdt", 1.0, 10.0, dead_time=2.0), Controller("ideal", kc=1.0, td=1.0,
+                                                                                      alpha=0.0))]
+    both = step_figures(ms, Policy())
+    load = load_step_figures(ms, Policy())
+    cols = [c for c in STEP_COLUMNS if c.startswith("load_")]
+    pd.testing.assert_frame_equal(load[cols], both[cols])
+    assert load[[c for c in STEP_COLUMNS if c.startswith("sp_")]].isna().all().all()
+    assert np.isfinite(load.at[0, "load_iae_s"]) and np.isfinite(load.at[3, "load_offset"])
+    assert "improper" in load.at[4, "step_note"]
