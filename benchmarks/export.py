@@ -91,6 +91,9 @@ def main() -> None:
     ap.add_argument("--keep", default=None, help="Write the exports here and keep them (default: a temporary folder).")
     ap.add_argument("--read-every", type=int, default=1, help="Read every K-th tag only.")
     ap.add_argument("--skip-generate", action="store_true", help="Read the kept export without generating it.")
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    import baseline  # benchmarks/baseline.py, beside this script
+    baseline.add_arguments(ap)
     a = ap.parse_args()
     base = Path(a.keep) if a.keep else Path(tempfile.mkdtemp(prefix="export-bench-"))
     base.mkdir(parents=True, exist_ok=True)
@@ -98,8 +101,10 @@ def main() -> None:
           f"load average {os.getloadavg()[0]:.1f} at the start")
     print("| loops | step | wall [s] | CPU [s] | samples/s per core | peak RSS [MiB] | notes |")
     print("|---|---|---|---|---|---|---|")
+    cases = {}
     for n in a.loops:
         inv, data = base / f"inv{n}.xlsx", base / f"export{n}"
+        case = f"loops={n} days={a.days:g} ts={a.ts:g} {a.layout} {a.fmt} jobs={a.jobs}"
         if not a.skip_generate:
             g = _run(GEN.format(root=str(ROOT), inv=str(inv), data=str(data), loops=n, days=a.days, ts=a.ts,
                                 layout=a.layout, fmt=a.fmt, jobs=a.jobs))
@@ -108,6 +113,8 @@ def main() -> None:
                   f"{vals / g['cpu']:,.0f} | {g['rss_mib']:.0f} (worker {g['child_mib']:.0f}) | "
                   f"{_size(data) / 1024 ** 2:,.0f} MiB on disk, load {os.getloadavg()[0]:.1f} |")
             sys.stdout.flush()
+            cases[case + " generate"] = {"wall s": g["wall"], "CPU s": g["cpu"], "peak MiB": g["rss_mib"],
+                                         "worker peak MiB": g["child_mib"], "MiB on disk": _size(data) / 1024 ** 2}
         r = _run(READ.format(root=str(ROOT), data=str(data), every=a.read_every))
         vals = r["samples"] * 3
         what = "every tag" if r["read"] == r["tags"] else f"{r['read']} tags"
@@ -116,6 +123,9 @@ def main() -> None:
               f"{r['rss_mib']:.0f} | {r['cpu'] / max(r['read'], 1):.2f} s CPU a loop; open {r['open']:.2f} s, "
               f"{r['read']} of {r['tags']} tags, {r['rows_scanned']:,} rows decoded, load {os.getloadavg()[0]:.1f} |")
         sys.stdout.flush()
+        cases[case + f" read every {a.read_every}"] = {"CPU s per loop": r["cpu"] / max(r["read"], 1),
+                                                      "peak MiB": r["rss_mib"]}
+    baseline.report("export", cases, a)
     if not a.keep:
         import shutil
         shutil.rmtree(base, ignore_errors=True)

@@ -117,6 +117,8 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--folder", default=None, help="keep the site here (default: a temporary folder)")
     ap.add_argument("--child", nargs=2, metavar=("INVENTORY", "EXECUTOR"), help=argparse.SUPPRESS)
+    import baseline  # benchmarks/baseline.py, beside this script
+    baseline.add_arguments(ap)
     a = ap.parse_args(argv)
     if a.child:
         print(json.dumps(child(a.child[0], a.child[1], a.check_loops)))
@@ -127,7 +129,7 @@ def main(argv: list[str] | None = None) -> None:
           f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs", flush=True)
     head = (f"{'loops':>6} {'executor':>8} {'wall s':>8} {'cpu s':>8} {'s/loop':>7} {'Msamples/s/core':>16} "
             f"{'read s':>7} {'health s':>9} {'check s':>8} {'start s':>7} {'peak MiB':>9} {'worker MiB':>10} digest")
-    rows = []
+    rows, cases = [], {}
     for n in a.loops:
         inv = make_site(folder, n, a.records, a.days, a.ts, a.seed)
         for ex in a.executors:
@@ -145,9 +147,13 @@ def main(argv: list[str] | None = None) -> None:
             print(f"{n:>6} {ex:>8} {r['wall_s']:>8.1f} {cpu:>8.1f} {r['wall_s'] / n:>7.3f} {rate:>16.2f} "
                   f"{r['read_s']:>7.1f} {r['health_s']:>9.1f} {r['check_s']:>8.1f} {r['start_s']:>7.1f} "
                   f"{r['peak_parent_mib']:>9.0f} {r['peak_worker_mib']:>10.0f} {r['digest']}", flush=True)
+            cases[f"loops={n} executor={ex} days={a.days:g} ts={a.ts:g} check-loops={a.check_loops}"] = {
+                "wall s": r["wall_s"], "CPU s": cpu, "read s": r["read_s"], "health s": r["health_s"],
+                "check s": r["check_s"], "peak MiB": r["peak_parent_mib"], "worker peak MiB": r["peak_worker_mib"]}
         same = len({r["digest"] for r in rows if r["loops"] == n}) == 1
         print(f"  {n} loops: every executor gave the same results: {'yes' if same else 'NO'}; load average now "
               f"{os.getloadavg()[0]:.1f}", flush=True)
+    baseline.report("plantdata", cases, a)
     if tmp is not None:
         tmp.cleanup()
 

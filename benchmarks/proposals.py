@@ -101,6 +101,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--sizes", type=int, nargs="+", default=[2000, 10000])
     ap.add_argument("--jobs", type=int, nargs="+", default=[1, 2])
     ap.add_argument("--seed", type=int, default=1)
+    import baseline  # benchmarks/baseline.py, beside this script
+    baseline.add_arguments(ap)
     args = ap.parse_args(argv)
     warnings.simplefilter("ignore", RuntimeWarning)
     from engine import machine
@@ -110,12 +112,14 @@ def main(argv: list[str] | None = None) -> int:
             "IAE simulation", "load avg")
     print("| " + " | ".join(head) + " |")
     print("|" + "---|" * len(head))
+    cases = {}
     with tempfile.TemporaryDirectory() as tmp:
         for n in args.sizes:
             base = prepared(n, args.seed, Path(tmp))
             for jobs in args.jobs:
                 r = timed_stage(copy.deepcopy(base), jobs)
                 p = r["parts"]
+                cases[f"loops={n} jobs={jobs} seed={args.seed}"] = {"stage wall s": r["wall"], "stage CPU s": r["cpu"]}
 
                 def cell(k):
                     return f"{p.get(k + ' wall', 0):.2f} ({p.get(k + ' cpu', 0):.2f})"
@@ -124,6 +128,7 @@ def main(argv: list[str] | None = None) -> int:
                       f"{cell('_iae_of')} | {r['load']:.1f} |", flush=True)
     print("\nwall [s] (cpu [s]); cpu counts this process and its finished workers; 'search' and 'exact "
           "evaluation' are those of the main process (with --jobs > 1 the workers' share is in the stage figures)")
+    baseline.report("proposals", cases, args)
     return 0
 
 
