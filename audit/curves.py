@@ -296,6 +296,13 @@ def start_steps(jobs: list["PlotJob"], mapper: Callable = map) -> Any:
 def collect_steps(jobs: list["PlotJob"], pending: Any) -> dict[str, tuple[tuple[StepData, ...], tuple[str, ...]]]:
     """The step data of every loop with plots from :func:`start_steps`.
 
+    Parameters
+    ----------
+    jobs : list of PlotJob
+        The loops with plots, as given to :func:`start_steps`.
+    pending : iterator or None
+        What :func:`start_steps` returned.
+
     Returns
     -------
     dict
@@ -322,6 +329,11 @@ def collect_steps(jobs: list["PlotJob"], pending: Any) -> dict[str, tuple[tuple[
 def batched_steps(jobs: list["PlotJob"]) -> dict[str, tuple[tuple[StepData, ...], tuple[str, ...]]]:
     """Step responses of every loop with plots, present and proposed tuning, in one simulation per kind.
 
+    Parameters
+    ----------
+    jobs : list of PlotJob
+        The loops with plots.
+
     Returns
     -------
     dict
@@ -331,8 +343,19 @@ def batched_steps(jobs: list["PlotJob"]) -> dict[str, tuple[tuple[StepData, ...]
 
 
 def residual_data(rec: Any) -> ResidualData | None:
-    """A disturbance record and its predicted residual for the plots (thinned), from the residual stage's
-    record (an object or dict with ``t``, ``d``, ``y``); None when there is none or it is malformed."""
+    """A disturbance record and its predicted residual for the plots (thinned).
+
+    Parameters
+    ----------
+    rec : object, dict or None
+        The residual stage's record: ``t`` [s], ``d`` and ``y`` (the logged disturbance and the
+        predicted residual), as attributes or keys.
+
+    Returns
+    -------
+    ResidualData or None
+        None when there is no record or it is malformed.
+    """
     if rec is None:
         return None
     t, d, y = _arrays(rec, "t", "d", "y")

@@ -205,8 +205,8 @@ def _h(value: Any) -> str:
 
 
 def kv_rows(items: Any, digits: int | None = None) -> Markup:
-    """Rows of a label/value table (:class:`audit.report.Item`): the label with its unit, the value as
-    breakable text, or as a number of ``digits`` significant digits."""
+    """Rows of a label/value table, one for each of ``items`` (:class:`audit.report.Item`): the label with its
+    unit, the value as breakable text, or as a number of ``digits`` significant digits."""
     out = []
     for it in items:
         label = _h(it.label) + (f" [{_h(it.unit)}]" if it.unit else "")
@@ -216,7 +216,7 @@ def kv_rows(items: Any, digits: int | None = None) -> Markup:
 
 
 def entered_rows(items: Any, per_row: int = 4) -> Markup:
-    """Rows of the table of cells as entered: ``per_row`` label/value pairs a row, values to 6 digits."""
+    """Rows of the table of cells as entered (``items``): ``per_row`` label/value pairs a row, values to 6 digits."""
     items = list(items)
     rows = []
     for a in range(0, len(items), per_row):
@@ -230,7 +230,7 @@ _RULE_SIGNS = {"<=": "&le;", ">=": "&ge;"}
 
 
 def check_row(c: Any) -> Markup:
-    """A row of a loop's table of figures against their limits (:class:`audit.report.Check`)."""
+    """A row of a loop's table of figures against their limits, for the check ``c`` (:class:`audit.report.Check`)."""
     value = ("stable" if c.value else "unstable") if c.column == "stable" else _h(fmt_num(c.value))
     limit = _h(fmt_num(c.limit)) if c.rule else ""
     return Markup(f'  <tr>\n    <th scope="row">{_h(c.figure)} <span class="col">{_h(c.column)}</span></th>\n'
@@ -245,8 +245,8 @@ def _tag_cell(tag: str, anchor: str, linked: bool) -> str:
 
 
 def loop_row(line: Any, detail_anchors: Any) -> Markup:
-    """A row of the table of all loops (:class:`audit.report.LoopLine`); the tag links to its detail
-    section when the page has it."""
+    """A row of the table of all loops for ``line`` (:class:`audit.report.LoopLine`); the tag links to its
+    detail section when the page has it (its anchor is in ``detail_anchors``)."""
     a = line.detail_anchor
     tag = _tag_cell(line.tag, a, bool(a) and a in detail_anchors)
     return Markup(
@@ -261,8 +261,9 @@ def loop_row(line: Any, detail_anchors: Any) -> Markup:
 
 
 def work_row(it: Any, ranked: bool, compact: bool, detail_anchors: Any) -> Markup:
-    """A row of the work list (:class:`audit.report.WorkItem`), ranked or in the fallback order, in full or
-    compact (the executive summary)."""
+    """A row of the work list for ``it`` (:class:`audit.report.WorkItem`), ``ranked`` or in the fallback order,
+    in full or ``compact`` (the executive summary); the tag links to its detail section when its anchor is in
+    ``detail_anchors``."""
     first = _h(fmt_num(it.rank)) if ranked else _h(it.position)
     tail = ""
     if ranked:

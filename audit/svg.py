@@ -42,7 +42,7 @@ def px(value: Any) -> str:
 
 
 def points(pts: Any) -> str:
-    """An (n, 2) array of chart pixels as the text of an SVG ``points`` attribute (0.1 px).
+    """``pts``, an (n, 2) array of chart pixels, as the text of an SVG ``points`` attribute (0.1 px).
 
     The coordinates are rounded to tenths (``np.round``, ``-0.0`` made ``0.0``); the shortest text of
     such a number is its one-decimal text, so ``repr`` writes each one as ``f"{x:.1f}"`` would.

@@ -263,7 +263,7 @@ def identify_policy_of(policy) -> IdentifyPolicy:
 
 
 def window_settings(id_policy: IdentifyPolicy) -> WindowSettings:
-    """The window selection's settings out of the identification settings."""
+    """The window selection's settings out of the identification settings ``id_policy``."""
     p = id_policy
     return WindowSettings(p.window_above, p.window_samples, p.window_before, p.window_after, p.window_noise_ratio,
                           p.min_op_move_pct, p.min_sp_move_pct)

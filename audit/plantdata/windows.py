@@ -207,7 +207,7 @@ class WindowChoice:
 
 
 def time_scale(row) -> float:
-    """The loop's time scale T from the inventory model (NaN when there is none). [s]
+    """The loop's time scale T from the inventory model of ``row`` (NaN when there is none). [s]
 
     fopdt, sopdt: dead time + tau1 + tau2; ipdt: 4 (dead time + tau1).
     """
