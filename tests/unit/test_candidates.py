@@ -217,7 +217,7 @@ def test_disc_pruning_leaves_every_ki_contact_unchanged():
     frontiers call them) equal the contacts over every frequency, number for number, and the
     general contact of the line L0 + t b (the same geometry solved two ways: common practice)."""
     rng = np.random.default_rng(11)
-    R, K, n = 6, 16, 501
+    R, n = 6, 501
     w = np.logspace(-2.5, 1.2, n)
     A = (rng.uniform(0.5, 3.0, (R, 1)) / (1j * w * rng.uniform(1.0, 20.0, (R, 1)) + 1)) \
         * np.exp(-1j * w[None, :] * rng.uniform(0.5, 2.0, (R, 1)))

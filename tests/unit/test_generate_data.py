@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import json
 
-import numpy as np
 import pyarrow.parquet as pq
 import pytest
 

@@ -3,7 +3,6 @@ and python-control is in tests/reference/test_time_reference.py)."""
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 import pandas as pd
