@@ -171,16 +171,65 @@ def half_cycles(x: np.ndarray, ts: float, period_s: float) -> np.ndarray:
     band = _sig.sosfiltfilt(_sig.butter(2, [0.5 * f0, min(2 * f0, 0.95)], btype="bandpass", output="sos"), x)
     smooth = x if 5 * f0 >= 0.95 else _sig.sosfiltfilt(_sig.butter(2, 5 * f0, output="sos"), x)
     up = int(math.ceil(4 * _POINTS * ts / period_s))       # band-limited interpolation to >= 64 points per half cycle
-    if up > 1:
-        smooth = _sig.resample_poly(smooth, up, 1)
     zc = zero_crossings(band) * max(up, 1)
     if zc.size < 2:
         return np.zeros((0, _POINTS))
+    if up <= 1:
+        return _cycles_at(zc, smooth)
+    # the up-sampled signal is made a piece at a time (a fast oscillation in a long record would
+    # otherwise take ``up`` times the record's memory, several times over)
+    return _cycles_upsampled(zc, smooth, up)
+
+
+#: Samples of the record up-sampled at a time by :func:`half_cycles`. [-]
+_PIECE = 1 << 16
+#: Samples either side of a piece: more than the resampling filter's half length (10 samples). [-]
+_MARGIN = 32
+
+
+def _cycles_at(zc: np.ndarray, smooth: np.ndarray) -> np.ndarray:
+    """Half cycles between the crossings ``zc`` (sample positions) read from ``smooth`` (not up-sampled)."""
     s = np.linspace(0.0, 1.0, _POINTS)
     pos = zc[:-1, None] + s[None, :] * (zc[1:] - zc[:-1])[:, None]
-    keep = (zc[1:] - zc[:-1]) >= 3 * max(up, 1)            # at least three samples per half cycle
+    keep = (zc[1:] - zc[:-1]) >= 3                         # at least three samples per half cycle
     keep &= pos[:, -1] <= smooth.size - 1
     return np.interp(pos[keep], np.arange(smooth.size), smooth)
+
+
+def _cycles_upsampled(zc: np.ndarray, smooth: np.ndarray, up: int) -> np.ndarray:
+    """The half cycles of ``smooth`` up-sampled ``up`` times (polyphase), made piece by piece.
+
+    Each piece is up-sampled from the record with :data:`_MARGIN` samples either side, so each
+    value is the one the whole record's up-sampling gives (the same filter taps summed in the same
+    order), and the interpolation reads the same two neighbours: the figures are those of the
+    whole, bit for bit.
+    """
+    from scipy import signal as _sig
+    n_in = smooth.size
+    size = n_in * up                                       # length of the whole up-sampled signal
+    s = np.linspace(0.0, 1.0, _POINTS)
+    starts = zc[:-1] / up                                  # half-cycle starts in record samples
+    bounds = np.searchsorted(starts, np.arange(_PIECE, n_in + _PIECE, _PIECE), side="left")
+    out, a = [], 0
+    for b in np.append(bounds, zc.size - 1):
+        b = int(b)
+        if b <= a:
+            continue
+        z = zc[a:b + 1]
+        pos = z[:-1, None] + s[None, :] * (z[1:] - z[:-1])[:, None]
+        keep = (z[1:] - z[:-1]) >= 3 * up
+        keep &= pos[:, -1] <= size - 1
+        pk = pos[keep]
+        a = b
+        if not pk.size:
+            continue
+        lo = int(math.floor(float(pk.min())))
+        hi = min(int(math.floor(float(pk.max()))) + 2, size)
+        i0 = max(0, lo // up - _MARGIN)
+        i1 = min(n_in, hi // up + 1 + _MARGIN)
+        piece = _sig.resample_poly(smooth[i0:i1], up, 1)[lo - i0 * up:hi - i0 * up]
+        out.append(np.interp(pk, np.arange(lo, hi), piece))
+    return np.concatenate(out) if out else np.zeros((0, _POINTS))
 
 
 def stiction_index(cycles: np.ndarray) -> float:
@@ -212,7 +261,8 @@ def stiction_index(cycles: np.ndarray) -> float:
     yc = cycles - cycles.mean(axis=1, keepdims=True)
     fc = shapes - shapes.mean(axis=1, keepdims=True)
     amp = yc @ fc.T / (fc * fc).sum(axis=1)[None, :]                    # (cycles, 20)
-    resid = (yc * yc).sum(axis=1)[:, None] - amp ** 2 * (fc * fc).sum(axis=1)[None, :]
+    np.multiply(yc, yc, out=yc)                                         # squared in place: one copy less
+    resid = yc.sum(axis=1)[:, None] - amp ** 2 * (fc * fc).sum(axis=1)[None, :]
     mse_sine = float(resid[:, 0].sum())
     mse_tri = float(resid[:, 1:].min(axis=1).sum())
     tot = mse_sine + mse_tri

@@ -68,3 +68,39 @@ def test_not_assessed_without_period():
 def test_pv_op_points_keep_latest_and_drop_nan():
     p = pv_op_points(np.array([1.0, 2.0, np.nan, 4.0]), np.array([5.0, 6.0, 7.0, 8.0]), max_points=3)
     assert list(p.op) == [2.0, 4.0] and list(p.pv) == [6.0, 8.0]
+
+
+def _half_cycles_whole(x, ts, period_s):
+    """half_cycles as first written: the whole record up-sampled at once (scipy's resample_poly),
+    then read by np.interp. The pieced version must give these values bit for bit."""
+    import math
+
+    from scipy import signal as sig
+
+    from audit.plantdata.oscillation import detrend, zero_crossings
+    x = detrend(x)
+    f0 = 2.0 * ts / period_s
+    band = sig.sosfiltfilt(sig.butter(2, [0.5 * f0, min(2 * f0, 0.95)], btype="bandpass", output="sos"), x)
+    smooth = x if 5 * f0 >= 0.95 else sig.sosfiltfilt(sig.butter(2, 5 * f0, output="sos"), x)
+    up = int(math.ceil(4 * 32 * ts / period_s))
+    if up > 1:
+        smooth = sig.resample_poly(smooth, up, 1)
+    zc = zero_crossings(band) * max(up, 1)
+    s = np.linspace(0.0, 1.0, 32)
+    pos = zc[:-1, None] + s[None, :] * (zc[1:] - zc[:-1])[:, None]
+    keep = ((zc[1:] - zc[:-1]) >= 3 * max(up, 1)) & (pos[:, -1] <= smooth.size - 1)
+    return np.interp(pos[keep], np.arange(smooth.size), smooth)
+
+
+@pytest.mark.parametrize("n, period_s, ts", [(200_000, 5.7, 1.0), (150_000, 7.3, 1.0), (120_000, 3.3, 0.5), (70_000, 40.0, 1.0),
+                                             (9_000, 300.0, 2.0)])
+def test_half_cycles_pieced_equal_whole_upsampling(n, period_s, ts):
+    # common practice: a memory-bounded rewrite must not change a figure; the reference is the
+    # whole-record polyphase up-sampling (scipy.signal.resample_poly) read by linear interpolation
+    from audit.plantdata.valve import half_cycles
+    rng = np.random.default_rng(7)
+    t = np.arange(n) * ts
+    x = np.sign(np.sin(2 * np.pi * t / period_s)) * 2.0 + np.sin(2 * np.pi * t / period_s) + rng.normal(0, 0.3, n)
+    got, want = half_cycles(x, ts, period_s), _half_cycles_whole(x, ts, period_s)
+    assert got.shape == want.shape and got.shape[0] > 10
+    assert np.array_equal(got, want)
