@@ -12,7 +12,9 @@ results.xlsx) and no history. With ``--inventory`` and ``--data`` one given inve
 with its historian export (``run --data``; e.g. from ``plant-audit generate --data``): the
 "plant data" column is loop health and the model check of every loop with data. Stage times come from ``Audit.timings``; peak memory is the
 process's maximum resident set size (``resource.getrusage``), worker processes listed
-apart. Printed: one table row per size with the time of each stage, the total, the time
+apart; "all processes MiB (sum of peaks)" adds the run's own peak and each plant-data worker's own
+peak (the workers run side by side: a bound on what the run held at once), or, without plant data,
+``--jobs`` times the largest worker's peak. Printed: one table row per size with the time of each stage, the total, the time
 per loop (constant when cost grows linearly with loops), proposals per failing loop and
 peak memory, the CPU time (user + sys) of the audit process and of its worker processes, and the
 1-minute load average at the end of the run (the machine is shared: wall times are only as good as
@@ -78,12 +80,24 @@ def child(inventory: str, out_dir: str, jobs: int, pdf: bool, data: str | None =
     if getattr(forkserver._forkserver, "_forkserver_pid", None):
         forkserver._forkserver._stop()
     own, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    # each plant-data worker's own peak (its last task's ru_maxrss, by process id): processes that ran
+    # side by side, so their peaks are added to this process's for a bound on the run's total
+    per_worker: dict[int, float] = {}
+    for r in (audit.extras.get("loop_data") or {}).values():
+        if r.worker and r.worker != os.getpid():
+            per_worker[r.worker] = max(per_worker.get(r.worker, 0.0), r.worker_peak_mib)
+    peak = own.ru_maxrss / 1024
+    # without plant-data workers: the other stages' pools, ``jobs`` workers side by side at most, each
+    # bounded by the largest child's peak
+    side = sum(per_worker.values()) if per_worker else (jobs * kids.ru_maxrss / 1024 if jobs > 1 else 0.0)
     return {
         "loops": len(audit.results), "wall": wall, "timings": tm, "status": status,
         "cpu": own.ru_utime + own.ru_stime, "workers_cpu": kids.ru_utime + kids.ru_stime,
         "load": os.getloadavg(),
         "peak_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
         "workers_peak_mib": resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024,
+        "data_workers_peak_mib": sorted(per_worker.values(), reverse=True),
+        "sum_peak_mib": peak + side,
     }
 
 
@@ -115,7 +129,8 @@ def run_size(n: int, seed: int, jobs: int, pdf: bool, tmp: Path, inventory: str 
 def table(results: list[dict]) -> str:
     """The figures as a Markdown table."""
     head = ["loops"] + [c for c, _ in COLUMNS] + ["total", "CPU s (+workers)", "load avg", "ms/loop",
-                                                  "ms/failing loop (proposals)", "peak MiB"]
+                                                  "ms/failing loop (proposals)", "peak MiB",
+                                                  "all processes MiB (sum of peaks)"]
     lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
     for r in results:
         tm = r["timings"]
@@ -128,9 +143,19 @@ def table(results: list[dict]) -> str:
         cells += [f"{r['wall']:.1f}", f"{r['cpu']:.1f} (+{r['workers_cpu']:.1f})", f"{r['load'][0]:.1f}",
                   f"{1000 * r['wall'] / r['loops']:.2f}",
                   f"{1000 * prop / failing:.1f} ({failing:,})" if prop is not None and failing else "-",
-                  f"{r['peak_mib']:.0f}" + (f" (+workers {r['workers_peak_mib']:.0f})" if r["workers_peak_mib"] else "")]
+                  f"{r['peak_mib']:.0f}" + (f" (+workers {r['workers_peak_mib']:.0f})" if r["workers_peak_mib"] else ""),
+                  _sum_cell(r)]
         lines.append("| " + " | ".join(cells) + " |")
     return "\n".join(lines)
+
+
+def _sum_cell(r: dict) -> str:
+    """The summed peak of all processes, with the plant-data workers' own peaks."""
+    if "sum_peak_mib" not in r:
+        return "-"
+    each = r.get("data_workers_peak_mib") or []
+    return f"{r['sum_peak_mib']:.0f}" + (f" ({r['peak_mib']:.0f} + {' + '.join(f'{w:.0f}' for w in each)})"
+                                         if each else "")
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -191,6 +216,8 @@ def figures(r: dict) -> dict[str, float]:
     out["workers CPU s"] = r["workers_cpu"]
     out["peak MiB"] = r["peak_mib"]
     out["workers peak MiB"] = r["workers_peak_mib"]
+    if "sum_peak_mib" in r:
+        out["all processes peak MiB (sum)"] = r["sum_peak_mib"]
     return out
 
 

@@ -640,7 +640,9 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
     if not parts_l:
         return iter(()), {}, {}
     lines = np.concatenate(parts_l)
+    del parts_l
     raw_t = pd.concat(parts_t, ignore_index=True)
+    del parts_t
     sig_parts, word_parts = [], []
     for part in parts_s:                                                # words normalised once each, part by part
         if isinstance(part.dtype, pd.CategoricalDtype):
@@ -653,7 +655,7 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
         word_parts.append((norm, codes))
     sig = np.concatenate(sig_parts)
     starts = np.cumsum([0] + [len(v) for v in parts_v[:-1]])
-    del parts_t, parts_s, sig_parts
+    del parts_s, sig_parts
     unknown = sig < 0
     if unknown.any():
         bounds = np.cumsum([0] + [len(c) for _, c in word_parts])
@@ -664,6 +666,7 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
                             f"{' ...' if len(vc) > 6 else ''}; those rows are not read", column="signal")
     state: dict = {}
     t = _times(raw_t, lines, tname, notes, state)
+    del raw_t
     ok = ~unknown & np.isfinite(t)
     present = [s for j, s in enumerate(SIGNALS) if np.any(sig[ok] == j)]
     if not present:
@@ -695,15 +698,20 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
     converted: dict[int, np.ndarray] = {}
     for s in present:
         idx, ts = per[s]
-        pos = np.arange(len(grid)) if same else np.searchsorted(grid, ts)
         vals, numeric = _take(parts_v, starts, idx, s != "mode", converted)
-        arr = np.full(len(grid), np.nan) if numeric else np.full(len(grid), None, dtype=object)
-        arr[pos] = vals
-        ln = np.zeros(len(grid), dtype=np.int64)
-        ln[pos] = lines[idx]
-        np.minimum.at(rep, pos, lines[idx])
+        if same:                                        # every time has a row of this signal, in order
+            arr, ln = vals, lines[idx]
+            np.minimum(rep, ln, out=rep)
+        else:
+            pos = np.searchsorted(grid, ts)
+            arr = np.full(len(grid), np.nan) if numeric else np.full(len(grid), None, dtype=object)
+            arr[pos] = vals
+            ln = np.zeros(len(grid), dtype=np.int64)
+            ln[pos] = lines[idx]
+            np.minimum.at(rep, pos, lines[idx])
         cols[s] = pd.Series(arr)
         col_lines[s] = ln
+    del converted, per
     for s in present:                                   # a time with no row of a signal: named by a row at that time
         miss = col_lines[s] == 0
         col_lines[s][miss] = rep[miss]

@@ -16,6 +16,9 @@ raised by an export source) is never contained.
 
 from __future__ import annotations
 
+import ctypes
+import gc
+import multiprocessing
 import os
 import resource
 import sys
@@ -234,8 +237,54 @@ def analyse_chunk(tasks: list[LoopTask], shared: LoopSettings) -> list[LoopData]
     """
     from threadpoolctl import threadpool_limits
 
-    with threadpool_limits(limits=1, user_api="blas"):
-        return [analyse_loop(t, shared) for t in tasks]
+    tidy = _Tidy() if multiprocessing.parent_process() is not None else None
+    out = []
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            for t in tasks:
+                out.append(analyse_loop(t, shared))
+                if tidy is not None:
+                    tidy()
+    finally:
+        if tidy is not None:
+            tidy.close()
+    return out
+
+
+class _Tidy:
+    """In a worker process, after each loop: free the loop's memory now, not at some later collection.
+
+    A pandas object from the reader sits in a reference cycle (pandas' own internals), so its
+    arrays -- a week of 1-s samples is tens of MB a loop -- wait for a full cyclic collection,
+    which a worker reaches only now and then: memory grows loop by loop. So after each loop the
+    cycles are collected (the objects alive before the first loop are frozen, so a collection
+    looks only at what the loop left: a few ms), and the heap's freed pages go back to the system
+    (glibc ``malloc_trim``; Arrow's pool ``release_unused``). The work and its results are the
+    same; only when memory is freed changes. Only in worker processes: the run's own process keeps
+    Python's usual collection.
+    """
+
+    def __init__(self):
+        gc.collect()
+        gc.freeze()
+        try:
+            self._trim = ctypes.CDLL(None).malloc_trim
+        except (OSError, AttributeError):         # not glibc: the allocator keeps its own ways
+            self._trim = None
+
+    def __call__(self) -> None:
+        gc.collect()
+        gc.freeze()                               # results kept so far: not looked at again
+        if self._trim is not None:
+            self._trim(0)
+        pa = sys.modules.get("pyarrow")
+        if pa is not None:
+            pa.default_memory_pool().release_unused()
+
+    @staticmethod
+    def close() -> None:
+        """Back to Python's usual collection (the process may run other work after this chunk)."""
+        gc.unfreeze()
 
 
 def loop_tasks(audit) -> tuple[list[LoopTask], LoopSettings]:

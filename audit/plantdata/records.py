@@ -518,9 +518,8 @@ def _times(s: pd.Series, lines: np.ndarray, tname: str, notes: _Notes, state: di
         return v * (60.0 if tname == "time_min" else 1.0)
     if isinstance(s.dtype, pd.DatetimeTZDtype) or pd.api.types.is_datetime64_any_dtype(s.dtype):
         zoned = isinstance(s.dtype, pd.DatetimeTZDtype)
-        ts = s.dt.tz_convert("UTC") if zoned else s
-        ns = ts.to_numpy(dtype="datetime64[ns]").astype(np.int64) if not zoned else \
-            ts.dt.tz_localize(None).to_numpy(dtype="datetime64[ns]").astype(np.int64)
+        # UTC (zoned) or wall-clock ns as int64 (NaT as the int64 minimum), one copy at most
+        ns = (s.dt.tz_convert(None) if zoned else s).to_numpy(dtype="datetime64[ns]").view(np.int64)
         bad = s.isna().to_numpy()
         state.setdefault("zoned", zoned)
         if "text" not in state and (~bad).any():
