@@ -518,9 +518,11 @@ def _times(s: pd.Series, lines: np.ndarray, tname: str, notes: _Notes, state: di
         return v * (60.0 if tname == "time_min" else 1.0)
     if isinstance(s.dtype, pd.DatetimeTZDtype) or pd.api.types.is_datetime64_any_dtype(s.dtype):
         zoned = isinstance(s.dtype, pd.DatetimeTZDtype)
-        # UTC (zoned) or wall-clock ns as int64 (NaT as the int64 minimum), one copy at most
-        ns = (s.dt.tz_convert(None) if zoned else s).to_numpy(dtype="datetime64[ns]").view(np.int64)
-        bad = s.isna().to_numpy()
+        # UTC (zoned) or wall-clock ns as int64 (NaT as the int64 minimum), one copy at most; on the
+        # array, not the Series (a Series' ``.dt`` makes a reference cycle that holds the copy)
+        dt64 = np.asarray(s.array.tz_convert(None) if zoned else s.array, dtype="datetime64[ns]")
+        ns = dt64.view(np.int64)
+        bad = np.isnat(dt64)
         state.setdefault("zoned", zoned)
         if "text" not in state and (~bad).any():
             state["text"] = str(s[~bad].iloc[0])
