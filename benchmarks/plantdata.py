@@ -16,7 +16,8 @@ model check only with ``--check-loops``, on that many loops, because the identif
 week of samples takes tens of seconds a loop). Printed per run: wall and CPU time (the process
 and the workers), time per loop, samples per second per core (samples per signal, over wall time
 and workers), the time of reading and of the analysis summed over loops, and the peak resident
-memory of the process and of the largest worker; then whether every executor gave the same
+memory of the process and of the largest worker, and the sum of the peaks of all processes (the
+process and each worker: "all processes MiB", a bound on what the run held at once); then whether every executor gave the same
 results (a digest of every result). A benchmark that prints figures, not a timed test.
 """
 
@@ -103,6 +104,8 @@ def child(inventory: str, executor: str, check_loops: int) -> dict:
             "samples": sum(r.samples for r in got), "workers": 1 if executor == "serial" else 2,
             "peak_parent_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
             "peak_worker_mib": max((v for k, v in workers.items() if k != me), default=0.0),
+            "peak_sum_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+            + sum(v for k, v in workers.items() if k != me),
             "digest": digest.hexdigest()[:16]}
 
 
@@ -128,7 +131,8 @@ def main(argv: list[str] | None = None) -> None:
     print(f"{a.records} distinct records of {a.days:g} days every {a.ts:g} s; load average at start "
           f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs", flush=True)
     head = (f"{'loops':>6} {'executor':>8} {'wall s':>8} {'cpu s':>8} {'s/loop':>7} {'Msamples/s/core':>16} "
-            f"{'read s':>7} {'health s':>9} {'check s':>8} {'start s':>7} {'peak MiB':>9} {'worker MiB':>10} digest")
+            f"{'read s':>7} {'health s':>9} {'check s':>8} {'start s':>7} {'peak MiB':>9} {'worker MiB':>10} "
+            f"{'all processes MiB':>17} digest")
     rows, cases = [], {}
     for n in a.loops:
         inv = make_site(folder, n, a.records, a.days, a.ts, a.seed)
@@ -146,10 +150,12 @@ def main(argv: list[str] | None = None) -> None:
                 print(head)
             print(f"{n:>6} {ex:>8} {r['wall_s']:>8.1f} {cpu:>8.1f} {r['wall_s'] / n:>7.3f} {rate:>16.2f} "
                   f"{r['read_s']:>7.1f} {r['health_s']:>9.1f} {r['check_s']:>8.1f} {r['start_s']:>7.1f} "
-                  f"{r['peak_parent_mib']:>9.0f} {r['peak_worker_mib']:>10.0f} {r['digest']}", flush=True)
+                  f"{r['peak_parent_mib']:>9.0f} {r['peak_worker_mib']:>10.0f} {r['peak_sum_mib']:>17.0f} "
+                  f"{r['digest']}", flush=True)
             cases[f"loops={n} executor={ex} days={a.days:g} ts={a.ts:g} check-loops={a.check_loops}"] = {
                 "wall s": r["wall_s"], "CPU s": cpu, "read s": r["read_s"], "health s": r["health_s"],
-                "check s": r["check_s"], "peak MiB": r["peak_parent_mib"], "worker peak MiB": r["peak_worker_mib"]}
+                "check s": r["check_s"], "peak MiB": r["peak_parent_mib"], "worker peak MiB": r["peak_worker_mib"],
+                "all processes peak MiB (sum)": r["peak_sum_mib"]}
         same = len({r["digest"] for r in rows if r["loops"] == n}) == 1
         print(f"  {n} loops: every executor gave the same results: {'yes' if same else 'NO'}; load average now "
               f"{os.getloadavg()[0]:.1f}", flush=True)

@@ -288,3 +288,53 @@ def test_long_rows_in_any_order_give_the_same_record(tmp_path):
                     np.testing.assert_array_equal(va, want[sig])
             if name == "holes":
                 assert sum(len(s.values["op"]) for s in a.segments) < N   # the times without op are not kept whole
+
+
+def test_long_export_as_generated_equals_a_plain_pandas_reading(tmp_path):
+    """An export laid out as ``generate --data`` writes it (dictionary-encoded tag and signal columns,
+    float32 values, microsecond UTC timestamps, mode words in a file of their own, several row groups,
+    read in batches smaller than a row group) gives each tag's record that a plain pandas reading
+    gives: the rows of the tag put side by side by time (pandas.DataFrame.pivot), values as float64,
+    mode words coded in order of first appearance, the first time zone-aware in UTC (common practice:
+    a memory-bounded reader must not change a value)."""
+    from audit.plantdata.records import ReadPolicy
+    n, tags = 1000, ["FIC-1", "TIC-2", "LIC-3"]
+    rng = np.random.default_rng(3)
+    stamps = pd.date_range("2026-11-02T00:00:00Z", periods=n, freq="1s").as_unit("us")
+    num, modes = [], []
+    for tag in tags:
+        for sig in ("sp", "pv", "op"):
+            num.append(pd.DataFrame({"tag": tag, "timestamp": stamps, "signal": sig,
+                                     "value": (50 + rng.standard_normal(n).cumsum()).astype(np.float32)}))
+        words = np.where(np.arange(n) % 300 < 40, "MAN", "AUTO")
+        modes.append(pd.DataFrame({"tag": tag, "timestamp": stamps, "signal": "mode", "value": words}))
+    (tmp_path / "exp").mkdir()
+    for name, parts in (("loops-0001.parquet", num), ("loops-0001-mode.parquet", modes)):
+        df = pd.concat(parts, ignore_index=True)
+        table = pa.Table.from_pandas(df, preserve_index=False)
+        table = table.set_column(0, "tag", pc_encode(table.column("tag")))
+        table = table.set_column(2, "signal", pc_encode(table.column("signal")))
+        if name.endswith("mode.parquet"):
+            table = table.set_column(3, "value", pc_encode(table.column("value")))
+        pq.write_table(table, tmp_path / "exp" / name, row_group_size=n)   # one row group per tag and signal
+    src = ExportSource.open(tmp_path / "exp")
+    for tag in tags:
+        rec = src.read(tag, policy=ReadPolicy(chunk_rows=97))
+        plain = pd.concat([pd.read_parquet(tmp_path / "exp" / f) for f in
+                           ("loops-0001.parquet", "loops-0001-mode.parquet")])
+        plain = plain[plain["tag"].astype(str) == tag].pivot(index="timestamp", columns="signal", values="value")
+        plain = plain.sort_index()
+        assert rec.signals == ("sp", "pv", "op", "mode") and len(rec.segments) == 1 and rec.dt == 1.0
+        assert rec.start == plain.index[0] and str(rec.start.tz) == "UTC"
+        seg = rec.segments[0]
+        for sig in ("sp", "pv", "op"):
+            np.testing.assert_array_equal(seg.values[sig], plain[sig].to_numpy(dtype=np.float64))
+        labels = np.array(rec.mode_labels, dtype=object)
+        np.testing.assert_array_equal(labels[seg.mode], plain["mode"].astype(str).to_numpy())
+        assert rec.mode_labels == ("MAN", "AUTO")
+
+
+def pc_encode(col):
+    """A column dictionary-encoded (as the generator writes text columns)."""
+    import pyarrow.compute as pc
+    return pc.dictionary_encode(col)
