@@ -222,3 +222,29 @@ def test_task_without_its_part_gives_none(tmp_path, field):
     t = LoopTask(t.index, t.row, t.model, health=field != "health", check=field != "check")
     got = analyse_loop(t, shared)
     assert getattr(got, field) is None and getattr(got, "check" if field == "health" else "health") is not None
+
+
+def test_worker_tidy_frees_a_loops_cycles_and_unfreezes():
+    """After a loop in a worker, what the loop left in reference cycles is freed at once, and the
+    collector is back to normal after the chunk (common practice: gc.freeze / gc.unfreeze)."""
+    import gc
+    import weakref
+
+    from audit.plantdata.loopdata import _Tidy
+
+    class Holder:
+        pass
+
+    tidy = _Tidy()
+    try:
+        a, b = Holder(), Holder()
+        a.other, b.other = b, a                       # a cycle, as a pandas Series with .dt used
+        a.data = np.zeros(1000)
+        gone = weakref.ref(a)
+        del a, b
+        assert gone() is not None                     # reference counting alone does not free a cycle
+        tidy()
+        assert gone() is None
+    finally:
+        tidy.close()
+    assert gc.get_freeze_count() == 0
