@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 
 from .columns import RESULT_COLUMNS
-from .safety import neutralise_formula
+from .safety import FORMULA_STARTS, neutralise_formula
 
 
 def output_columns(results: pd.DataFrame, extra_columns: tuple[str, ...] = ()) -> list[str]:
@@ -150,7 +150,13 @@ def plain_column(series: pd.Series) -> list[Any]:
         return out
     if series.dtype == np.bool_ or series.dtype == np.int64:
         return series.to_numpy().tolist()
-    return [plain(v) for v in series.tolist()]
+    out = series.tolist()
+    for i, v in enumerate(out):
+        t = type(v)
+        if t is str or v is None or t is bool or t is int:
+            continue   # plain() gives these back as they are
+        out[i] = None if v is pd.NA else plain(v)
+    return out
 
 
 def _csv_column(series: pd.Series) -> list[str]:
@@ -161,7 +167,19 @@ def _csv_column(series: pd.Series) -> list[str]:
         for i in np.flatnonzero(np.isnan(arr)).tolist():
             out[i] = ""
         return out
-    return [csv_cell(v) for v in series.tolist()]
+    out = series.tolist()
+    for i, v in enumerate(out):
+        t = type(v)
+        if t is str:   # the common case: free text, as csv_cell writes it
+            if v.startswith(FORMULA_STARTS):
+                out[i] = "'" + v
+        elif v is None or v is pd.NA:
+            out[i] = ""
+        elif t is bool:
+            out[i] = "true" if v else "false"
+        else:
+            out[i] = csv_cell(v)
+    return out
 
 
 def write_csv(path: Path, results: pd.DataFrame, columns: list[str]) -> None:
@@ -239,19 +257,25 @@ def _dump_loops(fh, head: dict[str, Any], columns: list[str], values: list[list[
         return
     cols = []
     for key, col in zip(keys, values):
-        cells = []
-        for v in col:
-            t = type(v)
-            if t is str:
-                cells.append(key + enc_str(v))
-            elif t is float:
-                cells.append(key + float_repr(v))
-            elif v is None:
-                cells.append(key + "null")
-            elif t is bool:
-                cells.append(key + ("true" if v else "false"))
-            else:
-                cells.append(key + int.__repr__(v))
+        kinds = set(map(type, col))
+        if kinds == {str}:   # a column of one kind at a time, through the same encoders
+            cells = [key + t for t in map(enc_str, col)]
+        elif kinds == {float}:
+            cells = [key + t for t in map(float_repr, col)]
+        else:
+            cells = []
+            for v in col:
+                t = type(v)
+                if t is str:
+                    cells.append(key + enc_str(v))
+                elif t is float:
+                    cells.append(key + float_repr(v))
+                elif v is None:
+                    cells.append(key + "null")
+                elif t is bool:
+                    cells.append(key + ("true" if v else "false"))
+                else:
+                    cells.append(key + int.__repr__(v))
         cols.append(cells)
     if cols:
         rows = ["{\n   " + ",\n   ".join(cells) + "\n  }" for cells in zip(*cols)]
