@@ -163,7 +163,7 @@ def _csv_column(series: pd.Series) -> list[str]:
     """:func:`csv_cell` of every value of a column (float columns without a call per value)."""
     if series.dtype == np.float64:
         arr = series.to_numpy()
-        out = [repr(v) for v in arr.tolist()]
+        out = list(map(float.__repr__, arr.tolist()))   # repr, as csv_cell writes a float
         for i in np.flatnonzero(np.isnan(arr)).tolist():
             out[i] = ""
         return out
@@ -255,27 +255,15 @@ def _dump_loops(fh, head: dict[str, Any], columns: list[str], values: list[list[
     if n == 0:
         fh.write("[]\n}")
         return
+    encode = {str: enc_str, float: float_repr, type(None): lambda v: "null",
+              bool: lambda v: "true" if v else "false", int: int.__repr__}   # the json module's text of each
     cols = []
     for key, col in zip(keys, values):
         kinds = set(map(type, col))
-        if kinds == {str}:   # a column of one kind at a time, through the same encoders
-            cells = [key + t for t in map(enc_str, col)]
-        elif kinds == {float}:
-            cells = [key + t for t in map(float_repr, col)]
+        if len(kinds) == 1:   # a column of one kind: its encoder over the whole column
+            cells = [key + t for t in map(encode[kinds.pop()], col)]
         else:
-            cells = []
-            for v in col:
-                t = type(v)
-                if t is str:
-                    cells.append(key + enc_str(v))
-                elif t is float:
-                    cells.append(key + float_repr(v))
-                elif v is None:
-                    cells.append(key + "null")
-                elif t is bool:
-                    cells.append(key + ("true" if v else "false"))
-                else:
-                    cells.append(key + int.__repr__(v))
+            cells = [key + encode[type(v)](v) for v in col]
         cols.append(cells)
     if cols:
         rows = ["{\n   " + ",\n   ".join(cells) + "\n  }" for cells in zip(*cols)]

@@ -29,7 +29,6 @@ from pathlib import Path
 from concurrent.futures import ProcessPoolExecutor
 from typing import Any, Callable, Iterator
 from urllib.parse import urlsplit
-from urllib.request import url2pathname
 
 import jinja2
 from markupsafe import Markup, escape
@@ -470,6 +469,8 @@ class OutputFolderFetcher:
     root: Path
 
     def __call__(self, url: str, timeout: float = 10, ssl_context: Any = None, http_headers: Any = None) -> dict:
+        from urllib.request import url2pathname   # here: its import (http, ssl, email) is for the PDF only
+
         from weasyprint.urls import default_url_fetcher
 
         scheme = urlsplit(url).scheme.lower()
@@ -563,14 +564,25 @@ def _mapper(jobs: int) -> Iterator[Callable]:
 
 
 def _ready_for_workers() -> None:
-    """Compile every template and import the chart modules once, before a pool's workers are forked.
+    """Compile the templates of a detail section and import the chart modules, before a pool's workers fork.
 
-    Each worker then inherits them instead of compiling the templates a detail section includes and
-    importing the chart code again (a fixed cost per worker, paid before its first task).
+    Each worker then inherits them instead of compiling ``loop.html.j2`` and the templates it includes and
+    importing the chart code again (a fixed cost per worker, paid before its first task). The page's own
+    templates are compiled here too (the page is rendered in this process).
     """
+    from jinja2 import meta
+
     env = environment()
-    for name in env.list_templates(extensions=["j2"]):
+    env.get_template("base.html.j2")
+    todo, seen = ["loop.html.j2"], set()
+    while todo:
+        name = todo.pop()
+        if name in seen:
+            continue
+        seen.add(name)
         env.get_template(name)
+        source = env.loader.get_source(env, name)[0]
+        todo.extend(n for n in meta.find_referenced_templates(env.parse(source)) if n)
     from . import health_charts, plots  # noqa: F401  (imported for the workers)
     from .curves import _step_source
     from .multiloop import report as _groups  # noqa: F401
