@@ -669,24 +669,12 @@ def _after(event: threading.Event, fn: Callable[[], Any]) -> Any:
     return fn()
 
 
-class _Done:
-    """The result of a call already made (what :func:`_side_thread` gives without a thread)."""
-
-    def __init__(self, fn: Callable, *args: Any) -> None:
-        self.value = fn(*args) if fn is not None else None
-
-    def result(self) -> Any:
-        return self.value
-
-
 @contextlib.contextmanager
-def _side_thread(use: bool) -> Iterator[Callable]:
-    """A function that runs a call in one thread beside this one (in order), or at once when ``use`` is false.
-
-    It returns a future; leaving the context waits for the thread, so no file is being written after it.
-    """
+def _side_thread(use: bool) -> Iterator[Callable | None]:
+    """``submit`` of one thread beside this one (calls run in order, each gives a future), or None when ``use``
+    is false. Leaving the context waits for the thread, so no file is being written after it."""
     if not use:
-        yield _Done
+        yield None
         return
     from concurrent.futures import ThreadPoolExecutor
 
