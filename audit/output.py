@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 
 from .columns import RESULT_COLUMNS
-from .safety import neutralise_formula
+from .safety import FORMULA_STARTS, neutralise_formula
 
 
 def output_columns(results: pd.DataFrame, extra_columns: tuple[str, ...] = ()) -> list[str]:
@@ -150,18 +150,36 @@ def plain_column(series: pd.Series) -> list[Any]:
         return out
     if series.dtype == np.bool_ or series.dtype == np.int64:
         return series.to_numpy().tolist()
-    return [plain(v) for v in series.tolist()]
+    out = series.tolist()
+    for i, v in enumerate(out):
+        t = type(v)
+        if t is str or v is None or t is bool or t is int:
+            continue   # plain() gives these back as they are
+        out[i] = None if v is pd.NA else plain(v)
+    return out
 
 
 def _csv_column(series: pd.Series) -> list[str]:
     """:func:`csv_cell` of every value of a column (float columns without a call per value)."""
     if series.dtype == np.float64:
         arr = series.to_numpy()
-        out = [repr(v) for v in arr.tolist()]
+        out = list(map(float.__repr__, arr.tolist()))   # repr, as csv_cell writes a float
         for i in np.flatnonzero(np.isnan(arr)).tolist():
             out[i] = ""
         return out
-    return [csv_cell(v) for v in series.tolist()]
+    out = series.tolist()
+    for i, v in enumerate(out):
+        t = type(v)
+        if t is str:   # the common case: free text, as csv_cell writes it
+            if v.startswith(FORMULA_STARTS):
+                out[i] = "'" + v
+        elif v is None or v is pd.NA:
+            out[i] = ""
+        elif t is bool:
+            out[i] = "true" if v else "false"
+        else:
+            out[i] = csv_cell(v)
+    return out
 
 
 def write_csv(path: Path, results: pd.DataFrame, columns: list[str]) -> None:
@@ -237,21 +255,15 @@ def _dump_loops(fh, head: dict[str, Any], columns: list[str], values: list[list[
     if n == 0:
         fh.write("[]\n}")
         return
+    encode = {str: enc_str, float: float_repr, type(None): lambda v: "null",
+              bool: lambda v: "true" if v else "false", int: int.__repr__}   # the json module's text of each
     cols = []
     for key, col in zip(keys, values):
-        cells = []
-        for v in col:
-            t = type(v)
-            if t is str:
-                cells.append(key + enc_str(v))
-            elif t is float:
-                cells.append(key + float_repr(v))
-            elif v is None:
-                cells.append(key + "null")
-            elif t is bool:
-                cells.append(key + ("true" if v else "false"))
-            else:
-                cells.append(key + int.__repr__(v))
+        kinds = set(map(type, col))
+        if len(kinds) == 1:   # a column of one kind: its encoder over the whole column
+            cells = [key + t for t in map(encode[kinds.pop()], col)]
+        else:
+            cells = [key + encode[type(v)](v) for v in col]
         cols.append(cells)
     if cols:
         rows = ["{\n   " + ",\n   ".join(cells) + "\n  }" for cells in zip(*cols)]

@@ -22,17 +22,18 @@ import gc
 import itertools
 import math
 import re
+import threading
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from concurrent.futures import ProcessPoolExecutor
 from typing import Any, Callable, Iterator
 from urllib.parse import urlsplit
-from urllib.request import url2pathname
 
 import jinja2
 from markupsafe import Markup, escape
 
+from .curves import LoopPlots
 from .report import STATUS_ORDER, Report, build_report
 from .svg import chart_html
 
@@ -396,6 +397,11 @@ def _loop_sections(task: tuple) -> list[str]:
     return [template.render(d=d, drawings=drawings, detail_anchors=anchors, for_print=for_print) for d in details]
 
 
+_NO_ARRAYS = LoopPlots("", None)
+"""What a detail section sent to a worker carries for its plot data (``loop.html.j2`` asks only whether it
+has any; the charts go beside it, drawn)."""
+
+
 def _sections(details, rendered: Rendered, anchors: frozenset, for_print: bool, mapper: Callable) -> Iterator[Markup]:
     """The detail sections of the page, in order, rendered in runs of :data:`SECTION_CHUNK` by ``mapper``.
 
@@ -407,6 +413,8 @@ def _sections(details, rendered: Rendered, anchors: frozenset, for_print: bool, 
     for a in range(0, len(details), SECTION_CHUNK):
         run = details[a:a + SECTION_CHUNK]
         keys = [d.anchor for d in run]
+        # the section reads only whether plots exist: their arrays are not sent to a worker
+        run = tuple(d if d.plots is None else replace(d, plots=_NO_ARRAYS) for d in run)
         tasks.append((run, {k: rendered.loops[k] for k in keys if k in rendered.loops},
                       {k: rendered.health[k] for k in keys if k in rendered.health}, anchors, for_print))
     # written by the autoescaping loop template
@@ -461,6 +469,8 @@ class OutputFolderFetcher:
     root: Path
 
     def __call__(self, url: str, timeout: float = 10, ssl_context: Any = None, http_headers: Any = None) -> dict:
+        from urllib.request import url2pathname   # here: its import (http, ssl, email) is for the PDF only
+
         from weasyprint.urls import default_url_fetcher
 
         scheme = urlsplit(url).scheme.lower()
@@ -541,21 +551,58 @@ def write_pdf(html: str, path: Path, out_dir: Path) -> Path:
 
 @contextlib.contextmanager
 def _mapper(jobs: int) -> Iterator[Callable]:
-    """``map``, or a process pool's ``map`` when more than one job is allowed."""
+    """``map``, or a process pool's ``map`` when more than one job is allowed.
+
+    The pool's workers are started at once (forked before the caller starts any thread of its own).
+    """
     if jobs is None or jobs <= 1:
         yield map
         return
     with ProcessPoolExecutor(max_workers=jobs) as ex:
+        ex.submit(int)   # with fork, the first task starts every worker now
         yield functools.partial(ex.map, chunksize=1)   # one task per item: the two step batches run side by side
 
 
-def write_outputs(audit) -> dict[str, Path]:
+def _ready_for_workers() -> None:
+    """Compile the templates of a detail section and import the chart modules, before a pool's workers fork.
+
+    Each worker then inherits them instead of compiling ``loop.html.j2`` and the templates it includes and
+    importing the chart code again (a fixed cost per worker, paid before its first task). The page's own
+    templates are compiled here too (the page is rendered in this process).
+    """
+    from jinja2 import meta
+
+    env = environment()
+    env.get_template("base.html.j2")
+    todo, seen = ["loop.html.j2"], set()
+    while todo:
+        name = todo.pop()
+        if name in seen:
+            continue
+        seen.add(name)
+        env.get_template(name)
+        source = env.loader.get_source(env, name)[0]
+        todo.extend(n for n in meta.find_referenced_templates(env.parse(source)) if n)
+    from . import health_charts, plots  # noqa: F401  (imported for the workers)
+    from .curves import _step_source
+    from .multiloop import report as _groups  # noqa: F401
+    _step_source()
+
+
+def write_outputs(audit, beside: Callable[[], Any] | None = None) -> dict[str, Path]:
     """Write report.html, report.pdf (unless ``options.pdf`` is false) and results.xlsx.
+
+    With more than one job, ``beside`` and then results.xlsx are written by a thread of this process while
+    the page is built and rendered (this process mostly waits for the pool's workers then); with one job,
+    ``beside`` runs first and results.xlsx after the page, as before. The files are the same either way.
 
     Parameters
     ----------
     audit : Audit
         A finished run.
+    beside : callable, optional
+        Writes other files of the run (the caller's results.csv and results.json); called once with no
+        argument. An exception it raises is raised here, after the thread has stopped.
 
     Returns
     -------
@@ -568,23 +615,68 @@ def write_outputs(audit) -> dict[str, Path]:
     out.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
     limit = getattr(audit.options, "plot_limit", PLOT_LIMIT)
+    jobs = audit.options.jobs
+    pooled = jobs is not None and jobs > 1
+    if beside is not None and not pooled:
+        beside()
+        t0 = time.perf_counter()
+    written: dict[str, Path] = {}
+    xlsx_path = out / "results.xlsx"
     with _cycle_collector_held():
-        environment().get_template("base.html.j2")   # compiled before the pool's workers are forked
-        environment().get_template("loop.html.j2")
-        with _mapper(audit.options.jobs) as mapper:
-            report = build_report(audit, plot_limit=limit, mapper=mapper)
+        _ready_for_workers()   # compiled and imported before the pool's workers are forked
+        with _mapper(jobs) as pool_map, _side_thread(pooled) as side:
+            started = threading.Event()   # set once the workers have their first tasks (the step batches)
+
+            def mapper(fn: Callable, *items: Any) -> Any:
+                pending = pool_map(fn, *items)
+                started.set()
+                return pending
+
+            first = side(_after, started, beside) if beside is not None and pooled else None
+            try:
+                report = build_report(audit, plot_limit=limit, mapper=mapper)
+            finally:
+                started.set()   # also when no step batch was started, or the build failed
+            book = side(write_results_xlsx, audit, report, xlsx_path) if pooled else None
             rendered = draw(report, mapper=mapper)
             html = render_html(report, rendered, paper=audit.options.paper, mapper=mapper)
-    written: dict[str, Path] = {}
-    (out / "report.html").write_text(html, encoding="utf-8")
-    written["report.html"] = out / "report.html"
-    audit.timings["report.html"] = time.perf_counter() - t0
+            (out / "report.html").write_text(html, encoding="utf-8")
+            written["report.html"] = out / "report.html"
+            audit.timings["report.html"] = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            if first is not None:
+                first.result()
+            if book is not None:
+                written["results.xlsx"] = book.result()
+                audit.timings["results.xlsx"] = time.perf_counter() - t0   # the wait after the page
     if audit.options.pdf:
         t0 = time.perf_counter()
         pdf_html = render_html(report, rendered, paper=audit.options.paper, for_print=True)
         written["report.pdf"] = write_pdf(pdf_html, out / "report.pdf", out)
         audit.timings["report.pdf"] = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    written["results.xlsx"] = write_results_xlsx(audit, report, out / "results.xlsx")
-    audit.timings["results.xlsx"] = time.perf_counter() - t0
+    if "results.xlsx" not in written:
+        t0 = time.perf_counter()
+        written["results.xlsx"] = write_results_xlsx(audit, report, xlsx_path)
+        audit.timings["results.xlsx"] = time.perf_counter() - t0
+    else:
+        written["results.xlsx"] = written.pop("results.xlsx")   # listed last, as written before
     return written
+
+
+def _after(event: threading.Event, fn: Callable[[], Any]) -> Any:
+    """``fn()`` once ``event`` is set (the side thread leaves the first moments to the pool's tasks)."""
+    event.wait()
+    return fn()
+
+
+@contextlib.contextmanager
+def _side_thread(use: bool) -> Iterator[Callable | None]:
+    """``submit`` of one thread beside this one (calls run in order, each gives a future), or None when ``use``
+    is false. Leaving the context waits for the thread, so no file is being written after it."""
+    if not use:
+        yield None
+        return
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="audit-writer") as ex:
+        yield ex.submit

@@ -717,12 +717,13 @@ def build_report(audit, plot_limit: int | None = None, mapper: Callable = map) -
     order = _detail_order(rows, statuses, work, mode, frozenset(audit.extras.get("health") or ()))
     anchors = {loop_anchor(rows[i]) for i in order}
     by_tag = _first_by_tag(rows)
-    pairs = [_detail(audit, i, res, statuses[i], plot_limit is None or k < plot_limit, by_tag)
-             for k, i in enumerate(order)]
+    plotted = len(order) if plot_limit is None else max(0, min(plot_limit, len(order)))
+    pairs = [_detail(audit, i, res, statuses[i], True, by_tag) for i in order[:plotted]]
     jobs = [job for _, job in pairs if job is not None]
     # one vectorised simulation per kind for all loops, in the pool's workers when there is a pool,
-    # while this process computes the frequency responses and the rest of the report
+    # while this process builds the other detail sections, the frequency responses and the rest
     pending = start_steps(jobs, mapper)
+    pairs += [_detail(audit, i, res, statuses[i], False, by_tag) for i in order[plotted:]]
     freq = {j.key: plot_data(j)[0] for j in jobs}
     plant_data, data = data_views(audit)
     details = tuple(replace(d, data=data[d.index]) if d.index in data else d for d, _ in pairs)

@@ -395,6 +395,9 @@ def run_audit(inventory_path: str, options: AuditOptions, force: bool = False) -
 def write_outputs(audit: Audit, folder: str | Path | None = None) -> dict[str, Path]:
     """results.csv, results.json, then the report and workbook, into ``folder``.
 
+    With ``--jobs`` above 1 results.csv and results.json are written beside the page (a thread of this
+    process, while the pool's workers draw: :func:`audit.render.write_outputs`); the files are the same.
+
     Parameters
     ----------
     audit : Audit
@@ -415,15 +418,18 @@ def write_outputs(audit: Audit, folder: str | Path | None = None) -> dict[str, P
     if audit.extras.get("faults"):
         from .faults import FAULT_LOG, write_fault_log
         written[FAULT_LOG] = write_fault_log(audit, out)   # first: whatever fails later, the log is there
-    write_csv(out / "results.csv", audit.results, cols)
+
+    def tables() -> None:
+        write_csv(out / "results.csv", audit.results, cols)
+        write_json(out / "results.json", audit.results, cols, audit.meta)
+
     written["results.csv"] = out / "results.csv"
-    write_json(out / "results.json", audit.results, cols, audit.meta)
     written["results.json"] = out / "results.json"
     from .render import write_outputs as render_outputs
     final = audit.options.out_dir
     audit.options.out_dir = str(out)   # the report's writer puts its files into options.out_dir
     try:
-        written.update(render_outputs(audit))
+        written.update(render_outputs(audit, beside=tables))
     finally:
         audit.options.out_dir = final
     return written
