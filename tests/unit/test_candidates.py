@@ -228,13 +228,45 @@ def test_disc_pruning_leaves_every_ki_contact_unchanged():
     pts = np.array([cand._forbidden_points(Limits(2.0, 6.0, 45.0))] * R)
     rows = cand._contact_rows(A, b, r, pts, (kp[:, 0], kp[:, -1]))
     cols = cand._disc_columns(rows, kp)
-    assert cols is not None and cols.shape[1] < n          # frequencies were left out
+    assert cols is not None and cols[0].size < R * n       # frequencies were left out
+    assert (cols[2] < n).all() and cols[2].sum() == cols[0].size   # each row's own count, none padded
     got = cand._ki_contacts(rows, kp, (cand.KP_FRACTIONS, np.zeros(R), kp_u))
     whole = cand._ki_contacts(cand._contact_rows(A, b, r, pts), kp)     # no span: every frequency
     np.testing.assert_array_equal(got, whole)
     ref = cand._first_contact(kp[..., None] * A[:, None, :], b[:, None, :], r, pts)
     np.testing.assert_allclose(got, ref, rtol=1e-9)
     assert np.isfinite(got).all() and (got > 0).all()
+
+
+def test_frontier_band_level_is_its_plain_definition():
+    """The band level of every (kp, ki) point of every ki frontier (each row's own band, no row padded
+    to the widest) equals its definition: the largest |S| = 1/|1 + L| over the row's grid points up to
+    the band edge, in dB, with L = (kp (1 + D) + ki/(jw)) P computed here from each loop's own response
+    (common practice)."""
+    models, reqs, lims = _models()
+    ms = [m for m, q in zip(models, reqs) if q.active]
+    qs = [q for q in reqs if q.active]
+    ls = [lim for lim, q in zip(lims, reqs) if q.active]
+    wc = characteristic_ws(ms)
+    wd = np.array([q.band_rad_s for q in qs], float)
+    S = cand._search_arrays(ms, wc, wd, ls, [0.1] * len(ms))
+    loop = np.repeat(np.arange(len(ms)), 2)
+    td = np.array([0.0 if k % 2 == 0 else 0.5 / wc[i] for k, i in enumerate(loop)])
+    frs = cand._frontier_rows(S, loop, td)
+    checked = 0
+    for fr, i, t in zip(frs, loop, td):
+        if fr is None:
+            continue
+        w = S.w[i]
+        band = w <= wd[i]
+        assert band.any() and not band.all()
+        P = loop_responses([cand._unit_loop(ms[i])], w[band])[0]
+        cd = 1.0 + (1j * w[band] * t) / (0.1 * t * 1j * w[band] + 1.0) if t > 0 else 1.0
+        for kp, ki, got in zip(fr.kp, fr.ki, fr.band_s_db):
+            ref = 20 * np.log10(np.max(1.0 / np.abs(1.0 + (kp * cd + ki / (1j * w[band])) * P)))
+            assert got == pytest.approx(ref, rel=1e-12, abs=1e-12)
+            checked += 1
+    assert checked >= 24 * len(ms)
 
 
 def test_characteristic_w_in_pieces_equals_the_whole_grid_unwrapped():
