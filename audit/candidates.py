@@ -1009,7 +1009,11 @@ class _Smooth:
 
 
 def _tau_ok(S: _Search, reqs: Sequence[_Smooth], series: bool, taus: np.ndarray) -> np.ndarray:
-    """Screen the SIMC settings of each request at each of its taus (R, T): within the limits and the requirement."""
+    """Screen the SIMC settings of each request at each of its taus (R, T): within the limits and the requirement.
+
+    The requirement is checked first on the band alone; the limits only for the taus that meet it (the
+    same verdicts: a tau that fails the requirement fails the screen).
+    """
     out = np.zeros(taus.shape, bool)
     m = S.w.shape[1]
     block = max(1, BLOCK_ELEMENTS // (taus.shape[1] * m))
@@ -1037,11 +1041,25 @@ def _tau_ok(S: _Search, reqs: Sequence[_Smooth], series: bool, taus: np.ndarray)
             PF = PF * np.where(td > 0, (td * s + 1.0) / (S.alpha[li][:, None] * td * s + 1.0), 1.0)
         with np.errstate(divide="ignore", invalid="ignore"):
             Pi = PF / s
-        L = kc[..., None] * PF[:, None, :]
-        L += ki[..., None] * Pi[:, None, :]
-        sc = _screen(L, S.sel[li][:, None, :], True, S.pair[li][:, None, :])
-        out[a:a + block] = _screen_ok(sc, col([q.lim.ms_max for q in sub]), col([q.lim.gm_min_db for q in sub]),
-                                      col([q.lim.pm_min_deg for q in sub]), col([q.req.level_db for q in sub]))
+        level = col([q.req.level_db for q in sub])
+        # the requirement first, on the band's leading part of each grid alone (the same numbers as the
+        # screen's own band level): only the taus that meet it are screened in full
+        sel = S.sel[li]
+        c = max(1, int(sel.sum(-1).max()))
+        Lb = kc[..., None] * PF[:, None, :c]
+        Lb += ki[..., None] * Pi[:, None, :c]
+        insel = np.broadcast_to(sel[:, None, :c], Lb.shape)
+        with np.errstate(divide="ignore"):
+            band = np.where(insel.any(-1), 20 * np.log10(1.0 / np.where(insel, np.abs(1.0 + Lb), np.inf).min(-1)),
+                            -np.inf)
+            r, t = np.nonzero(np.isnan(level) | (band <= level))
+        if not r.size:
+            continue
+        L = kc[r, t][:, None] * PF[r]
+        L += ki[r, t][:, None] * Pi[r]
+        sc = _screen(L, sel[r], np.ones(r.size, bool), S.pair[li][r])
+        out[a + r, t] = _screen_ok(sc, col([q.lim.ms_max for q in sub])[r, 0], col([q.lim.gm_min_db for q in sub])[r, 0],
+                                   col([q.lim.pm_min_deg for q in sub])[r, 0], level[r, 0])
     return out
 
 
