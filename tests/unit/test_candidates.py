@@ -269,6 +269,43 @@ def test_frontier_band_level_is_its_plain_definition():
     assert checked >= 24 * len(ms)
 
 
+def test_tau_screen_with_the_requirement_first_equals_the_full_screen_of_every_tau():
+    """The SIMC tau_c screen, which screens the limits only for the taus that meet the requirement on
+    the band, gives every (request, tau) the verdict of the full screen (the loop C P on the grid,
+    :func:`_screen` and :func:`_screen_ok` of each tau, written out here: common practice), and the
+    full screens do differ: some taus fail the requirement, some the limits, some pass."""
+    from audit.tuning import _effective, effective_extra_delay, simc_pi
+    models, reqs, lims = _models()
+    pick = [i for i, m in enumerate(models) if m.process.kind in ("fopdt", "sopdt", "ipdt") and reqs[i].active]
+    ms = [models[i] for i in pick]
+    wc = characteristic_ws(ms)
+    wd = np.array([reqs[i].band_rad_s for i in pick], float)
+    S = cand._search_arrays(ms, wc, wd, [lims[i] for i in pick], [0.1] * len(ms))
+    sm = []
+    for k, i in enumerate(pick):
+        extra = effective_extra_delay(models[i])
+        kk, t1, t2, theta = _effective(models[i].process, extra, for_pid=False)
+        sm.append(cand._Smooth(k, simc_pi, 0.0, 0.0, kk, t1, t2, theta, lims[i], reqs[i]))
+    taus = np.geomspace(0.05 * np.ones(len(sm)), 500.0 * np.ones(len(sm)), 40, axis=-1)
+    got = cand._tau_ok(S, sm, False, taus)
+    ref = np.zeros_like(got)
+    skipped = limits_only = 0
+    for k, q in enumerate(sm):
+        h = taus[k] + q.theta
+        kc = q.t1 / (q.k * h) if math.isfinite(q.t1) else 1.0 / (q.k * h)
+        ti = np.minimum(q.t1, 4.0 * h) if math.isfinite(q.t1) else 4.0 * h
+        s = 1j * S.w[k]
+        L = kc[:, None] * S.P[k][None, :] + (kc / ti)[:, None] * (S.P[k] / s)[None, :]
+        sc = cand._screen(L, S.sel[k][None, :], np.ones(len(h), bool), S.pair[k][None, :])
+        ref[k] = cand._screen_ok(sc, q.lim.ms_max, q.lim.gm_min_db, q.lim.pm_min_deg, q.req.level_db)
+        band_fail = ~(sc.band_s_db <= q.req.level_db)
+        limits_fail = ~cand._screen_ok(sc, q.lim.ms_max, q.lim.gm_min_db, q.lim.pm_min_deg, np.nan)
+        skipped += band_fail.sum()
+        limits_only += (~band_fail & limits_fail).sum()
+    np.testing.assert_array_equal(got, ref)
+    assert got.any() and skipped > 0 and limits_only > 0      # both ways of failing are exercised
+
+
 def test_characteristic_w_in_pieces_equals_the_whole_grid_unwrapped():
     """The characteristic frequencies found piece by piece equal the first grid point where numpy's
     unwrap of the whole grid falls past the target (the definition: common practice)."""
