@@ -832,6 +832,12 @@ def add_proposals(audit) -> None:
         The run, after the frequency (and cascade) stages; ``options.propose`` selects the
         rows, the inventory's policy gives the limits; ``results`` and ``extras`` change in place.
     """
+    from .frequency import _no_gc_pauses
+    with _no_gc_pauses():     # tens of thousands of small objects per batch: no full passes of the collector
+        _add_proposals(audit)
+
+
+def _add_proposals(audit) -> None:
     res = audit.results
     rows = audit.inventory.rows
     policy = audit.inventory.policy
