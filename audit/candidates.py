@@ -541,10 +541,9 @@ def _ki_contacts(C: _ContactRows, kp: np.ndarray, grid=None) -> np.ndarray:
     """
     cols = _disc_columns(C, kp)
     if cols is None:
-        e, br, A2, A2r, bb, nbb = C.e, C.br, C.A2, C.A2r, C.bb, C.nbb
+        t, bad = _disc_contact(kp, C.e, C.br, C.A2, C.A2r, C.bb, C.nbb, C.c0)
     else:
-        e, br, A2, A2r, bb, nbb = (np.take_along_axis(x, cols, -1) for x in (C.e, C.br, C.A2, C.A2r, C.bb, C.nbb))
-    t, bad = _disc_contact(kp, e, br, A2, A2r, bb, nbb, C.c0)
+        t, bad = _disc_contact_kept(kp, C, *cols)
     k = kp[..., None]
     flat_t = t.reshape(-1)   # a view: the contacts found below are written into t
     for pr in C.points:
@@ -635,15 +634,16 @@ def _disc_bounds(e, br, A2, A2r, bb, c0, lo, hi) -> tuple[np.ndarray, np.ndarray
     return never, np.where(np.isfinite(lb), lb, 0.0)
 
 
-def _disc_columns(C: _ContactRows, kp: np.ndarray) -> np.ndarray | None:
-    """The frequencies of each row (R, n) that can hold the disc contact of one of its gains, or None for all.
+def _disc_columns(C: _ContactRows, kp: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    """The frequencies of each row that can hold the disc contact of one of its gains, or None for all:
+    (rows, frequencies) of the kept pairs, row by row in order, and the count of each row.
 
     A frequency is left out when, for every gain of the row's span (:func:`_disc_bounds`), the point
     1 + kp A is outside the disc there (so it cannot make the row 'inside') and either the line
     cannot enter the disc at a positive t or it cannot enter before the bound ``lb``, more than twice
     an upper bound of every gain's contact (its contacts at the row's :data:`DISC_PROBES`
     frequencies of least bound). The least contact of every gain is then at a frequency kept (the
-    same number), and 'inside' is unchanged. Rows are padded with a repeat of a kept frequency.
+    same number), and 'inside' is unchanged. A row with none kept keeps its first frequency.
     """
     if C.never is None:
         return None
@@ -658,17 +658,42 @@ def _disc_columns(C: _ContactRows, kp: np.ndarray) -> np.ndarray | None:
     with np.errstate(invalid="ignore"):
         keep = ~(never | (lb > 2.0 * np.where(np.isfinite(ub), ub, np.inf)[:, None]))
     n = keep.sum(-1)
-    top = int(n.max()) if R else 0
-    if top > 0.7 * m:
+    if n.sum() > 0.7 * keep.size:
         return None
-    # the kept frequencies first (in order), padded with a repeat of the first kept one (or of 0)
+    # a row with no frequency kept: its frequency 0 (every contact there is inf, as everywhere else)
+    keep[n == 0, 0] = True
     r, c = np.nonzero(keep)
+    return r, c, np.maximum(n, 1)
+
+
+def _disc_contact_kept(kp: np.ndarray, C: _ContactRows, r: np.ndarray, c: np.ndarray, n: np.ndarray
+                       ) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_disc_contact` over the kept frequencies of each row only (:func:`_disc_columns`): the kept
+    (row, frequency) pairs side by side, no row padded to the longest, each row's least contact and
+    'inside' reduced over its own run. The same arithmetic element by element, so the same numbers."""
+    k = kp[r]                                    # (N, K) the gains of each pair's row
+    idx = (r, c)
+    ab = k * C.e[idx][:, None]
+    ab += C.br[idx][:, None]
+    aa = k * C.A2[idx][:, None]
+    aa += C.A2r[idx][:, None]
+    aa *= k
+    aa += C.c0[r][:, None]
+    inside = aa < 0
+    aa *= C.bb[idx][:, None]
+    disc = np.multiply(ab, ab)
+    disc -= aa
+    ok = disc > 0
+    k1 = np.maximum(disc, 0.0, out=aa)
+    np.sqrt(k1, out=k1)
+    k1 += ab
+    with np.errstate(divide="ignore", invalid="ignore"):
+        k1 /= C.nbb[idx][:, None]
+    ok &= k1 > 0
     start = np.cumsum(n) - n
-    first = np.zeros(R, int)
-    first[n > 0] = c[start[n > 0]]
-    out = np.repeat(first[:, None], max(top, 1), -1)
-    out[r, np.arange(r.size) - start[r]] = c
-    return out
+    t = np.minimum.reduceat(np.where(ok, k1, np.inf), start, axis=0)
+    bad = np.logical_or.reduceat(inside, start, axis=0)
+    return t, bad
 
 
 def _point_changes(pr: _PointRows, kp: np.ndarray, top: np.ndarray, grid):
@@ -860,13 +885,18 @@ def _frontier_rows(S: _Search, loop: np.ndarray, td: np.ndarray) -> list[Frontie
         hb = S.has_band[li]
         if hb.any():
             h = np.flatnonzero(hb)
-            sel = S.sel[li[h]]
-            c = max(1, int(sel.sum(-1).max()))    # the band is a leading part of each grid
-            sel = sel[:, None, :c]
-            L = (kp[h, :, None] * cd[h, None, :c] + ki[h, :, None] / (1j * w[h, None, :c])) * P[h, None, :c]
-            absS = np.where(sel, 1.0 / np.abs(1.0 + L), -np.inf).max(-1)
-            with np.errstate(divide="ignore"):
-                band[h] = np.where(sel.any(-1), 20 * np.log10(absS), -np.inf)
+            nb = S.sel[li[h]].sum(-1)             # the band is a leading part of each grid
+            band[h[nb == 0]] = -np.inf
+            h, nb = h[nb > 0], nb[nb > 0]
+            if h.size:
+                # the band's (row, frequency) pairs side by side, no row padded to the widest band
+                start = np.cumsum(nb) - nb
+                r = np.repeat(h, nb)
+                c = np.arange(r.size) - np.repeat(start, nb)
+                L = (kp[r] * cd[r, c][:, None] + ki[r] / (1j * w[r, c])[:, None]) * P[r, c][:, None]
+                absS = np.maximum.reduceat(1.0 / np.abs(1.0 + L), start, axis=0)
+                with np.errstate(divide="ignore"):
+                    band[h] = 20 * np.log10(absS)
         for k, row in enumerate(rows[ok]):
             out[row] = Frontier(float(td[row]), kp[k], ki[k], band[k])
     return out
@@ -979,7 +1009,11 @@ class _Smooth:
 
 
 def _tau_ok(S: _Search, reqs: Sequence[_Smooth], series: bool, taus: np.ndarray) -> np.ndarray:
-    """Screen the SIMC settings of each request at each of its taus (R, T): within the limits and the requirement."""
+    """Screen the SIMC settings of each request at each of its taus (R, T): within the limits and the requirement.
+
+    The requirement is checked first on the band alone; the limits only for the taus that meet it (the
+    same verdicts: a tau that fails the requirement fails the screen).
+    """
     out = np.zeros(taus.shape, bool)
     m = S.w.shape[1]
     block = max(1, BLOCK_ELEMENTS // (taus.shape[1] * m))
@@ -1007,11 +1041,25 @@ def _tau_ok(S: _Search, reqs: Sequence[_Smooth], series: bool, taus: np.ndarray)
             PF = PF * np.where(td > 0, (td * s + 1.0) / (S.alpha[li][:, None] * td * s + 1.0), 1.0)
         with np.errstate(divide="ignore", invalid="ignore"):
             Pi = PF / s
-        L = kc[..., None] * PF[:, None, :]
-        L += ki[..., None] * Pi[:, None, :]
-        sc = _screen(L, S.sel[li][:, None, :], True, S.pair[li][:, None, :])
-        out[a:a + block] = _screen_ok(sc, col([q.lim.ms_max for q in sub]), col([q.lim.gm_min_db for q in sub]),
-                                      col([q.lim.pm_min_deg for q in sub]), col([q.req.level_db for q in sub]))
+        level = col([q.req.level_db for q in sub])
+        # the requirement first, on the band's leading part of each grid alone (the same numbers as the
+        # screen's own band level): only the taus that meet it are screened in full
+        sel = S.sel[li]
+        c = max(1, int(sel.sum(-1).max()))
+        Lb = kc[..., None] * PF[:, None, :c]
+        Lb += ki[..., None] * Pi[:, None, :c]
+        insel = np.broadcast_to(sel[:, None, :c], Lb.shape)
+        with np.errstate(divide="ignore"):
+            band = np.where(insel.any(-1), 20 * np.log10(1.0 / np.where(insel, np.abs(1.0 + Lb), np.inf).min(-1)),
+                            -np.inf)
+            r, t = np.nonzero(np.isnan(level) | (band <= level))
+        if not r.size:
+            continue
+        L = kc[r, t][:, None] * PF[r]
+        L += ki[r, t][:, None] * Pi[r]
+        sc = _screen(L, sel[r], np.ones(r.size, bool), S.pair[li][r])
+        out[a + r, t] = _screen_ok(sc, col([q.lim.ms_max for q in sub])[r, 0], col([q.lim.gm_min_db for q in sub])[r, 0],
+                                   col([q.lim.pm_min_deg for q in sub])[r, 0], level[r, 0])
     return out
 
 

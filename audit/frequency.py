@@ -852,7 +852,7 @@ def _make_points(w_lo, w_mid, w_hi, h_log, n_log, n_lin, w_a, n_low):
 
 
 def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndarray, p_open: np.ndarray,
-                    band: np.ndarray, grid) -> dict[str, np.ndarray]:
+                    band: np.ndarray, grid, mt: bool = True) -> dict[str, np.ndarray]:
     n = ents.size
     out: dict[str, np.ndarray] = {}
     w_lo, w_hi, w_mid, h_log, n_log, n_lin, capped, w_a, n_low = grid
@@ -864,7 +864,6 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     absL = np.abs(L)
     abs1 = np.abs(one_plus)
     absS = 1.0 / abs1
-    absT = absL * absS
     same = seg[1:] == seg[:-1]
     # grid intervals [w_i, w_i+1] are indexed by their left point i; ``same[i]``: both ends in one segment
     inner = _interior(same)
@@ -1028,9 +1027,11 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
     p1a, p1b, la, lb = abs1[:-1], abs1[1:], absL[:-1], absL[1:]
     dL = np.abs(L[1:] - L[:-1])
     s_up = np.where(same, _s_upper(p1a, p1b, dL), -np.inf)
-    t_up = np.where(same, _t_upper(p1a, p1b, la, lb, dL), -np.inf)
-    peaks = (_Peak(ent_pt, seg, w, L, absS, inner, n, s_0, s_inf, _abs_s, s_up, _s_bound),
-             _Peak(ent_pt, seg, w, L, absT, inner, n, t_0, t_inf, _abs_t, t_up, _t_bound))
+    peaks = (_Peak(ent_pt, seg, w, L, absS, inner, n, s_0, s_inf, _abs_s, s_up, _s_bound),)
+    if mt:
+        # (the peak of |T| is searched side by side with that of |S|, each on its own: neither changes the other)
+        t_up = np.where(same, _t_upper(p1a, p1b, la, lb, dL), -np.inf)
+        peaks += (_Peak(ent_pt, seg, w, L, absL * absS, inner, n, t_0, t_inf, _abs_t, t_up, _t_bound),)
     band_search = _Band(ents, ent_pt, seg, w, absS, absL, inner, n, band, s_0, np.where(k > 0, np.inf, np.abs(L0)))
     # every search for a maximum side by side: grid maxima of |S| and |T|, extrema in the band
     found = _find_maxima(batch, [p.first_job() for p in peaks] + band_search.jobs(batch))
@@ -1046,8 +1047,12 @@ def _evaluate_block(batch: Batch, ents: np.ndarray, st: _Static, tdelay: np.ndar
         p.add(*found[:3])
         p.dropped = np.fmax(p.dropped, found[3])
     out["ms"], out["w_ms_rad_s"] = peaks[0].result()
-    out["mt"], out["w_mt_rad_s"] = peaks[1].result()
-    ms_b, mt_b = peaks[0].is_bound(out["ms"]), peaks[1].is_bound(out["mt"])
+    if mt:
+        out["mt"], out["w_mt_rad_s"] = peaks[1].result()
+        ms_b, mt_b = peaks[0].is_bound(out["ms"]), peaks[1].is_bound(out["mt"])
+    else:
+        out["mt"], out["w_mt_rad_s"] = np.full(n, np.nan), np.full(n, np.nan)
+        ms_b, mt_b = peaks[0].is_bound(out["ms"]), np.zeros(n, bool)
     out["lower_bounds"] = np.where(ms_b & mt_b, "ms mt", np.where(ms_b, "ms", np.where(mt_b, "mt", ""))).astype(object)
 
     # ---- bandwidth: first rise of |S| through 1/sqrt(2) ----
@@ -1460,7 +1465,7 @@ def grid_points(models: Sequence[LoopModel | None]) -> np.ndarray:
     return out
 
 
-def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFrame:
+def evaluate(models: Sequence[LoopModel | None], band_rad_s=None, mt: bool = True) -> pd.DataFrame:
     """Exact frequency-domain figures of many loops.
 
     Parameters
@@ -1469,6 +1474,10 @@ def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFram
         The loops; None (an invalid row) gives a row of missing values.
     band_rad_s : array-like, optional
         Upper edge wd of each loop's rejection band (NaN or None: no requirement). [rad/s]
+    mt : bool
+        Search the peak of |T| too (default). False leaves ``mt`` and ``w_mt_rad_s`` NaN and
+        saves that search (the proposals judge candidates without Mt); every other figure is the
+        same number either way (the two peaks are searched side by side, each on its own).
 
     Returns
     -------
@@ -1480,8 +1489,8 @@ def evaluate(models: Sequence[LoopModel | None], band_rad_s=None) -> pd.DataFram
         ``band_l_db`` [dB], ``engine_note`` (text).
     """
     with _no_gc_pauses():
-        df = _evaluate(models, band_rad_s)
-        return _decide_axis_poles(list(models), df, band_rad_s)
+        df = _evaluate(models, band_rad_s, mt)
+        return _decide_axis_poles(list(models), df, band_rad_s, mt)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1513,7 +1522,7 @@ def _shift_axis_poles(m: LoopModel, rel: float) -> LoopModel | None:
     return replace(m, process=proc)
 
 
-def _decide_axis_poles(models: list, df: pd.DataFrame, band_rad_s) -> pd.DataFrame:
+def _decide_axis_poles(models: list, df: pd.DataFrame, band_rad_s, mt: bool = True) -> pd.DataFrame:
     """Stability of loops with open-loop poles on the imaginary axis, decided instead of assumed.
 
     Closed-loop poles depend continuously on the open-loop ones, so when the closed loop has no pole
@@ -1531,7 +1540,7 @@ def _decide_axis_poles(models: list, df: pd.DataFrame, band_rad_s) -> pd.DataFra
     band = np.full(len(models), np.nan) if band_rad_s is None else \
         np.array([np.nan if b is None else float(b) for b in band_rad_s], float)
     sub_band = np.concatenate([band[[i for i, _, _ in pairs]]] * 2)
-    both = _evaluate([a for _, a, _ in pairs] + [b for _, _, b in pairs], sub_band)
+    both = _evaluate([a for _, a, _ in pairs] + [b for _, _, b in pairs], sub_band, mt)
     n = len(pairs)
     df = df.copy()
     for j, (i, _, _) in enumerate(pairs):
@@ -1552,7 +1561,7 @@ def _decide_axis_poles(models: list, df: pd.DataFrame, band_rad_s) -> pd.DataFra
     return df
 
 
-def _evaluate(models, band_rad_s) -> pd.DataFrame:
+def _evaluate(models, band_rad_s, mt: bool = True) -> pd.DataFrame:
     _keep_freed_memory()
     models = list(models)
     nmod = len(models)
@@ -1587,7 +1596,7 @@ def _evaluate(models, band_rad_s) -> pd.DataFrame:
                     blk = chunk[sub]
                     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
                         o = _evaluate_block(batch, blk, st, tdel, p_open[blk], band_e[blk],
-                                            tuple(g[sub] for g in grid))
+                                            tuple(g[sub] for g in grid), mt)
                     zraw[blk] = o.pop("_z_raw")
                     endless[blk] = o.pop("_endless")
                     for c, v in o.items():

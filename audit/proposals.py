@@ -237,7 +237,7 @@ def check_actions(models: Sequence[LoopModel]) -> list[ActionCheck]:
     if not models:
         return []
     both = list(models) + [replace(m, sign=-m.sign) for m in models]
-    df = evaluate(both)
+    df = evaluate(both, mt=False)      # only stability is read
     n = len(models)
     out = []
     for i, m in enumerate(models):
@@ -425,7 +425,8 @@ def _take_candidates(job: _Job, cands: Sequence[Settings], notes: Sequence[str])
 
 
 def _evaluate_jobs(jobs: Sequence[_Job]) -> None:
-    """Evaluate every candidate of every job with the exact engine, in one call."""
+    """Evaluate every candidate of every job with the exact engine, in one call (no search for Mt, which
+    no candidate is judged by: every figure read is the same number)."""
     from .frequency import evaluate
 
     models, bands, owner = [], [], []
@@ -436,7 +437,7 @@ def _evaluate_jobs(jobs: Sequence[_Job]) -> None:
             owner.append(k)
     if not models:
         return
-    df = evaluate(models, np.asarray(bands, float))
+    df = evaluate(models, np.asarray(bands, float), mt=False)     # a candidate is judged without Mt
     for k, rec in zip(owner, df.to_dict("records")):
         jobs[k].figures.append(Figures.of(rec))
 
@@ -831,6 +832,12 @@ def add_proposals(audit) -> None:
         The run, after the frequency (and cascade) stages; ``options.propose`` selects the
         rows, the inventory's policy gives the limits; ``results`` and ``extras`` change in place.
     """
+    from .frequency import _no_gc_pauses
+    with _no_gc_pauses():     # tens of thousands of small objects per batch: no full passes of the collector
+        _add_proposals(audit)
+
+
+def _add_proposals(audit) -> None:
     res = audit.results
     rows = audit.inventory.rows
     policy = audit.inventory.policy

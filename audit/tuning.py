@@ -184,6 +184,8 @@ class Figures:
         """
         def g(k):
             v = fig.get(k) if hasattr(fig, "get") else fig[k]
+            if type(v) is float:     # the common case (NaN stays NaN), without pandas' missing-value test
+                return v
             try:
                 return math.nan if v is None or pd.isna(v) else float(v)
             except (TypeError, ValueError):
@@ -255,6 +257,8 @@ class Proposal:
 
 
 def _finite(x) -> bool:
+    if type(x) is float:         # the common case, without pandas' general missing-value test
+        return math.isfinite(x)
     try:
         return x is not None and not pd.isna(x) and math.isfinite(float(x))
     except (TypeError, ValueError):

@@ -228,13 +228,82 @@ def test_disc_pruning_leaves_every_ki_contact_unchanged():
     pts = np.array([cand._forbidden_points(Limits(2.0, 6.0, 45.0))] * R)
     rows = cand._contact_rows(A, b, r, pts, (kp[:, 0], kp[:, -1]))
     cols = cand._disc_columns(rows, kp)
-    assert cols is not None and cols.shape[1] < n          # frequencies were left out
+    assert cols is not None and cols[0].size < R * n       # frequencies were left out
+    assert (cols[2] < n).all() and cols[2].sum() == cols[0].size   # each row's own count, none padded
     got = cand._ki_contacts(rows, kp, (cand.KP_FRACTIONS, np.zeros(R), kp_u))
     whole = cand._ki_contacts(cand._contact_rows(A, b, r, pts), kp)     # no span: every frequency
     np.testing.assert_array_equal(got, whole)
     ref = cand._first_contact(kp[..., None] * A[:, None, :], b[:, None, :], r, pts)
     np.testing.assert_allclose(got, ref, rtol=1e-9)
     assert np.isfinite(got).all() and (got > 0).all()
+
+
+def test_frontier_band_level_is_its_plain_definition():
+    """The band level of every (kp, ki) point of every ki frontier (each row's own band, no row padded
+    to the widest) equals its definition: the largest |S| = 1/|1 + L| over the row's grid points up to
+    the band edge, in dB, with L = (kp (1 + D) + ki/(jw)) P computed here from each loop's own response
+    (common practice)."""
+    models, reqs, lims = _models()
+    ms = [m for m, q in zip(models, reqs) if q.active]
+    qs = [q for q in reqs if q.active]
+    ls = [lim for lim, q in zip(lims, reqs) if q.active]
+    wc = characteristic_ws(ms)
+    wd = np.array([q.band_rad_s for q in qs], float)
+    S = cand._search_arrays(ms, wc, wd, ls, [0.1] * len(ms))
+    loop = np.repeat(np.arange(len(ms)), 2)
+    td = np.array([0.0 if k % 2 == 0 else 0.5 / wc[i] for k, i in enumerate(loop)])
+    frs = cand._frontier_rows(S, loop, td)
+    checked = 0
+    for fr, i, t in zip(frs, loop, td):
+        if fr is None:
+            continue
+        w = S.w[i]
+        band = w <= wd[i]
+        assert band.any() and not band.all()
+        P = loop_responses([cand._unit_loop(ms[i])], w[band])[0]
+        cd = 1.0 + (1j * w[band] * t) / (0.1 * t * 1j * w[band] + 1.0) if t > 0 else 1.0
+        for kp, ki, got in zip(fr.kp, fr.ki, fr.band_s_db):
+            ref = 20 * np.log10(np.max(1.0 / np.abs(1.0 + (kp * cd + ki / (1j * w[band])) * P)))
+            assert got == pytest.approx(ref, rel=1e-12, abs=1e-12)
+            checked += 1
+    assert checked >= 24 * len(ms)
+
+
+def test_tau_screen_with_the_requirement_first_equals_the_full_screen_of_every_tau():
+    """The SIMC tau_c screen, which screens the limits only for the taus that meet the requirement on
+    the band, gives every (request, tau) the verdict of the full screen (the loop C P on the grid,
+    :func:`_screen` and :func:`_screen_ok` of each tau, written out here: common practice), and the
+    full screens do differ: some taus fail the requirement, some the limits, some pass."""
+    from audit.tuning import _effective, effective_extra_delay, simc_pi
+    models, reqs, lims = _models()
+    pick = [i for i, m in enumerate(models) if m.process.kind in ("fopdt", "sopdt", "ipdt") and reqs[i].active]
+    ms = [models[i] for i in pick]
+    wc = characteristic_ws(ms)
+    wd = np.array([reqs[i].band_rad_s for i in pick], float)
+    S = cand._search_arrays(ms, wc, wd, [lims[i] for i in pick], [0.1] * len(ms))
+    sm = []
+    for k, i in enumerate(pick):
+        extra = effective_extra_delay(models[i])
+        kk, t1, t2, theta = _effective(models[i].process, extra, for_pid=False)
+        sm.append(cand._Smooth(k, simc_pi, 0.0, 0.0, kk, t1, t2, theta, lims[i], reqs[i]))
+    taus = np.geomspace(0.05 * np.ones(len(sm)), 500.0 * np.ones(len(sm)), 40, axis=-1)
+    got = cand._tau_ok(S, sm, False, taus)
+    ref = np.zeros_like(got)
+    skipped = limits_only = 0
+    for k, q in enumerate(sm):
+        h = taus[k] + q.theta
+        kc = q.t1 / (q.k * h) if math.isfinite(q.t1) else 1.0 / (q.k * h)
+        ti = np.minimum(q.t1, 4.0 * h) if math.isfinite(q.t1) else 4.0 * h
+        s = 1j * S.w[k]
+        L = kc[:, None] * S.P[k][None, :] + (kc / ti)[:, None] * (S.P[k] / s)[None, :]
+        sc = cand._screen(L, S.sel[k][None, :], np.ones(len(h), bool), S.pair[k][None, :])
+        ref[k] = cand._screen_ok(sc, q.lim.ms_max, q.lim.gm_min_db, q.lim.pm_min_deg, q.req.level_db)
+        band_fail = ~(sc.band_s_db <= q.req.level_db)
+        limits_fail = ~cand._screen_ok(sc, q.lim.ms_max, q.lim.gm_min_db, q.lim.pm_min_deg, np.nan)
+        skipped += band_fail.sum()
+        limits_only += (~band_fail & limits_fail).sum()
+    np.testing.assert_array_equal(got, ref)
+    assert got.any() and skipped > 0 and limits_only > 0      # both ways of failing are exercised
 
 
 def test_characteristic_w_in_pieces_equals_the_whole_grid_unwrapped():

@@ -97,6 +97,24 @@ def test_batch_equals_single_and_grid_independence(monkeypatch):
         np.testing.assert_allclose(a[both], b[both], rtol=1e-6, err_msg=c)
 
 
+def test_without_the_mt_search_every_other_figure_is_the_same_number():
+    """evaluate(..., mt=False) (the proposals' candidates) leaves Mt out and changes no other figure by a
+    bit: the two peaks are searched side by side, each on its own (a shortcut equals the computation it
+    shortens: common practice). Loops with and without a band requirement, stable and not."""
+    models = random_loops(200, seed=5)
+    band = np.where(np.arange(200) % 2 == 0, 0.05, np.nan)
+    full = evaluate(models, band)
+    part = evaluate(models, band, mt=False)
+    assert full["stable"].astype(bool).any() and not full["stable"].astype(bool).all()
+    assert np.isfinite(full["mt"].to_numpy(float)).sum() > 100
+    assert part["mt"].isna().all() and part["w_mt_rad_s"].isna().all()
+    for c in fq.FIGURE_COLUMNS:
+        if c in ("mt", "w_mt_rad_s", "lower_bounds"):
+            continue
+        assert full[c].equals(part[c]), c          # same values bit for bit, missing ones in the same places
+    assert (part["lower_bounds"] == full["lower_bounds"].str.replace("mt", "").str.strip()).all()
+
+
 def test_band_requirement_with_dead_time():
     """Closed form: SIMC loop L = e^{-theta s}/(2 theta s); at low frequency |S| ~ 2 theta w, so for
     wd = 0.01/theta the band level is about 20 log10(0.02) = -34 dB (Skogestad 2003, eq. for S at
