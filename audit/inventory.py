@@ -1205,14 +1205,19 @@ MIN_ROWS_PER_JOB = 250
 
 
 def _validate_rows(table: _Table, colmap: dict[str, list[int]], extras: dict[int, str], base_dir: Path,
-                   unitless: dict[int, str], layout: tuple, idx) -> list[LoopRow]:
-    """:func:`_validate_row` of the rows ``idx`` of ``table`` (the work of one process)."""
-    out = []
+                   unitless: dict[int, str], layout: tuple, idx) -> tuple[list[LoopRow], dict[int, Any]]:
+    """:func:`_validate_row` of the rows ``idx`` of ``table`` (the work of one process), and the loop
+    of each valid row (row index -> loop, None when it cannot be built: the row then says why)."""
+    from .loop import model_from_row
+    out, built = [], {}
     for i in idx:
+        i = int(i)
         r, vals, fmts = table.rows[i]
-        out.append(_validate_row(int(i), table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless,
-                                 table.merged, layout))
-    return out
+        row = _validate_row(i, table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless, table.merged, layout)
+        if row.valid:
+            built[i], row = _row_model(row, model_from_row)
+        out.append(row)
+    return out, built
 
 
 def _rows_from_table(table: _Table, base_dir: Path, jobs: int = 1) -> tuple[list[LoopRow], list[Problem],
@@ -1224,11 +1229,13 @@ def _rows_from_table(table: _Table, base_dir: Path, jobs: int = 1) -> tuple[list
     if jobs > 1 and len(table.rows) >= 2 * MIN_ROWS_PER_JOB:
         from .parallel import map_parts
         # each row's checks depend on that row alone: the same rows and messages in any split
-        rows = [row for part in map_parts(_validate_rows, len(table.rows), jobs, args, MIN_ROWS_PER_JOB)
-                for row in part]
+        rows, built = [], {}
+        for part_rows, part_built in map_parts(_validate_rows, len(table.rows), jobs, args, MIN_ROWS_PER_JOB):
+            rows.extend(part_rows)
+            built.update(part_built)
     else:
-        rows = _validate_rows(*args, range(len(table.rows)))
-    rows, models = _mark_unevaluable(rows, colmap)
+        rows, built = _validate_rows(*args, range(len(table.rows)))
+    rows, models = _mark_unevaluable(rows, colmap, built)
     return _mark_duplicates(rows, tag_col), problems, tuple(extras.values()), models
 
 
@@ -1237,13 +1244,27 @@ def _layout(colmap: dict[str, list[int]]) -> tuple[dict[str, int], dict[int, str
     return {n: cols[0] for n, cols in colmap.items()}, {c: n for n, cols in colmap.items() for c in cols}
 
 
-def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> tuple[list[LoopRow], tuple]:
+_UNBUILT = object()
+
+
+def _row_model(row: LoopRow, model_from_row) -> tuple[Any, LoopRow]:
+    """The loop of a valid row, or None and the row with the reason it cannot be built."""
+    try:
+        return model_from_row(row), row
+    except (ValueError, ZeroDivisionError, OverflowError, FloatingPointError) as exc:
+        return None, replace(row, errors=row.errors + (Problem(
+            row.sheet, str(row.excel_row), "model", f"the loop cannot be built from this row: {exc}"),))
+
+
+def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]],
+                      prebuilt: dict[int, Any] | None = None) -> tuple[list[LoopRow], tuple]:
     """Refuse valid rows whose loop the engine cannot evaluate in full (the engine's own grid sizing).
 
     Each value lies in its range, but together they can still span more than the engine resolves:
     a long dead time with a fast loop turns the delay spiral more times than the grid holds.
     Returns the rows and the loop built for each row that stays valid (None for the others), which
-    the models stage reuses instead of building every loop again.
+    the models stage reuses instead of building every loop again. ``prebuilt`` holds the loops
+    already built by :func:`_validate_rows` (row index -> loop or None; its rows carry the reason).
     """
     from .frequency import grid_points
     from .ranges import MAX_GRID_POINTS
@@ -1254,12 +1275,10 @@ def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> tupl
         return rows, ()
     models = []
     for i in idx:
-        try:
-            models.append(model_from_row(rows[i]))
-        except (ValueError, ZeroDivisionError, OverflowError, FloatingPointError) as exc:
-            models.append(None)
-            rows[i] = replace(rows[i], errors=rows[i].errors + (Problem(
-                rows[i].sheet, str(rows[i].excel_row), "model", f"the loop cannot be built from this row: {exc}"),))
+        m = prebuilt.get(i, _UNBUILT) if prebuilt is not None else _UNBUILT
+        if m is _UNBUILT:
+            m, rows[i] = _row_model(rows[i], model_from_row)
+        models.append(m)
     flags = grid_points(models) > MAX_GRID_POINTS
     out = list(rows)
     built: list = [None] * len(rows)
