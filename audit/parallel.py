@@ -197,11 +197,11 @@ def step_figures_parallel(models: Sequence[LoopModel | None], policy, stable=Non
     jobs : int
         Worker processes; 1 (or fewer than ``2 * MIN_LOOPS_PER_JOB`` loops) simulates here. [-]
     """
-    from .timedomain import _step_frame
+    from . import timedomain
     models = list(models)
     st = [None] * len(models) if stable is None else list(stable)
     if int(jobs) < 2 or len(models) < 2 * MIN_LOOPS_PER_JOB:
-        return _step_frame(models, policy, st, ("load", "setpoint"))
+        return timedomain.step_figures(models, policy, st)
 
     def run_parts(ms, base, kinds, pct):
         # the first part runs here (the set-point steps, the larger), the other in a forked worker
@@ -210,7 +210,7 @@ def step_figures_parallel(models: Sequence[LoopModel | None], policy, stable=Non
                for p in part]
         return got[::-1]
 
-    return _step_frame(models, policy, st, ("load", "setpoint"), run_parts)
+    return timedomain._step_frame(models, policy, st, ("load", "setpoint"), run_parts)
 
 
 _PARTS: tuple | None = None
