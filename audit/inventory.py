@@ -780,9 +780,10 @@ class _RowCheck:
     def group(self, quantity: str, members: list[tuple[str, Callable[[float], float], str]],
               unit: str) -> tuple[float | None, str | None]:
         """One quantity given by alternative columns: (value in project units, column used)."""
+        byname = self.byname
         found: list[tuple[str, float, float]] = []
         for name, conv, need in members:
-            if not self.present(name):
+            if name not in byname:
                 continue
             x = self.number(name, need, ranged=False)
             if x is None:
@@ -819,10 +820,12 @@ _TIME_MEMBERS: dict[tuple[str, str], list[tuple[str, Callable[[float], float], s
 
 
 def _time_members(base: str, need: str) -> list[tuple[str, Callable[[float], float], str]]:
-    key = (base, need)
-    if key not in _TIME_MEMBERS:
-        _TIME_MEMBERS[key] = [(f"{base}_{u}", (lambda x, u=u: units.time_to_s(x, u)), need) for u in units.TIME_UNITS]
-    return list(_TIME_MEMBERS[key])
+    """The columns of a time quantity, one per unit (one list per quantity, shared: not to be changed)."""
+    got = _TIME_MEMBERS.get((base, need))
+    if got is None:
+        got = _TIME_MEMBERS[(base, need)] = [(f"{base}_{u}", (lambda x, u=u: units.time_to_s(x, u)), need)
+                                             for u in units.TIME_UNITS]
+    return got
 
 
 _MODEL_USES = {
@@ -1196,16 +1199,43 @@ def _extra_name(header: str, taken) -> tuple[str, str]:
     return EXTRA_PREFIX + printable(header), why
 
 
-def _rows_from_table(table: _Table, base_dir: Path) -> tuple[list[LoopRow], list[Problem], tuple[str, ...],
-                                                               tuple]:
+#: Fewest data rows a worker process is forked for by ``read_inventory(jobs=...)``: below it the
+#: fork and the rows' way back cost more than the checks they take off this process. [-]
+MIN_ROWS_PER_JOB = 250
+
+
+def _validate_rows(table: _Table, colmap: dict[str, list[int]], extras: dict[int, str], base_dir: Path,
+                   unitless: dict[int, str], layout: tuple, idx) -> tuple[list[LoopRow], dict[int, Any]]:
+    """:func:`_validate_row` of the rows ``idx`` of ``table`` (the work of one process), and the loop
+    of each valid row (row index -> loop, None when it cannot be built: the row then says why)."""
+    from .loop import model_from_row
+    out, built = [], {}
+    for i in idx:
+        i = int(i)
+        r, vals, fmts = table.rows[i]
+        row = _validate_row(i, table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless, table.merged, layout)
+        if row.valid:
+            built[i], row = _row_model(row, model_from_row)
+        out.append(row)
+    return out, built
+
+
+def _rows_from_table(table: _Table, base_dir: Path, jobs: int = 1) -> tuple[list[LoopRow], list[Problem],
+                                                                             tuple[str, ...], tuple]:
     colmap, extras, unitless, problems = _map_headers(table)
     tag_col = _col_letter(colmap["tag"][0]) if "tag" in colmap else ""
     layout = _layout(colmap)
-    rows = [
-        _validate_row(i, table.sheet, r, vals, fmts, colmap, extras, base_dir, unitless, table.merged, layout)
-        for i, (r, vals, fmts) in enumerate(table.rows)
-    ]
-    rows, models = _mark_unevaluable(rows, colmap)
+    args = (table, colmap, extras, base_dir, unitless, layout)
+    if jobs > 1 and len(table.rows) >= 2 * MIN_ROWS_PER_JOB:
+        from .parallel import map_parts
+        # each row's checks depend on that row alone: the same rows and messages in any split
+        rows, built = [], {}
+        for part_rows, part_built in map_parts(_validate_rows, len(table.rows), jobs, args, MIN_ROWS_PER_JOB):
+            rows.extend(part_rows)
+            built.update(part_built)
+    else:
+        rows, built = _validate_rows(*args, range(len(table.rows)))
+    rows, models = _mark_unevaluable(rows, colmap, built)
     return _mark_duplicates(rows, tag_col), problems, tuple(extras.values()), models
 
 
@@ -1214,13 +1244,27 @@ def _layout(colmap: dict[str, list[int]]) -> tuple[dict[str, int], dict[int, str
     return {n: cols[0] for n, cols in colmap.items()}, {c: n for n, cols in colmap.items() for c in cols}
 
 
-def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> tuple[list[LoopRow], tuple]:
+_UNBUILT = object()
+
+
+def _row_model(row: LoopRow, model_from_row) -> tuple[Any, LoopRow]:
+    """The loop of a valid row, or None and the row with the reason it cannot be built."""
+    try:
+        return model_from_row(row), row
+    except (ValueError, ZeroDivisionError, OverflowError, FloatingPointError) as exc:
+        return None, replace(row, errors=row.errors + (Problem(
+            row.sheet, str(row.excel_row), "model", f"the loop cannot be built from this row: {exc}"),))
+
+
+def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]],
+                      prebuilt: dict[int, Any] | None = None) -> tuple[list[LoopRow], tuple]:
     """Refuse valid rows whose loop the engine cannot evaluate in full (the engine's own grid sizing).
 
     Each value lies in its range, but together they can still span more than the engine resolves:
     a long dead time with a fast loop turns the delay spiral more times than the grid holds.
     Returns the rows and the loop built for each row that stays valid (None for the others), which
-    the models stage reuses instead of building every loop again.
+    the models stage reuses instead of building every loop again. ``prebuilt`` holds the loops
+    already built by :func:`_validate_rows` (row index -> loop or None; its rows carry the reason).
     """
     from .frequency import grid_points
     from .ranges import MAX_GRID_POINTS
@@ -1231,12 +1275,10 @@ def _mark_unevaluable(rows: list[LoopRow], colmap: dict[str, list[int]]) -> tupl
         return rows, ()
     models = []
     for i in idx:
-        try:
-            models.append(model_from_row(rows[i]))
-        except (ValueError, ZeroDivisionError, OverflowError, FloatingPointError) as exc:
-            models.append(None)
-            rows[i] = replace(rows[i], errors=rows[i].errors + (Problem(
-                rows[i].sheet, str(rows[i].excel_row), "model", f"the loop cannot be built from this row: {exc}"),))
+        m = prebuilt.get(i, _UNBUILT) if prebuilt is not None else _UNBUILT
+        if m is _UNBUILT:
+            m, rows[i] = _row_model(rows[i], model_from_row)
+        models.append(m)
     flags = grid_points(models) > MAX_GRID_POINTS
     out = list(rows)
     built: list = [None] * len(rows)
@@ -1346,13 +1388,17 @@ def _read_policy(table: _Table) -> tuple[Policy, list[Problem]]:
 # --------------------------------------------------------------------------------------
 
 
-def read_inventory(path: str | Path) -> Inventory:
+def read_inventory(path: str | Path, jobs: int = 1) -> Inventory:
     """Read an inventory workbook (.xlsx) or CSV file and validate every row.
 
     Parameters
     ----------
     path : str or Path
         The workbook (sheet ``loops``, optional sheet ``policy``) or a CSV of the loops.
+    jobs : int
+        Processes for the rows' checks (``run --jobs``): with more than one and at least
+        ``2 * MIN_ROWS_PER_JOB`` rows, forked workers check a share of the rows each while this
+        process checks the first share; the same rows and messages in every case. [-]
 
     Returns
     -------
@@ -1369,13 +1415,13 @@ def read_inventory(path: str | Path) -> Inventory:
     was = gc.isenabled()
     gc.disable()       # see _read_inventory
     try:
-        return _read_inventory(Path(path), path)
+        return _read_inventory(Path(path), path, jobs)
     finally:
         if was:
             gc.enable()
 
 
-def _read_inventory(p: Path, path: str | Path) -> Inventory:
+def _read_inventory(p: Path, path: str | Path, jobs: int = 1) -> Inventory:
     """:func:`read_inventory` with Python's cycle collector held off by the caller: reading creates
     several objects per cell (XML elements, values, problems) and none in a reference cycle; with the
     collector on, its full passes over the growing set of rows read cost a third of the reading at
@@ -1425,7 +1471,7 @@ def _read_inventory(p: Path, path: str | Path) -> Inventory:
             ctable = _couplings_table(wb, sheets)
         finally:
             wb.close()
-    rows, header_problems, extra_columns, models = _rows_from_table(table, base_dir)
+    rows, header_problems, extra_columns, models = _rows_from_table(table, base_dir, jobs)
     if not rows:
         where = f"sheet '{table.sheet}' of {p.name}" if sheets else p.name
         raise InventoryError(f"{where}: no loops below the header row (row {table.header_row}); nothing to audit")

@@ -83,11 +83,6 @@ def _evaluate_chunk(models: list[LoopModel | None], band: np.ndarray) -> pd.Data
     return evaluate(models, band)
 
 
-def _steps_chunk(models: list[LoopModel | None], policy, stable: list) -> pd.DataFrame:
-    from .timedomain import step_figures
-    return step_figures(models, policy, stable)
-
-
 _SHARED: tuple | None = None
 _CONTEXT = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
 
@@ -176,8 +171,20 @@ def evaluate_parallel(models: Sequence[LoopModel | None], band_rad_s=None, jobs:
                       min_per_job=MIN_LOOPS_PER_EVALUATE_JOB)
 
 
+def _step_kinds(ms: list, base: np.ndarray, kinds: tuple, pct: float, idx: np.ndarray) -> list:
+    """Worker side of :func:`step_figures_parallel`: the response kinds ``kinds[idx]`` of every loop."""
+    from .timedomain import step_kind_part
+    return [step_kind_part(ms, base, kinds[k], pct) for k in idx]
+
+
 def step_figures_parallel(models: Sequence[LoopModel | None], policy, stable=None, jobs: int = 1) -> pd.DataFrame:
     """:func:`audit.timedomain.step_figures` over ``jobs`` processes; the same result.
+
+    The work is split by response kind, not by loop: this process simulates the set-point
+    steps of every loop while one forked worker simulates the load steps. A split by loop
+    would pay the simulation's fixed costs (per time step, per group of loops of one structure)
+    once per worker; split by kind each is paid once, as in one process, and every figure is
+    the one :func:`audit.timedomain.step_figures` gives in one process, to the last bit.
 
     Parameters
     ----------
@@ -188,12 +195,22 @@ def step_figures_parallel(models: Sequence[LoopModel | None], policy, stable=Non
     stable : sequence of bool or None, optional
         Closed-loop stability per loop, when known.
     jobs : int
-        Worker processes. [-]
+        Worker processes; 1 (or fewer than ``2 * MIN_LOOPS_PER_JOB`` loops) simulates here. [-]
     """
+    from . import timedomain
     models = list(models)
     st = [None] * len(models) if stable is None else list(stable)
-    # one chunk per worker: the simulation's cost per time step is mostly fixed per call
-    return map_chunks(_steps_chunk, models, [st], jobs, extra=(policy,), chunks_per_job=1)
+    if int(jobs) < 2 or len(models) < 2 * MIN_LOOPS_PER_JOB:
+        return timedomain.step_figures(models, policy, st)
+
+    def run_parts(ms, base, kinds, pct):
+        # the first part runs here (the set-point steps, the larger), the other in a forked worker
+        rev = tuple(kinds[::-1])
+        got = [p for part in map_parts(_step_kinds, len(rev), 2, (ms, base, rev, pct), min_per_job=1)
+               for p in part]
+        return got[::-1]
+
+    return timedomain._step_frame(models, policy, st, ("load", "setpoint"), run_parts)
 
 
 _PARTS: tuple | None = None

@@ -53,6 +53,11 @@ BLOCK_MAX = 32
 BLOCK_LOOPS = 256
 #: Products per block of :func:`simulate_lifted` aimed at with long delay channels (sets the block length). [-]
 BLOCK_WORK = 20000
+#: Loops stepped one step at a time (:func:`simulate`) with at most this many live states and one delay
+#: channel run apart from the others, at their own size (the padding to the batch's largest loop left
+#: out), when both parts have at least SMALL_LOOPS loops (each run pays the per-step cost once). [-]
+SMALL_STATES = 3
+SMALL_LOOPS = 64
 
 
 # --------------------------------------------------------------------------- system building
@@ -623,7 +628,7 @@ def _discretise(A: np.ndarray, B: np.ndarray, h: np.ndarray) -> tuple[np.ndarray
 
 
 def simulate(batch: Batch, h: np.ndarray, n_steps: int, ext: Callable[[int], np.ndarray] | None = None,
-             outputs: Sequence[int] = (0,)) -> SimResult:
+             outputs: Sequence[int] = (0,), live: tuple[int, int] | None = None) -> SimResult:
     """Advance a batch of loops together for ``n_steps`` steps from rest.
 
     Parameters
@@ -639,10 +644,23 @@ def simulate(batch: Batch, h: np.ndarray, n_steps: int, ext: Callable[[int], np.
         linear between grid points; zero before t = 0). Default: a unit step at t = 0.
     outputs : sequence of int
         Outputs to store (0 PV, 1 controller output).
+    live : (int, int), optional
+        Only the first ``ns`` states and ``m`` delay channels of every loop matter: the others are
+        padding (:meth:`Batch.concat`: no input reaches them, they reach no output, their delays
+        are NaN). The step is discretised with them (the same matrix exponential, so the same
+        numbers) and then left out: every product dropped is an exact zero, so every value is the
+        same, at the cost of the live sizes. Default: every state and channel.
     """
     L = len(batch)
     h = np.asarray(h, float)
     Phi, G0, G1 = _discretise(batch.A, batch.B, h)
+    if live is not None and live != (batch.A.shape[1], batch.Cq.shape[1]):
+        ns_, m_ = live
+        cols = list(range(m_)) + [batch.Cq.shape[1]]
+        Phi, G0, G1 = Phi[:, :ns_, :ns_], G0[:, :ns_][:, :, cols], G1[:, :ns_][:, :, cols]
+        batch = _narrow(batch, m_)
+        batch = Batch(batch.A[:, :ns_, :ns_], batch.B[:, :ns_], batch.Cq[:, :, :ns_], batch.Dq, batch.Cy[:, :, :ns_],
+                      batch.Dy, batch.delays, batch.y_shift, batch.u_shift, batch.soft)
     ns, m = batch.A.shape[1], batch.Cq.shape[1]
     r = m + 1
     G = np.ascontiguousarray(np.concatenate([Phi, G0, G1], axis=2).transpose(1, 2, 0))
@@ -966,18 +984,32 @@ def simulate_lifted(batch: Batch, h: np.ndarray, n_steps: int, outputs: Sequence
         fr = frac.T[:, None, :]
         use_frac = bool((frac > 0.0).any())
         flat = Z.reshape(-1)
-        s = lf.start
+        # the block's right-hand side [S; u] and its product live in buffers made once: each block
+        # writes the same values into them that it would concatenate (the same products, the same sums)
+        vec = np.empty((L, na + b * nin, 1))
+        vec[:, :na, 0] = lf.start
+        uv = vec[:, na:, 0].reshape(L, b, nin)
+        um, up = (uv[:, :, :ml], uv[:, :, ml:]) if jumps else (None, uv)
+        out = np.empty((L, b * nout + na, 1))
+        zo = out[:, :b * nout, 0].reshape(L, b, nout)
+        pos = at.copy()
+        got = np.empty(at.shape)
+        if use_frac:
+            keep, has = 1.0 - fr, fr > 0.0
         for j in range(J):
-            got = np.take(flat, at + j * b * nout)
+            np.take(flat, pos, out=got)
             wm, wp = got[:, :, :ml], got[:, :, ml:2 * ml]
             if use_frac:
-                wf = (1.0 - fr) * wm + fr * got[:, :, 2 * ml:]
-                wm = np.where(fr > 0.0, wf, wm)
-                wp = np.where(fr > 0.0, wf, wp)
-            u = np.concatenate([wm, wp], axis=2) if jumps else wp
-            out = G @ np.concatenate([s[:, :, None], u.reshape(L, b * nin, 1)], axis=1)
-            Z[:, pad + 1 + j * b:pad + 1 + (j + 1) * b] = out[:, :b * nout, 0].reshape(L, b, nout)
-            s = out[:, b * nout:, 0]
+                wf = keep * wm + fr * got[:, :, 2 * ml:]
+                wm = np.where(has, wf, wm)
+                wp = np.where(has, wf, wp)
+            if jumps:
+                um[...] = wm
+            up[...] = wp
+            np.matmul(G, vec, out=out)
+            Z[:, pad + 1 + j * b:pad + 1 + (j + 1) * b] = zo
+            vec[:, :na, 0] = out[:, b * nout:, 0]
+            pos += b * nout
         Z = Z[:, pad:, :2 * ny] if jumps else Z[:, pad:, :ny][:, :, [*range(ny), *range(ny)]]
         Y = Z.transpose(1, 2, 0)
         Y = Y[:K]
@@ -1058,14 +1090,40 @@ def simulate_steps(batch: Batch, h: np.ndarray, n_steps: int, outputs: Sequence[
             YM[:, :, idx[good]] = res.ym[:, :, good]
         seq.extend(idx[big].tolist())
     if seq:
-        idx = np.array(sorted(seq), int)
-        res = simulate(batch.take(idx), h[idx], n_steps, outputs=sel)
-        YP[:, :, idx] = res.yp
-        if jumps:
-            YM[:, :, idx] = res.ym
-            if res.ym is res.yp:      # no jump in these loops: the left limit at t = 0 is rest
-                YM[0, :, idx] = 0.0
+        seq_all = np.array(sorted(seq), int)
+        # most loops have fewer states and channels than the batch's largest (padding): the loops of
+        # at most SMALL_STATES live states and one channel step apart, at their own size
+        live_ns = _live_states(batch, seq_all)
+        small = (live_ns <= SMALL_STATES) & (mu[seq_all] == 1)
+        if small.sum() < SMALL_LOOPS or (~small).sum() < SMALL_LOOPS:
+            small[:] = False
+        for part in (seq_all[small], seq_all[~small]):
+            if not len(part):
+                continue
+            live = (int(_live_states(batch, part).max()), int(mu[part].max()))
+            res = simulate(batch.take(part), h[part], n_steps, outputs=sel, live=live)
+            YP[:, :, part] = res.yp
+            if jumps:
+                YM[:, :, part] = res.ym
+                if res.ym is res.yp:      # no jump in these loops: the left limit at t = 0 is rest
+                    YM[0, :, part] = 0.0
     return SimResult(h, YM, YP)
+
+
+def _live_states(batch: Batch, idx: np.ndarray) -> np.ndarray:
+    """Live states of the loops ``idx``: all but the trailing ones that nothing reaches and that reach nothing.
+
+    A trailing state is dead when its row and column of A are zero off the diagonal, its row of B
+    is zero and its columns of Cq and Cy are zero (the padding of :meth:`Batch.concat`): from rest
+    it stays zero and adds exact zeros to every sum.
+    """
+    A, B, Cq, Cy = batch.A[idx], batch.B[idx], batch.Cq[idx], batch.Cy[idx]
+    ns = A.shape[1]
+    off = A * (1.0 - np.eye(ns))[None]
+    dead = ((off == 0.0).all(axis=2) & (off == 0.0).all(axis=1) & (B == 0.0).all(axis=2)
+            & (Cq == 0.0).all(axis=1) & (Cy == 0.0).all(axis=1))                     # (L, ns)
+    trailing = np.cumprod(dead[:, ::-1], axis=1).sum(axis=1)
+    return np.maximum(ns - trailing, 1)
 
 
 def final_values(batch: Batch) -> np.ndarray:

@@ -369,12 +369,9 @@ def load_step_figures(models: Sequence[LoopModel | None], policy: Policy = Polic
     return _step_frame(models, policy, stable, ("load",))
 
 
-def _step_frame(models: Sequence[LoopModel | None], policy: Policy, stable, kinds: tuple[str, ...]) -> pd.DataFrame:
-    """:func:`step_figures` of the step kinds ``kinds`` (``load``, ``setpoint``)."""
-    pct = float(policy.settle_band_pct)
-    n = len(models)
-    cols = {c: np.full(n, np.nan) for c in STEP_COLUMNS[:-1]}
-    notes = [""] * n
+def _step_todo(models: Sequence[LoopModel | None], stable) -> tuple[list[int], list[str]]:
+    """Rows to simulate (a model, not known unstable) and the notes of the rows left out."""
+    notes = [""] * len(models)
     stab = None if stable is None else [None if pd.isna(s) else bool(s) for s in stable]
     todo: list[int] = []
     for i, m in enumerate(models):
@@ -384,54 +381,106 @@ def _step_frame(models: Sequence[LoopModel | None], policy: Policy, stable, kind
             notes[i] = "closed loop unstable: no step figures"
             continue
         todo.append(i)
+    return todo, notes
+
+
+def step_kind_part(ms: Sequence[LoopModel], base: np.ndarray, kind: str, pct: float) -> tuple:
+    """One response kind of :func:`step_figures` for the loops ``ms`` (the work of a step stage's process).
+
+    Depends on its arguments alone, so it gives the same figures wherever it runs; the rows'
+    notes and columns are filled from it by :func:`_apply_kind_part`, in the order of the kinds.
+
+    Parameters
+    ----------
+    ms : sequence of LoopModel
+        The loops to simulate.
+    base : ndarray
+        First horizon of each loop, ``HORIZON_FACTOR * characteristic_time``. [s]
+    kind : str
+        ``load`` or ``setpoint``.
+    pct : float
+        Settling band. [%]
+
+    Returns
+    -------
+    tuple
+        (loops left out with their messages, indices of the loops simulated, figures of those
+        loops by name); the last two are None when no loop could be built.
+    """
+    batch, errors = build_batch(ms, kind)
+    if batch is None:
+        return errors, None, None
+    okj = np.array([j for j in range(len(ms)) if j not in errors], int)
+    horizons = base[okj].copy()
+    pending = np.arange(len(okj))
+    acc: dict[str, np.ndarray] = {}
+    for attempt in range(RERUNS + 1):
+        got = _run_kind(batch.take(pending), kind, pct, horizons[pending],
+                        N_CAP if attempt == 0 else RERUN_CAP)
+        for k, v in got.items():
+            acc.setdefault(k, np.zeros(len(okj), v.dtype) if v.dtype == bool
+                           else np.full(len(okj), np.nan))[pending] = v
+        again = pending[~got["settled"] & ~got["truncated"] & ~got["grows"]]
+        if attempt == RERUNS or not len(again):
+            break
+        horizons[again] *= 4.0
+        pending = again
+    return errors, okj, acc
+
+
+def _apply_kind_part(kind: str, part: tuple, todo: list[int], cols: dict[str, np.ndarray], notes: list[str]) -> None:
+    """Fill ``cols`` and ``notes`` (all rows) from :func:`step_kind_part` of ``kind`` on the rows ``todo``."""
+    errors, okj, acc = part
+    for j, msg in errors.items():
+        if "no step figures" not in notes[todo[j]]:
+            notes[todo[j]] = _note_join([notes[todo[j]], f"no step figures: {msg}"])
+    if okj is None:
+        return
+    rows = np.asarray(todo)[okj]
+    label = "load" if kind == "load" else "set-point"
+    names = [k for k in acc if k not in ("settled", "grows", "horizon", "truncated")]
+    bad = ~acc["settled"] & acc["grows"]
+    for k in names:
+        cols[k][rows] = np.where(bad, np.nan, acc[k])
+    cols["step_horizon_s"][rows] = np.fmax(cols["step_horizon_s"][rows], acc["horizon"])
+    for jj in np.flatnonzero(~acc["settled"]):
+        i = rows[jj]
+        if acc["grows"][jj]:
+            notes[i] = _note_join([notes[i], f"{label} response grows: the closed loop looks unstable"])
+        else:
+            why = " (step count capped by a short dead time)" if acc["truncated"][jj] else ""
+            notes[i] = _note_join([notes[i], f"{label} response not settled within "
+                                             f"{acc['horizon'][jj]:.4g} s{why}"])
+    if kind == "load":
+        off = cols["load_offset"][rows]
+        for i in rows[np.isfinite(off) & (off != 0.0)]:
+            notes[i] = _note_join([notes[i], "no integral action: load offset, IAE and IE unbounded"])
+    else:
+        for i in rows[~np.isfinite(cols["sp_overshoot_pct"][rows])]:
+            if "set-point" not in notes[i]:
+                notes[i] = _note_join([notes[i], "no set-point response (zero steady-state gain)"])
+
+
+def _step_frame(models: Sequence[LoopModel | None], policy: Policy, stable, kinds: tuple[str, ...],
+                run_parts=None) -> pd.DataFrame:
+    """:func:`step_figures` of the step kinds ``kinds`` (``load``, ``setpoint``).
+
+    ``run_parts(ms, base, kinds, pct)``, when given, returns :func:`step_kind_part` of every kind
+    in order (e.g. each kind in its own process); by default they run here, one after the other.
+    """
+    pct = float(policy.settle_band_pct)
+    n = len(models)
+    cols = {c: np.full(n, np.nan) for c in STEP_COLUMNS[:-1]}
+    todo, notes = _step_todo(models, stable)
     if todo:
         ms = [models[i] for i in todo]
         base = np.array([HORIZON_FACTOR * characteristic_time(m) for m in ms])
-        for kind in kinds:
-            batch, errors = build_batch(ms, kind)
-            for j, msg in errors.items():
-                if "no step figures" not in notes[todo[j]]:
-                    notes[todo[j]] = _note_join([notes[todo[j]], f"no step figures: {msg}"])
-            if batch is None:
-                continue
-            okj = np.array([j for j in range(len(ms)) if j not in errors], int)
-            rows = np.asarray(todo)[okj]
-            horizons = base[okj].copy()
-            pending = np.arange(len(okj))
-            acc: dict[str, np.ndarray] = {}
-            for attempt in range(RERUNS + 1):
-                got = _run_kind(batch.take(pending), kind, pct, horizons[pending],
-                                N_CAP if attempt == 0 else RERUN_CAP)
-                for k, v in got.items():
-                    acc.setdefault(k, np.zeros(len(okj), v.dtype) if v.dtype == bool
-                                   else np.full(len(okj), np.nan))[pending] = v
-                again = pending[~got["settled"] & ~got["truncated"] & ~got["grows"]]
-                if attempt == RERUNS or not len(again):
-                    break
-                horizons[again] *= 4.0
-                pending = again
-            label = "load" if kind == "load" else "set-point"
-            names = [k for k in acc if k not in ("settled", "grows", "horizon", "truncated")]
-            bad = ~acc["settled"] & acc["grows"]
-            for k in names:
-                cols[k][rows] = np.where(bad, np.nan, acc[k])
-            cols["step_horizon_s"][rows] = np.fmax(cols["step_horizon_s"][rows], acc["horizon"])
-            for jj in np.flatnonzero(~acc["settled"]):
-                i = rows[jj]
-                if acc["grows"][jj]:
-                    notes[i] = _note_join([notes[i], f"{label} response grows: the closed loop looks unstable"])
-                else:
-                    why = " (step count capped by a short dead time)" if acc["truncated"][jj] else ""
-                    notes[i] = _note_join([notes[i], f"{label} response not settled within "
-                                                     f"{acc['horizon'][jj]:.4g} s{why}"])
-            if kind == "load":
-                off = cols["load_offset"][rows]
-                for i in rows[np.isfinite(off) & (off != 0.0)]:
-                    notes[i] = _note_join([notes[i], "no integral action: load offset, IAE and IE unbounded"])
-            else:
-                for i in rows[~np.isfinite(cols["sp_overshoot_pct"][rows])]:
-                    if "set-point" not in notes[i]:
-                        notes[i] = _note_join([notes[i], "no set-point response (zero steady-state gain)"])
+        if run_parts is None:
+            parts = [step_kind_part(ms, base, kind, pct) for kind in kinds]
+        else:
+            parts = run_parts(ms, base, kinds, pct)
+        for kind, part in zip(kinds, parts):
+            _apply_kind_part(kind, part, todo, cols, notes)
     out = pd.DataFrame(cols)
     out["step_note"] = notes
     return out

@@ -67,8 +67,8 @@ def test_two_jobs_give_exactly_the_one_job_result(synthetic, monkeypatch):
 
 
 def test_two_jobs_give_exactly_the_one_job_step_figures(synthetic, monkeypatch):
-    """Regression: step responses over two processes equal the one-process figures to 1e-9 relative
-    (loops batched with others of another state size may differ in the last bits of a product)."""
+    """Regression: step responses over two processes (split by response kind, each over every loop)
+    equal the one-process figures bit for bit, notes included."""
     from audit.parallel import step_figures_parallel
     from audit.policy import Policy
     from audit.timedomain import step_figures
@@ -76,6 +76,54 @@ def test_two_jobs_give_exactly_the_one_job_step_figures(synthetic, monkeypatch):
     models, _ = synthetic
     models = models[:300]
     monkeypatch.setattr(parallel, "MIN_LOOPS_PER_JOB", 100)
-    one = step_figures(models, Policy())
-    two = step_figures_parallel(models, Policy(), None, jobs=2)
-    pd.testing.assert_frame_equal(one, two, check_exact=False, rtol=1e-9, atol=0)
+    stable = [None if m is None else (i % 17 != 3) for i, m in enumerate(models)]   # some known unstable
+    one = step_figures(models, Policy(), stable)
+    two = step_figures_parallel(models, Policy(), stable, jobs=2)
+    pd.testing.assert_frame_equal(one, two, check_exact=True)
+    assert (two["step_note"] == "closed loop unstable: no step figures").sum() == sum(s is False for s in stable)
+
+
+def test_step_kinds_in_a_worker_match_the_closed_form(monkeypatch):
+    """The load steps simulated in the forked worker: IE = -1/ki for a unit load step at the process
+    input of a PI loop (K. J. Astrom and T. Hagglund, Advanced PID Control, ISA, 2006, sec. 4.3), and
+    the final value 1 of the set-point step (integral action, common practice)."""
+    from audit.parallel import step_figures_parallel
+    from audit.policy import Policy
+
+    monkeypatch.setattr(parallel, "MIN_LOOPS_PER_JOB", 4)
+    models = [LoopModel(f"L{i}", make_process("fopdt", 1.0 + 0.1 * i, 10.0 + i, dead_time=1.0 + 0.2 * i),
+                        Controller("ideal", kc=0.8, ti=12.0 + i)) for i in range(10)]
+    got = step_figures_parallel(models, Policy(), [True] * 10, jobs=2)
+    ki = np.array([0.8 / (12.0 + i) for i in range(10)])      # kc/ti [1/s]
+    # to 1e-3, as tests/reference/test_time_reference.py: the trapezoid integral stops at the horizon
+    np.testing.assert_allclose(got["load_ie_s"].to_numpy(float), -1.0 / ki, rtol=1e-3)
+    np.testing.assert_allclose(got["sp_offset"].to_numpy(float), 0.0, atol=1e-9)
+    assert (got["step_note"] == "").all()
+
+
+def test_rows_checked_in_two_processes_read_the_same(tmp_path, monkeypatch):
+    """``read_inventory(jobs=2)`` forks a worker for a share of the rows: the same rows, values,
+    problems and messages (sheet, cell, column) as one process, on a workbook with bad rows
+    (regression against the one-process reading)."""
+    from audit import inventory as inv_mod
+    from audit.generate import write_synthetic_inventory
+    from audit.inventory import read_inventory
+
+    import openpyxl
+    path = tmp_path / "site.xlsx"
+    write_synthetic_inventory(path, 60, seed=4)
+    wb = openpyxl.load_workbook(path)
+    ws = wb["loops"]
+    heads = [c.value for c in ws[1]]
+    ws.cell(5, heads.index("tag") + 1, None)                  # tag missing
+    ws.cell(9, heads.index("model") + 1, "fopdtt")            # unknown word
+    ws.cell(40, heads.index("criticality") + 1, "urgent")     # in the worker's share
+    ws.cell(55, heads.index("form") + 1, 3.5)
+    wb.save(path)
+    monkeypatch.setattr(inv_mod, "MIN_ROWS_PER_JOB", 10)
+    one = read_inventory(path)
+    two = read_inventory(path, jobs=2)
+    assert one.rows == two.rows
+    assert one.problems == two.problems
+    msgs = [str(p) for r in two.rows for p in r.errors]
+    assert any("C40" in m or "40" in m for m in msgs) and any("criticality" in m for m in msgs)

@@ -144,3 +144,59 @@ def test_nearest_fraction_is_limit_denominator():
     for x in xs:
         f = Fraction(float(x)).limit_denominator(1000)
         assert _nearest_fraction(float(x), 1000) == (f.numerator, f.denominator)
+
+
+def _small_and_padded() -> list[LoopModel]:
+    """Loops stepped one step at a time (delays of many steps): P-only first-order loops (two live states,
+    one channel) beside second-order PID loops and cascades (more states, two channels)."""
+    out = []
+    for i in range(6):
+        out.append(LoopModel(f"p{i}", make_process("fopdt", 1.0 + 0.2 * i, 10.0 + 3 * i, dead_time=6.0 + i),
+                             Controller("ideal", kc=0.5 + 0.05 * i)))
+    for i in range(3):
+        out.append(LoopModel(f"so{i}", make_process("sopdt", 2.0, 20.0 + i, 5.0, dead_time=4.0 + i),
+                             Controller("ideal", kc=0.6, ti=25.0, td=2.0, alpha=0.1), pv_filter=0.5))
+    inner = LoopModel("in", make_process("fopdt", 1.0, 3.0, dead_time=0.9), Controller("ideal", kc=1.0, ti=4.0))
+    out.append(LoopModel("casc", make_process("fopdt", 1.5, 30.0, dead_time=7.0), Controller("ideal", kc=0.4, ti=35.0),
+                         inner=inner))
+    return out
+
+
+@pytest.mark.parametrize("kind", ["load", "setpoint"])
+def test_small_loops_stepped_at_their_own_size_are_the_same_numbers(kind, monkeypatch):
+    """Regression: loops of few live states stepped apart from the padded batch (``simulate(live=...)``)
+    give the padded run's values bit for bit (the padding adds exact zeros only)."""
+    models = _small_and_padded()
+    batch, errors = build_batch(models, kind)
+    assert not errors and batch.A.shape[1] > 3 and batch.Cq.shape[1] == 2
+    live = td._live_states(batch, np.arange(len(models)))
+    assert (live[:6] <= 3).all() and (live[6:] > 3).all()
+    h = np.array([0.05 * (1 + i % 3) for i in range(len(models))])
+    n = 1200
+    ref = simulate(batch, h, n, outputs=(0, 1))
+    monkeypatch.setattr(td, "SMALL_LOOPS", 1)
+    monkeypatch.setattr(td, "LIFT_DEPTH", 1)          # every loop step by step
+    got = simulate_steps(batch, h, n, outputs=(0, 1))
+    assert np.array_equal(got.yp, ref.yp) and np.array_equal(got.ym, ref.ym)
+
+
+def test_small_loops_stepped_apart_match_closed_forms(monkeypatch):
+    """Validation of the loops stepped at their own size: before the feedback acts (t < dead time) the PV of a
+    unit load step is the open-loop step K (1 - exp(-t/tau)) of a first-order lag, and the steady PV of a
+    P-only loop is K / (1 + K kc) (final-value theorem; K. Ogata, Modern Control Engineering, 5th ed., 2010,
+    sec. 5-8)."""
+    monkeypatch.setattr(td, "SMALL_LOOPS", 1)
+    monkeypatch.setattr(td, "LIFT_DEPTH", 1)
+    models = _small_and_padded()
+    batch, _ = build_batch(models, "load")
+    h = np.full(len(models), 0.1)
+    res = simulate_steps(batch, h, 4000)
+    for i in range(6):
+        p = models[i].process
+        K, tau, theta = p.gain, p.tau1, p.dead_time
+        kc = models[i].controller.kc
+        # the load PV is z shifted by theta: z(t) = y(t + theta); before the delayed feedback (t < theta) it
+        # is the open-loop response
+        k = np.arange(int(theta / 0.1))
+        np.testing.assert_allclose(res.yp[k, 0, i], K * (1.0 - np.exp(-k * 0.1 / tau)), rtol=1e-12, atol=1e-14)
+        assert res.yp[-1, 0, i] == pytest.approx(K / (1.0 + K * kc), rel=1e-6)
