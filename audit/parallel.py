@@ -222,7 +222,8 @@ def _run_part(idx: np.ndarray):
     return fn(*extra, idx)
 
 
-def map_parts(fn, n: int, jobs: int, extra: tuple = (), min_per_job: int = MIN_LOOPS_PER_JOB) -> list:
+def map_parts(fn, n: int, jobs: int, extra: tuple = (), min_per_job: int = MIN_LOOPS_PER_JOB,
+              align: int = 1) -> list:
     """``fn(*extra, indices)`` on consecutive parts of ``range(n)`` in ``jobs`` processes; results in order.
 
     With one job (or too few items to pay for workers) ``fn`` runs once, here, on every index;
@@ -241,6 +242,9 @@ def map_parts(fn, n: int, jobs: int, extra: tuple = (), min_per_job: int = MIN_L
         Arguments passed whole to every call (items, settings, ...).
     min_per_job : int
         Fewest items a worker is started for. [-]
+    align : int
+        Parts start at multiples of ``align`` (so that work done in fixed blocks of ``align`` items
+        meets the same blocks whatever ``jobs``). [-]
 
     Returns
     -------
@@ -252,6 +256,11 @@ def map_parts(fn, n: int, jobs: int, extra: tuple = (), min_per_job: int = MIN_L
         return [fn(*extra, np.arange(n))]
     jobs = min(jobs, n // min_per_job)
     parts = np.array_split(np.arange(n), jobs)
+    if align > 1:   # each boundary moved to its nearest multiple of align; empty parts dropped
+        cuts = sorted({min(n, int(round(p[0] / align)) * align) for p in parts[1:]} - {0, n})
+        parts = np.split(np.arange(n), cuts)
+        if len(parts) == 1:
+            return [fn(*extra, parts[0])]
     global _PARTS
     _PARTS = (fn, extra)
     try:

@@ -735,6 +735,10 @@ def proposal_record(p: Proposal | None) -> dict[str, Any]:
 
 #: Fewest loops a worker process is started for in the proposals stage (each costs ~5 ms of search). [-]
 MIN_LOOPS_PER_PROPOSAL_JOB = 200
+#: Recommendations' load steps are simulated in blocks of this many loops of the stage (by position),
+#: whatever ``--jobs``: a batch's make-up moves the last bits of its loops' figures (matrices padded to
+#: the batch's largest loop), so fixed blocks keep the IAE the same to the last bit for any job count.
+IAE_BLOCK = 512
 
 
 def _iae_safe(models: list[LoopModel | None], policy: Policy, errors: dict[int, BaseException],
@@ -752,13 +756,18 @@ def _iae_safe(models: list[LoopModel | None], policy: Policy, errors: dict[int, 
 
 
 def _with_iae(items, got: list[Proposal | None], policy: Policy, at: Sequence[int]) -> dict[int, BaseException]:
-    """Put the load-step IAE of every recommendation of ``got`` (proposals of ``items``) in place, in one
-    simulation; the faults of single loops by position ``at[k]``."""
+    """Put the load-step IAE of every recommendation of ``got`` (proposals of ``items``) in place, one
+    simulation per block of :data:`IAE_BLOCK` positions ``at`` (the stage's own, whatever the part);
+    the faults of single loops by position ``at[k]``."""
     live = [k for k, p in enumerate(got) if p is not None and p.settings is not None and p.after is not None]
     errors: dict[int, BaseException] = {}
-    iae = _iae_safe([tuned_model(items[k][0], got[k]) for k in live], policy, errors, [at[k] for k in live])
-    for k, v in zip(live, iae):
-        got[k] = replace(got[k], after=replace(got[k].after, iae=v))
+    blocks: dict[int, list[int]] = {}
+    for k in live:                                   # fixed blocks of the stage's positions
+        blocks.setdefault(int(at[k]) // IAE_BLOCK, []).append(k)
+    for ks in blocks.values():
+        iae = _iae_safe([tuned_model(items[k][0], got[k]) for k in ks], policy, errors, [at[k] for k in ks])
+        for k, v in zip(ks, iae):
+            got[k] = replace(got[k], after=replace(got[k].after, iae=v))
     return errors
 
 
@@ -778,7 +787,8 @@ def _propose_spread(items, policy: Policy, jobs: int, errors: dict[int, BaseExce
     """:func:`propose_many` (IAE when ``with_iae``), the loops split over ``jobs`` processes when they are
     enough; each process simulates the load steps of its own recommendations."""
     from .parallel import map_parts
-    parts = map_parts(_propose_part, len(items), jobs, (items, policy, with_iae), MIN_LOOPS_PER_PROPOSAL_JOB)
+    parts = map_parts(_propose_part, len(items), jobs, (items, policy, with_iae), MIN_LOOPS_PER_PROPOSAL_JOB,
+                      align=IAE_BLOCK)
     out: list[Proposal | None] = []
     for got, errs, iae_errs in parts:
         out += got

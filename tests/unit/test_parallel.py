@@ -127,3 +127,42 @@ def test_rows_checked_in_two_processes_read_the_same(tmp_path, monkeypatch):
     assert one.problems == two.problems
     msgs = [str(p) for r in two.rows for p in r.errors]
     assert any("C40" in m or "40" in m for m in msgs) and any("criticality" in m for m in msgs)
+
+
+def _indices(idx):
+    return idx.tolist()
+
+
+def test_parts_start_at_multiples_of_align(monkeypatch):
+    """``map_parts(align=a)``: every part but the first starts at a multiple of ``a``, the parts cover
+    every index once, in order (common practice: blocks fixed by position, not by job count)."""
+    got = parallel.map_parts(_indices, 1000, 3, min_per_job=100, align=128)
+    assert [i for part in got for i in part] == list(range(1000))
+    assert len(got) == 3 and all(part[0] % 128 == 0 for part in got[1:])
+    one = parallel.map_parts(_indices, 300, 2, min_per_job=100, align=512)   # no boundary inside: one part
+    assert one == [list(range(300))]
+
+
+def test_two_jobs_give_exactly_the_one_job_proposals(tmp_path, monkeypatch):
+    """Regression: every results column, proposals and their load-step IAE included, is the same to the
+    last bit with one and two processes. The IAE is simulated in fixed blocks of the stage's loops: a
+    batch's make-up moves the last bits of its loops' figures, so a block must not depend on the part."""
+    from audit import proposals
+    from audit.generate import write_synthetic_inventory
+    from audit.inventory import read_inventory
+    from audit.pipeline import AuditOptions, new_audit, run_stages
+
+    path = tmp_path / "site.csv"
+    write_synthetic_inventory(path, 400, seed=3)
+    monkeypatch.setattr(proposals, "MIN_LOOPS_PER_PROPOSAL_JOB", 40)
+    monkeypatch.setattr(proposals, "IAE_BLOCK", 48)
+    got = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        for jobs in (1, 2):
+            audit = new_audit(read_inventory(path), AuditOptions(jobs=jobs, record_history=False, pdf=False,
+                                                                 quiet=True))
+            run_stages(audit)
+            got.append(audit.results)
+    assert got[0]["proposal_iae_s"].notna().sum() > 100
+    pd.testing.assert_frame_equal(got[0], got[1], check_exact=True)
