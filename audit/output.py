@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 
 from .columns import RESULT_COLUMNS
-from .safety import FORMULA_STARTS, neutralise_formula
+from .safety import neutralise_formula
 
 
 def output_columns(results: pd.DataFrame, extra_columns: tuple[str, ...] = ()) -> list[str]:
@@ -171,8 +171,7 @@ def _csv_column(series: pd.Series) -> list[str]:
     for i, v in enumerate(out):
         t = type(v)
         if t is str:   # the common case: free text, as csv_cell writes it
-            if v.startswith(FORMULA_STARTS):
-                out[i] = "'" + v
+            out[i] = neutralise_formula(v)
         elif v is None or v is pd.NA:
             out[i] = ""
         elif t is bool:

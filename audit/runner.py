@@ -340,7 +340,7 @@ def run_audit(inventory_path: str, options: AuditOptions, force: bool = False) -
     try:
         progress("read")
         t0 = time.perf_counter()
-        inv = read_inventory(inventory_path, jobs=getattr(options, "jobs", 1))
+        inv = read_inventory(inventory_path, jobs=options.jobs)
         audit = new_audit(inv, options)
         from .plantdata.sources import EXPORT_KEY
         if options.data is not None and not hasattr(options.data, "read"):
