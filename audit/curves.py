@@ -326,22 +326,6 @@ def collect_steps(jobs: list["PlotJob"], pending: Any) -> dict[str, tuple[tuple[
     return {k: (tuple(steps[k]), tuple(notes[k])) for k in notes}
 
 
-def batched_steps(jobs: list["PlotJob"]) -> dict[str, tuple[tuple[StepData, ...], tuple[str, ...]]]:
-    """Step responses of every loop with plots, present and proposed tuning, in one simulation per kind.
-
-    Parameters
-    ----------
-    jobs : list of PlotJob
-        The loops with plots.
-
-    Returns
-    -------
-    dict
-        Plot key -> (step data, notes about what could not be computed).
-    """
-    return collect_steps(jobs, start_steps(jobs))
-
-
 def residual_data(rec: Any) -> ResidualData | None:
     """A disturbance record and its predicted residual for the plots (thinned).
 

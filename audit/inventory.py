@@ -901,8 +901,8 @@ def _largest_time_constant(model: str | None, tau1, tau2, den) -> float:
 def _validate_row(index: int, sheet: str, excel_row: int, vals: dict[int, Any], fmts: dict[int, str],
                   colmap: dict[str, list[int]], extra_cols: dict[int, str], base_dir: Path,
                   unitless: dict[int, str], merged: list[tuple[str, int, int, int, int]],
-                  layout: tuple[dict[str, int], dict[int, str]] | None = None) -> LoopRow:
-    order, name_of = layout if layout is not None else _layout(colmap)
+                  layout: tuple[dict[str, int], dict[int, str]]) -> LoopRow:
+    order, name_of = layout
     chk = _RowCheck(sheet, excel_row, vals, fmts, colmap, order, name_of)
 
     # Cells the reader could not take at face value.

@@ -518,12 +518,11 @@ def _finish(job: _Job, step_iae: float = math.nan) -> Proposal:
                     job.corrected_action)
 
 
-def _iae_of(models: Sequence[LoopModel | None], policy: Policy, jobs: int = 1) -> list[float]:
+def _iae_of(models: Sequence[LoopModel | None], policy: Policy) -> list[float]:
     """Load-step IAE of each loop (NaN where None, unknown or no time-domain module). [s]
 
     Only the load step is simulated (:func:`audit.timedomain.load_step_figures`), in this
-    process: the proposals stage spreads it over its workers with the search (``jobs`` is kept
-    for callers and ignored).
+    process: the proposals stage spreads it over its workers with the search.
     """
     try:
         from .timedomain import load_step_figures

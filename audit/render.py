@@ -199,10 +199,7 @@ def css_class(text: str) -> str:
 
 def _h(value: Any) -> str:
     """A value as autoescape writes it: markup as it is, anything else as escaped text."""
-    if hasattr(value, "__html__"):
-        return value.__html__()
-    return (str(value).replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
-            .replace('"', "&#34;").replace("'", "&#39;"))
+    return str(escape(value))
 
 
 def kv_rows(items: Any, digits: int | None = None) -> Markup:

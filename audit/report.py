@@ -16,7 +16,6 @@ and history are each shown when present and left out, with a note, when not.
 from __future__ import annotations
 
 import functools
-import math
 import re
 from dataclasses import dataclass, field, replace
 from typing import Any, Callable
@@ -25,7 +24,7 @@ import numpy as np
 import pandas as pd
 
 from .columns import RESULT_COLUMNS
-from .curves import LoopPlots, PlotJob, collect_steps, plot_data, proposed_model, residual_data, start_steps
+from .curves import LoopPlots, PlotJob, _finite, collect_steps, plot_data, proposed_model, residual_data, start_steps
 from .health_report import health_summary, health_view
 from .loop import LoopModel
 from .plantdata.report_part import data_views
@@ -311,10 +310,6 @@ def row_anchor(row: LoopRow) -> str:
         The inventory row.
     """
     return f"all-r{row.excel_row}"
-
-
-def _finite(x: Any) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
 
 
 class _Results:
