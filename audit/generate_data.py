@@ -470,8 +470,12 @@ def _job_bounds(steps: np.ndarray, files: list[tuple[int, int]], jobs: int) -> l
 
 
 def _run_job(plans: list[LoopPlan], groups: list[tuple[int, int, int]], tmp: str, single: bool, layout: str,
-             fmt: str, n_total: int, ts: float, seed: int, block: int) -> tuple[float, float]:
+             fmt: str, n_total: int, ts: float, seed: int, block: int, chunk: int) -> tuple[float, float]:
     """Simulate the loops of one job (file groups ``groups``: start, stop, file number) and write their files.
+
+    ``block`` samples are written at a time and ``chunk`` simulated at a time; both are the whole
+    export's (not the job's), since each file group's generator draws chunk after chunk: the same
+    sizes in every job keep the export the same whatever ``jobs``.
 
     Returns the CPU time [s] and peak resident memory [MiB] of the process that ran it.
     """
@@ -490,7 +494,7 @@ def _run_job(plans: list[LoopPlan], groups: list[tuple[int, int, int]], tmp: str
                               [q.row.tag for q in plans[a:b]], layout, fmt, text=single)) for a, b, g in groups]
     n = len(plans)
     t0_us = int(np.datetime64(START.replace("+00:00", ""), "us").astype(np.int64))
-    T = max(1, min(n_total, block, CHUNK_VALUES // max(n, 1)))
+    T = chunk
     vals = np.empty((n, 3, block), dtype=np.float32)
     man = np.empty((n, block), dtype=bool)
     pv, op = np.empty((T, n)), np.empty((T, n))
@@ -607,11 +611,12 @@ def write_synthetic_export(inventory_path: str | Path, path: str | Path, days: f
         files = [(a, min(a + size, n)) for a in range(0, n, size)]
         steps = np.array([substeps_for([q.row], ts) for q in order], dtype=np.int64)
         block = int(max(1, min(n_total, max(BLOCK_VALUES // max(n, 1), MIN_BLOCK))))
+        chunk = int(max(1, min(n_total, block, CHUNK_VALUES // max(n, 1))))   # of all the loops, not a job's
         work = []
         for fa, fb in _job_bounds(steps, files, 1 if single else max(1, int(jobs))):
             lo, hi = files[fa][0], files[fb - 1][1]
             groups = [(files[g][0] - lo, files[g][1] - lo, g) for g in range(fa, fb)]
-            work.append((order[lo:hi], groups, str(tmp), single, layout, fmt, n_total, ts, seed, block))
+            work.append((order[lo:hi], groups, str(tmp), single, layout, fmt, n_total, ts, seed, block, chunk))
         used = []
         if len(work) == 1:
             _run_job(*work[0])

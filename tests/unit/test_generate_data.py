@@ -77,6 +77,7 @@ def test_same_export_whatever_the_jobs(tmp_path, monkeypatch):
     result must not depend on how the work is split)."""
     import audit.generate_data as gd
     monkeypatch.setattr(gd, "FILE_LOOPS", 2)                 # several files, so two jobs have work
+    monkeypatch.setattr(gd, "CHUNK_VALUES", 7 * 50)          # simulated 50 samples at a time: several chunks
     inv = tmp_path / "i.xlsx"
     assert main(["generate", "--loops", "7", str(inv), "--seed", "2"]) == 0
     one = gd.write_synthetic_export(inv, tmp_path / "one", days=0.005, seed=2, jobs=1)
