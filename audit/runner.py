@@ -152,8 +152,9 @@ def plan_output(out_dir: str | Path, inventory_path: str | Path, force: bool = F
     return OutputPlan(out, mode, stage, previous)
 
 
-#: This machine's name as it appears in a staging folder's name (letters, digits and dots only).
-_HOST = re.sub(r"[^A-Za-z0-9.]", "", socket.gethostname())[:40] or "host"
+#: This machine's name as it appears in a staging folder's name (letters, digits and dots; any other
+#: character as ``_``, so that ``web-1`` and ``web1`` stay two names).
+_HOST = re.sub(r"[^A-Za-z0-9.]", "_", socket.gethostname())[:40] or "host"
 
 
 def _pid_alive(pid: int) -> bool:
@@ -161,7 +162,7 @@ def _pid_alive(pid: int) -> bool:
         os.kill(pid, 0)
     except ProcessLookupError:
         return False
-    except OSError:  # another user's process: alive
+    except (OSError, OverflowError, ValueError):  # another user's process, or no PID of this machine: kept
         return True
     return True
 
