@@ -4,17 +4,26 @@ Three per loop: the trend of ``sp``, ``pv`` and ``op``; ``pv`` against ``op`` (a
 draws a parallelogram, a linear loop an ellipse); the autocorrelation of the control error with
 the zero crossings that gave the period marked. Same rules as :mod:`audit.plots` (scaled
 coordinates, thinned polylines, colour-blind-safe styles that differ by dash and marker too).
+
+With plant data the charts are drawn by the per-loop task, where the record was analysed
+(:func:`draw_health`): the run's process keeps each loop's charts as packed SVG text
+(:class:`HealthDrawing`), never the plot arrays, and :func:`health_svgs` gives the page the same
+text either way.
 """
 
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
+from markupsafe import Markup
 
-from .health_report import HealthView
+from .health_report import HealthView, health_key
+from .plantdata.packed import Packed
 from .plots import (BLACK, BLUE, MARGIN_BOTTOM, ORANGE, REFERENCE, VERMILLION, WIDTH, Chart, Mark, Style,
                     _finish, _frame, _legend, _line_entries, _scale, _series, _ticks_lin, linear_range)
+from .svg import chart_html
 
 SP_STYLE = Style(BLACK, 1.2, "5 3")
 PV_STYLE = Style(BLUE, 1.4)
@@ -130,3 +139,62 @@ def health_charts(hv: HealthView) -> tuple[Chart, ...]:
     if hv.plots is None:
         return ()
     return tuple(c for c in (trend_chart(hv), pv_op_chart(hv), acf_chart(hv)) if c is not None)
+
+
+@dataclass(frozen=True)
+class HealthDrawing:
+    """One loop's health charts, drawn: what the run keeps instead of the plot arrays.
+
+    Attributes
+    ----------
+    key : str
+        The health view's key the charts were drawn for (:func:`audit.health_report.health_key`);
+        it is in every chart's ids.
+    charts : Packed
+        The charts as a tuple of (caption, SVG text of :func:`audit.svg.chart_html`), in the order shown.
+    """
+
+    key: str
+    charts: Packed
+
+
+def draw_health(key: str, plots) -> HealthDrawing:
+    """Draw one loop's health charts now, for a section of key ``key`` (the per-loop task's call).
+
+    Parameters
+    ----------
+    key : str
+        The key of the loop's health view (:func:`audit.health_report.health_key` of its anchor).
+    plots : audit.plantdata.health.HealthPlots
+        The loop's plot data.
+
+    Returns
+    -------
+    HealthDrawing
+        The same charts, caption and SVG text, as :func:`health_svgs` draws from ``plots``.
+    """
+    hv = HealthView(key, (), (), "", plots)
+    return HealthDrawing(key, Packed.of(tuple((c.caption, chart_html(c)) for c in health_charts(hv))))
+
+
+def health_svgs(hv: HealthView) -> tuple[tuple[str, Markup], ...]:
+    """The charts of one loop's health section as (caption, SVG markup), in the order shown.
+
+    Parameters
+    ----------
+    hv : HealthView
+        The loop's health view; its ``plots`` are the plot data (drawn here), the charts drawn by the
+        per-loop task (:class:`HealthDrawing`, unpacked here) or None (no charts).
+
+    Raises
+    ------
+    ValueError
+        A drawing made for another section (its key is not the view's).
+    """
+    p = hv.plots
+    if isinstance(p, HealthDrawing):
+        if p.key != hv.key:
+            raise ValueError(f"health charts drawn for {p.key!r} given to the section {hv.key!r}")
+        # written by audit.svg, every text escaped
+        return tuple((caption, Markup(svg)) for caption, svg in p.charts.unpack())
+    return tuple((c.caption, Markup(chart_html(c))) for c in health_charts(hv))

@@ -14,7 +14,6 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .plantdata.health import HealthPlots
 
 
 @dataclass(frozen=True)
@@ -41,15 +40,27 @@ class HealthView:
         What they show, most fundamental first.
     note : str
         What the figures rest on (record, stretch analysed) or why some are missing.
-    plots : HealthPlots or None
-        Trend, pv-op and autocorrelation data.
+    plots : audit.plantdata.health.HealthPlots, audit.health_charts.HealthDrawing or None
+        Trend, pv-op and autocorrelation data, or the charts already drawn from them (the per-loop
+        task draws them with plant data, :func:`audit.health_charts.draw_health`).
     """
 
     key: str
     figures: tuple[HealthFigure, ...]
     findings: tuple[str, ...]
     note: str
-    plots: HealthPlots | None
+    plots: Any
+
+
+def health_key(anchor: str) -> str:
+    """The key of a loop's health view (prefix of its charts' ids) from the loop's anchor.
+
+    Parameters
+    ----------
+    anchor : str
+        The loop's anchor in the page (:func:`audit.report.loop_anchor`).
+    """
+    return f"{anchor}-health"
 
 
 @dataclass(frozen=True)
@@ -135,7 +146,7 @@ def health_view(audit, i: int, anchor: str) -> HealthView | None:
     figs = tuple(HealthFigure(label, _plain(row.get(col)), unit, col) for label, col, unit in FIGURES
                  if col in res.columns and _plain(row.get(col)) is not None)
     words = str(row.get("health_findings") or "")
-    return HealthView(f"{anchor}-health", figs, tuple(w for w in words.split("; ") if w),
+    return HealthView(health_key(anchor), figs, tuple(w for w in words.split("; ") if w),
                       str(row.get("health_note") or ""), plots)
 
 

@@ -362,9 +362,8 @@ def draw(report: Report, mapper: Callable = map) -> Rendered:
     h = report.history
     if h is not None and len(h.trend_dates) >= 1 and h.trend:
         trend = render_chart(plots.status_trend(h.trend_dates, h.trend))
-    from .health_charts import health_charts
-    health = {d.anchor: tuple((c.caption, render_chart(c)) for c in health_charts(d.health))
-              for d in report.details if d.health is not None}
+    from .health_charts import health_svgs   # drawn here, or already by the per-loop plant-data task
+    health = {d.anchor: health_svgs(d.health) for d in report.details if d.health is not None}
     from .multiloop.report import group_nyquist_chart
     groups = {g.gid: render_chart(group_nyquist_chart(g, f"gnyq-{g.gid.lower()}"))
               for g in getattr(report, "groups", ()) if g.evaluated and g.W.size}

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -475,8 +476,9 @@ class HealthOutcome:
         :data:`HEALTH_COLUMNS` -> value (:func:`health_record`).
     figures : LoopHealth or None
         The figures; None when the row had no usable record.
-    plots : HealthPlots or None
-        What the report draws (thinned); None with ``figures``.
+    plots : HealthPlots, audit.health_charts.HealthDrawing or None
+        What the report draws (thinned), or the charts already drawn from it (what the per-loop task
+        returns: :mod:`audit.plantdata.loopdata`); None without ``figures``.
     message : str
         A note for the row's ``message`` (why its record gives no figures); '' otherwise.
     retune : bool
@@ -485,7 +487,7 @@ class HealthOutcome:
 
     columns: dict
     figures: LoopHealth | None
-    plots: HealthPlots | None
+    plots: Any
     message: str
     retune: bool
 
@@ -538,7 +540,8 @@ def add_loop_health(audit, source=None) -> None:
     audit : Audit
         The run after the models are built; :data:`HEALTH_COLUMNS` are added to ``results``
         (blank for rows without a record), the figures and plot data go to
-        ``audit.extras['health']`` (row position -> (LoopHealth, HealthPlots)), and the rows
+        ``audit.extras['health']`` (row position -> (LoopHealth, HealthPlots or the charts drawn from
+        them, :class:`audit.health_charts.HealthDrawing`)), and the rows
         whose oscillation is not blamed on the valve to ``audit.extras['retune_for_oscillation']``.
     source : callable or None
         ``source(audit) -> dict`` of row position -> (OperationData or None, note), analysed

@@ -5,8 +5,13 @@ The stages ``health`` (:func:`audit.plantdata.health.add_loop_health`) and ``mod
 reads each record once and runs both analyses on it, on the run's executor
 (:mod:`audit.executors`: this process, ``--jobs N`` local processes or a Dask cluster), and
 keeps the compact results in ``audit.extras['loop_data']`` for both stages. A result holds
-figures, notes and thinned plot data, never the record's samples, so what crosses a process
-boundary and what the run keeps stays small whatever the length of the records.
+figures, notes and the report's charts of the loop already drawn and packed (the loop-health
+charts, :func:`audit.health_charts.draw_health`, and the model check's overlay,
+:func:`audit.plantdata.report_part.drawn_check`), never the record's samples nor plot arrays, so
+what crosses a process boundary and what the run keeps stays small whatever the length of the
+records. Every loop with a health record gets a detail section with its health charts (the page
+draws them all, whatever the plot limit), so drawing them here is no guess of which loops the report
+shows; the drawing is the same text the report would write from the plot arrays.
 
 Each part is contained on its own: a part that raises gives a :class:`RowFailure` (the
 exception's text and traceback) in its place, which the stage records as a fault of that row;
@@ -24,7 +29,7 @@ import resource
 import sys
 import time
 import traceback
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -33,6 +38,7 @@ import numpy as np
 from .health import HealthOutcome, HealthSettings, health_outcome, operation_data, settings_from_policy
 from .modelcheck import ModelCheck, check_record
 from .records import ReadPolicy
+from .report_part import drawn_check
 from .sources import export_of, has_source, read_policy_of, record_for_row
 
 #: Where the stages find the results (``audit.extras[KEY]``: row position -> LoopData).
@@ -115,9 +121,11 @@ class LoopData:
     index : int
         Row position in the inventory. [-]
     health : HealthOutcome, RowFailure or None
-        Loop health; None when the row has no record or is not valid.
+        Loop health, its charts drawn (``plots`` a :class:`audit.health_charts.HealthDrawing`); None
+        when the row has no record or is not valid.
     check : ModelCheck, RowFailure or None
-        Model check, compacted (:meth:`ModelCheck.compact`); None without a model.
+        Model check, compacted (:meth:`ModelCheck.compact`) and its overlay drawn
+        (:func:`audit.plantdata.report_part.drawn_check`); None without a model.
     read_s, health_s, check_s : float
         Wall time of reading the record, of the health analysis and of the model check. [s]
     cpu_s : float
@@ -190,7 +198,7 @@ def analyse_loop(task: LoopTask, shared: LoopSettings) -> LoopData:
         try:
             got = operation_data(found)
             if got is not None:
-                health = health_outcome(got[0], got[1], task.model, shared.health, shared.policy)
+                health = _drawn(health_outcome(got[0], got[1], task.model, shared.health, shared.policy), task.row)
         except user_errors():
             raise
         except Exception:  # noqa: BLE001 - contained: recorded as this row's fault of stage health
@@ -203,7 +211,7 @@ def analyse_loop(task: LoopTask, shared: LoopSettings) -> LoopData:
                 mc = check_record(task.row, found, shared.policy)
             except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:   # a bad record, never the run
                 mc = ModelCheck("record unusable", note=f"data record could not be analysed: {exc}")
-            check = mc.compact()
+            check = drawn_check(mc.compact())
         except user_errors():
             raise
         except Exception:  # noqa: BLE001 - contained: recorded as this row's fault of stage modelcheck
@@ -211,6 +219,16 @@ def analyse_loop(task: LoopTask, shared: LoopSettings) -> LoopData:
     t3 = time.perf_counter()
     return LoopData(task.index, health, check, t1 - t0, t2 - t1, t3 - t2, time.process_time() - c0, samples,
                     os.getpid(), _peak_mib())
+
+
+def _drawn(out: HealthOutcome, row) -> HealthOutcome:
+    """``out`` with its health charts drawn for the row's detail section, in place of the plot arrays."""
+    if out.plots is None:
+        return out
+    from ..health_charts import draw_health
+    from ..health_report import health_key
+    from ..report import loop_anchor
+    return replace(out, plots=draw_health(health_key(loop_anchor(row)), out.plots))
 
 
 def analyse_chunk(tasks: list[LoopTask], shared: LoopSettings) -> list[LoopData]:

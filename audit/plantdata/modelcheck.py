@@ -39,6 +39,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, replace
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -138,6 +139,9 @@ class ModelCheck:
         What was done or why not.
     trace : CheckTrace or None
         The overlay plot's data, thinned (set by :meth:`compact`).
+    drawn : audit.plantdata.packed.Packed or None
+        The overlay plot drawn (:class:`audit.plantdata.report_part.Overlay`, packed), in place of
+        ``trace``: what the per-loop task returns (:func:`audit.plantdata.report_part.drawn_check`).
     """
 
     verdict: str
@@ -150,6 +154,7 @@ class ModelCheck:
     reasons: tuple[str, ...] = ()
     note: str = ""
     trace: CheckTrace | None = None
+    drawn: Any = None
 
     def compact(self) -> "ModelCheck":
         """The same check without the record's samples: the overlay thinned into ``trace``.

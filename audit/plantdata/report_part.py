@@ -9,12 +9,13 @@ scaled coordinates computed here).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
 
-from .modelcheck import CheckTrace
+from .modelcheck import CheckTrace, ModelCheck
+from .packed import Packed
 from .sources import export_of, has_source
 
 VERDICTS = ("confirmed", "disputed", "not identifiable", "record unusable", "not checked")
@@ -213,6 +214,27 @@ def overlay(trace: CheckTrace) -> Overlay:
                    "time [min]" if scale_min else "time [s]", "pv [% of range]")
 
 
+def drawn_check(mc: ModelCheck) -> ModelCheck:
+    """The check as the run keeps it: its overlay plot drawn (:func:`overlay`) and packed in place of its trace.
+
+    The per-loop task calls it where the record was analysed, so the run's process holds the
+    overlay's text, compressed, instead of the thinned arrays, and the report draws nothing.
+
+    Parameters
+    ----------
+    mc : ModelCheck
+        A compact check (:meth:`ModelCheck.compact`).
+
+    Returns
+    -------
+    ModelCheck
+        ``mc`` with ``drawn`` set and ``trace`` None; ``mc`` itself when it has no trace.
+    """
+    if mc.trace is None:
+        return mc
+    return replace(mc, trace=None, drawn=Packed.of(overlay(mc.trace)))
+
+
 def _params(row, b) -> tuple[ParamRow, ...]:
     names = ("gain", "tau1", "tau2", "tau_lead", "dead_time")
     inv = {"gain": row.gain, "tau1": row.tau1, "tau2": row.tau2, "tau_lead": row.lead, "dead_time": row.dead_time}
@@ -258,7 +280,9 @@ def data_views(audit) -> tuple[PlantDataSection | None, dict[int, DataCheckView]
         ident = mc.identification if mc is not None else None
         b = ident.best if ident is not None else None
         ov = None
-        if mc is not None and ident is not None:
+        if mc is not None and ident is not None and mc.drawn is not None:
+            ov = mc.drawn.unpack()                       # drawn by the per-loop task (drawn_check)
+        elif mc is not None and ident is not None:
             trace = mc.trace if mc.trace is not None else mc.compact().trace
             ov = overlay(trace) if trace is not None else None
         note = str(res.at[label, "data_note"] or "")

@@ -183,19 +183,21 @@ def _overlay_from_full(t, pv, ident, inv):
 
 
 def test_compact_result_is_small_and_draws_the_same_overlay(tmp_path):
-    """A 40,000-sample record: the task's result pickles to a few tens of kB (no samples), and the overlay
-    drawn from its thinned trace equals the one drawn from the full arrays."""
+    """A 40,000-sample record: the task's result pickles to a few tens of kB (no samples, no plot arrays),
+    and the overlay it returns drawn equals the one drawn from the full arrays."""
     site = tmp_path / "site"
     write_record(site / "rec" / "long.csv", n=40_000)
     a = small_audit(tmp_path, ["rec/long.csv"])
     tasks, shared = loop_tasks(a)
     got = analyse_loop(tasks[0], shared)
     size = len(pickle.dumps(got))
-    assert size < 150_000, size                              # the record alone is 40,000 x 4 x 8 = 1.3 MB
+    assert size < 40_000, size                               # the record alone is 40,000 x 4 x 8 = 1.3 MB
     full = check_record(a.inventory.rows[0], record_for_row(a.inventory.rows[0], site), a.inventory.policy)
     ident = full.identification
     want = _overlay_from_full(ident.t, ident.pv, ident.best.yhat, full.model_yhat)
-    ov = overlay(got.check.trace)
+    assert got.check.trace is None and got.check.drawn is not None     # the run keeps the drawing, packed
+    ov = got.check.drawn.unpack()
+    assert ov == overlay(full.compact().trace)
     assert (ov.data, ov.identified, ov.inventory) == want[:3]
     assert tuple(label for _, label in ov.x_ticks) == want[3]
     assert got.check.identification.best.params == ident.best.params and got.check.model_fit_pct == full.model_fit_pct
