@@ -142,12 +142,18 @@ def health_view(audit, i: int, anchor: str) -> HealthView | None:
         return None
     _, plots = got
     res = audit.results
-    row = res.iloc[i]
-    figs = tuple(HealthFigure(label, _plain(row.get(col)), unit, col) for label, col, unit in FIGURES
-                 if col in res.columns and _plain(row.get(col)) is not None)
-    words = str(row.get("health_findings") or "")
+    cols = res.columns
+
+    def cell(col: str) -> Any:
+        # one cell by position, column first (as row i's value: not a copy of the whole row, which for a
+        # results table of some 150 columns of mixed kinds cost milliseconds a loop)
+        return res[col].iat[i] if col in cols else None
+
+    figs = tuple(HealthFigure(label, v, unit, col) for label, col, unit in FIGURES
+                 if col in cols and (v := _plain(cell(col))) is not None)
+    words = str(cell("health_findings") or "")
     return HealthView(health_key(anchor), figs, tuple(w for w in words.split("; ") if w),
-                      str(row.get("health_note") or ""), plots)
+                      str(cell("health_note") or ""), plots)
 
 
 def health_summary(audit, anchors: dict[int, str]) -> HealthSummary | None:

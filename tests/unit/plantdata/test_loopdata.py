@@ -250,3 +250,36 @@ def test_worker_tidy_frees_a_loops_cycles_and_unfreezes():
     finally:
         tidy.close()
     assert gc.get_freeze_count() == 0
+
+
+def test_task_returns_the_health_charts_the_report_would_draw(tmp_path):
+    """The per-loop task keeps no plot arrays: it returns the loop's health charts drawn for its section's key,
+    and they are the very text the report draws from the full plot data (regression: were the memory fix to drop
+    data a chart reads, or draw for another section, this fails). The key is the row's anchor's."""
+    from dataclasses import replace
+
+    from audit.health_charts import HealthDrawing, health_svgs
+    from audit.health_report import HealthView, health_key
+    from audit.plantdata.health import HealthPlots, health_outcome, operation_data
+    from audit.report import loop_anchor
+
+    site = tmp_path / "site"
+    write_record(site / "rec" / "long.csv", n=20_000)
+    a = small_audit(tmp_path, ["rec/long.csv"])
+    tasks, shared = loop_tasks(a)
+    got = analyse_loop(tasks[0], shared)
+    drawing = got.health.plots
+    key = health_key(loop_anchor(a.inventory.rows[0]))
+    assert isinstance(drawing, HealthDrawing) and drawing.key == key
+    found = record_for_row(a.inventory.rows[0], site, shared.read_policy)
+    full = health_outcome(*operation_data(found), a.models[0], shared.health, shared.policy)
+    assert isinstance(full.plots, HealthPlots) and full.plots.t.size > 1000
+    assert replace(got.health, plots=None) == replace(full, plots=None)        # figures, columns: the same
+    want = health_svgs(HealthView(key, (), (), "", full.plots))
+    drawn = health_svgs(HealthView(key, (), (), "", drawing))
+    assert len(want) == 3 and drawn == want
+    assert all(key + "-" in svg for _, svg in drawn)
+    # what the run keeps for the charts: a few kB packed, against the arrays they were drawn from
+    assert drawing.charts.size < len(pickle.dumps(full.plots)) / 4
+    with pytest.raises(ValueError, match="drawn for"):
+        health_svgs(HealthView("loop-other-r9-health", (), (), "", drawing))
