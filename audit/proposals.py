@@ -948,7 +948,7 @@ def _add_proposals(audit) -> None:
     if todo:
         # cascades: innermost loops first; each outer loop is proposed against the proposed
         # tuning of its inner loop (the inner loop keeps its present tuning when it needs none)
-        from .cascade import compose, tuning_levels
+        from .cascade import CascadeLinks, compose, tuning_levels
         links = audit.extras.get("cascade")
         inner_of = getattr(links, "inner_of", {}) or {}
         composed = getattr(links, "composed", frozenset()) or frozenset()
@@ -957,7 +957,7 @@ def _add_proposals(audit) -> None:
         jobs = max(1, int(getattr(audit.options, "jobs", 1) or 1))
         # the results rows as plain dicts (a pandas row per loop costs more than its proposal's bookkeeping)
         figures_rows = dict(zip(todo, res.iloc[todo].to_dict("records")))
-        for level in tuning_levels(rows):
+        for level in tuning_levels(rows, links if isinstance(links, CascadeLinks) else None):
             batch = [i for i in level if i in todo_set]
             if not batch:
                 continue
