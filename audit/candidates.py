@@ -465,6 +465,7 @@ class _ContactRows:
     span: tuple              # (lo, hi) (R,) the gains the bounds below hold for
     never: np.ndarray | None  # (R, n_w) no disc contact for a gain of the span (None: not worked out)
     lb: np.ndarray | None     # (R, n_w) lower bound of the disc contact of the span's gains [1/s]
+    probes: tuple | None = None  # e, br, A2, A2r, bb, nbb at each row's DISC_PROBES frequencies of least lb
 
 
 @dataclass
@@ -658,8 +659,10 @@ def _disc_columns(C: _ContactRows, kp: np.ndarray) -> tuple[np.ndarray, np.ndarr
         if not ((np.nanmin(kp, -1) >= C.span[0]) & (np.nanmax(kp, -1) <= C.span[1])).all():
             return None
     never, lb = C.never, C.lb
-    probe = np.argpartition(np.where(never, np.inf, lb), DISC_PROBES - 1, -1)[:, :DISC_PROBES]
-    t, _ = _disc_contact(kp, *(np.take_along_axis(x, probe, -1) for x in (C.e, C.br, C.A2, C.A2r, C.bb, C.nbb)), C.c0)
+    if C.probes is None:      # the same frequencies for every set of gains of these rows: found once
+        probe = np.argpartition(np.where(never, np.inf, lb), DISC_PROBES - 1, -1)[:, :DISC_PROBES]
+        C.probes = tuple(np.take_along_axis(x, probe, -1) for x in (C.e, C.br, C.A2, C.A2r, C.bb, C.nbb))
+    t, _ = _disc_contact(kp, *C.probes, C.c0)
     ub = t.max(-1)
     with np.errstate(invalid="ignore"):
         keep = ~(never | (lb > 2.0 * np.where(np.isfinite(ub), ub, np.inf)[:, None]))

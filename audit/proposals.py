@@ -931,9 +931,10 @@ def _add_proposals(audit) -> None:
     out: dict[int, Proposal] = {}
     todo: list[int] = []
     unjudged = audit.extras.get("records_unjudged_status", {})
+    status_of = dict(zip(res.index, res["status"].tolist())) if "status" in res.columns else {}
     for i, row in enumerate(rows):
         model = audit.models[i]
-        status = str(res.at[i, "status"]) if "status" in res.columns else ""
+        status = str(status_of[i]) if "status" in res.columns else ""
         if i in unjudged and unjudged[i] in ("passes", "marginal"):
             status = unjudged[i]   # fails only because its record could not be used: the fix is the record
         if model is None or status == "invalid":
