@@ -465,6 +465,7 @@ class _ContactRows:
     span: tuple              # (lo, hi) (R,) the gains the bounds below hold for
     never: np.ndarray | None  # (R, n_w) no disc contact for a gain of the span (None: not worked out)
     lb: np.ndarray | None     # (R, n_w) lower bound of the disc contact of the span's gains [1/s]
+    probes: tuple | None = None  # e, br, A2, A2r, bb, nbb at each row's DISC_PROBES frequencies of least lb
 
 
 @dataclass
@@ -484,11 +485,14 @@ class _PointRows:
 
 
 def _contact_rows(A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray,
-                  span: tuple[np.ndarray, np.ndarray] | None = None) -> _ContactRows:
+                  span: tuple[np.ndarray, np.ndarray] | None = None,
+                  xb: tuple[np.ndarray, np.ndarray] | None = None) -> _ContactRows:
     """The parts of :func:`_ki_contacts` that do not depend on the gains: x/b and A/b of every forbidden
     point x and, where Im(A/b) > 0 throughout a row, the intervals between neighbouring frequencies
     where Im((x - kp A)/b) changes sign for some gain kp of ``span`` (lowest and highest gain of each
-    row, (R,) each; None: any gain)."""
+    row, (R,) each; None: any gain). ``xb``: x/b already worked out for rows that share their b and
+    points (several derivative times of one loop), as (X (loops, q, n_w), the loop of each row (R,));
+    the same numbers."""
     R = A.shape[0]
     with np.errstate(divide="ignore", invalid="ignore"):
         V = A / b
@@ -502,8 +506,11 @@ def _contact_rows(A: np.ndarray, b: np.ndarray, r: np.ndarray, pts: np.ndarray,
         whole = rows.size == R
         x = pts[:, q] if whole else pts[rows, q]
         v = V if whole else V[rows]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            U = x[:, None] / (b if whole else b[rows])
+        if xb is not None:
+            U = xb[0][xb[1] if whole else xb[1][rows], q]
+        else:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                U = x[:, None] / (b if whole else b[rows])
         Ur, Ui, Vr, Vi = U.real, U.imag, v.real, v.imag
         s_lo, s_hi = (span[0], span[1]) if whole else (span[0][rows], span[1][rows])
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -652,8 +659,10 @@ def _disc_columns(C: _ContactRows, kp: np.ndarray) -> tuple[np.ndarray, np.ndarr
         if not ((np.nanmin(kp, -1) >= C.span[0]) & (np.nanmax(kp, -1) <= C.span[1])).all():
             return None
     never, lb = C.never, C.lb
-    probe = np.argpartition(np.where(never, np.inf, lb), DISC_PROBES - 1, -1)[:, :DISC_PROBES]
-    t, _ = _disc_contact(kp, *(np.take_along_axis(x, probe, -1) for x in (C.e, C.br, C.A2, C.A2r, C.bb, C.nbb)), C.c0)
+    if C.probes is None:      # the same frequencies for every set of gains of these rows: found once
+        probe = np.argpartition(np.where(never, np.inf, lb), DISC_PROBES - 1, -1)[:, :DISC_PROBES]
+        C.probes = tuple(np.take_along_axis(x, probe, -1) for x in (C.e, C.br, C.A2, C.A2r, C.bb, C.nbb))
+    t, _ = _disc_contact(kp, *C.probes, C.c0)
     ub = t.max(-1)
     with np.errstate(invalid="ignore"):
         keep = ~(never | (lb > 2.0 * np.where(np.isfinite(ub), ub, np.inf)[:, None]))
@@ -861,17 +870,23 @@ def _frontier_rows(S: _Search, loop: np.ndarray, td: np.ndarray) -> list[Frontie
         if not ok.size:
             continue
         w, P, r, pts, cd, cdP, li = w[ok], P[ok], r[ok], pts[ok], cd[ok], cdP[ok], li[ok]
-        b = P / (1j * w)
+        # b = P/(jw) and x/b of the forbidden points x depend on the loop, not on td: once per loop
+        ul, inv = np.unique(li, return_inverse=True)
+        b_loop = S.P[ul] / (1j * S.w[ul])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            xb = S.pts[ul][:, :, None] / b_loop[:, None, :]
+        b = b_loop[inv]
         kp = kp_u[ok, None] * KP_FRACTIONS[None, :]
-        lines = _contact_rows(cdP, b, r, pts, (kp[:, 0], kp[:, -1]))
+        lines = _contact_rows(cdP, b, r, pts, (kp[:, 0], kp[:, -1]), (xb, inv))
         ki = _ki_contacts(lines, kp, (KP_FRACTIONS, np.zeros(ok.size), kp_u[ok]))
         fin = np.isfinite(ki).all(-1)
         if not fin.any():
             continue
         keep = np.flatnonzero(fin)
-        ok, w, P, r, pts, cd, cdP, b, kp, ki, li = (x[keep] for x in (ok, w, P, r, pts, cd, cdP, b, kp, ki, li))
+        ok, w, P, r, pts, cd, cdP, b, kp, ki, li, inv = (x[keep] for x in (ok, w, P, r, pts, cd, cdP, b, kp, ki, li,
+                                                                         inv))
         if keep.size < fin.size:
-            lines = _contact_rows(cdP, b, r, pts, (kp[:, 0], kp[:, -1]))
+            lines = _contact_rows(cdP, b, r, pts, (kp[:, 0], kp[:, -1]), (xb, inv))
         j = np.argmax(ki, -1)
         n = np.arange(len(keep))
         # the refined gains start + k step, k = 1..8 (as np.linspace makes them)

@@ -403,7 +403,7 @@ def tuning_order(rows: Sequence[LoopRow]) -> list[int]:
     return order
 
 
-def tuning_levels(rows: Sequence[LoopRow]) -> list[list[int]]:
+def tuning_levels(rows: Sequence[LoopRow], links: CascadeLinks | None = None) -> list[list[int]]:
     """Row indices in batches for proposals: level 0 has no inner loop to wait for, level k
     rows have their inner loop in level k - 1.
 
@@ -416,13 +416,17 @@ def tuning_levels(rows: Sequence[LoopRow]) -> list[list[int]]:
     ----------
     rows : sequence of LoopRow
         All rows of the inventory, in order.
+    links : CascadeLinks, optional
+        :func:`link_cascades` of these rows when the caller has it already (the cascade
+        stage keeps it); worked out here when None.
 
     Returns
     -------
     list[list[int]]
         The levels, innermost first.
     """
-    links = link_cascades(rows)
+    if links is None:
+        links = link_cascades(rows)
     level = {i: v - 1 for i, v in _chain_levels(len(rows), links.inner_of).items()}
     # a cycle gives its members arbitrary levels; put them all at 0
     for i, ps in links.problems.items():

@@ -15,7 +15,7 @@ References
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -345,7 +345,8 @@ class LoopModel:
         controller : Controller
             The settings to put in place of the present ones.
         """
-        return replace(self, controller=controller)
+        # what dataclasses.replace does, without its look-up of the fields (called per candidate)
+        return type(self)(self.tag, self.process, controller, self.sign, self.pv_filter, self.sample, self.inner)
 
     def L(self, w: np.ndarray) -> np.ndarray:
         """Loop transfer L(jw), exact delay, inner loop included; w in [rad/s]."""

@@ -12,6 +12,7 @@ figures agree to about 1e-15 relative).
 from __future__ import annotations
 
 import multiprocessing
+from contextlib import contextmanager
 from concurrent.futures import ProcessPoolExecutor
 from typing import Sequence
 
@@ -272,3 +273,54 @@ def map_parts(fn, n: int, jobs: int, extra: tuple = (), min_per_job: int = MIN_L
             return [first, *rest]
     finally:
         _PARTS = None
+
+
+_POOL_SHARED: tuple | None = None
+
+
+def _run_pooled(fn, args: tuple):
+    """Worker side of :func:`shared_pool`: ``fn(*extra, *args)`` with ``extra`` shared at fork time."""
+    return fn(*_POOL_SHARED, *args)
+
+
+def pool_available() -> bool:
+    """True where worker processes can be forked (:func:`shared_pool` needs it).
+
+    Returns
+    -------
+    bool
+        The 'fork' start method exists on this system.
+    """
+    return _CONTEXT is not None
+
+
+@contextmanager
+def shared_pool(workers: int, extra: tuple = ()):
+    """``workers`` forked processes that inherit ``extra``, for calls in rounds (one fork for all of them).
+
+    Yields ``submit(fn, *args)``, which runs ``fn(*extra, *args)`` in a worker and returns its
+    :class:`concurrent.futures.Future`: only ``args`` and the result cross the process boundary.
+    The caller does its own share meanwhile; a later round may use what an earlier one returned.
+    Needs :func:`pool_available`.
+
+    Parameters
+    ----------
+    workers : int
+        Worker processes (at least 1). [-]
+    extra : tuple
+        Arguments passed whole to every call, inherited at fork time.
+
+    Yields
+    ------
+    callable
+        ``submit(fn, *args) -> Future``; ``fn`` a module-level function.
+    """
+    global _POOL_SHARED
+    if _CONTEXT is None:
+        raise RuntimeError("no 'fork' start method on this system: no worker processes")
+    _POOL_SHARED = extra
+    try:
+        with ProcessPoolExecutor(max_workers=max(1, int(workers)), mp_context=_CONTEXT) as pool:
+            yield lambda fn, *args: pool.submit(_run_pooled, fn, args)
+    finally:
+        _POOL_SHARED = None

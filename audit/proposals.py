@@ -239,10 +239,11 @@ def check_actions(models: Sequence[LoopModel]) -> list[ActionCheck]:
     both = list(models) + [replace(m, sign=-m.sign) for m in models]
     df = evaluate(both, mt=False)      # only stability is read
     n = len(models)
+    stable, rhp_open = df["stable"].to_numpy(), df["rhp_open"].to_numpy()   # one column read, not a row each
     out = []
     for i, m in enumerate(models):
-        st, ot = bool(df["stable"].iloc[i]), bool(df["stable"].iloc[n + i])
-        rhp = df["rhp_open"].iloc[i]
+        st, ot = bool(stable[i]), bool(stable[n + i])
+        rhp = rhp_open[i]
         rhp = int(rhp) if _finite(rhp) else 0
         pos = action_is_wrong(m)
         wrong, reason = decide_action(st, ot, rhp, pos)
@@ -557,8 +558,13 @@ def tuned_model(model: LoopModel, p: Proposal) -> LoopModel | None:
     """
     if p.settings is None:
         return None
-    m = replace(model, sign=-model.sign) if p.corrected_action else model
-    return m.with_controller(p.settings.controller())
+    return _tuned(model, p.settings, p.corrected_action)
+
+
+def _tuned(model: LoopModel, s: Settings, corrected_action: str | None) -> LoopModel:
+    """The loop with settings ``s`` (its action reversed when it was corrected)."""
+    m = replace(model, sign=-model.sign) if corrected_action else model
+    return m.with_controller(s.controller())
 
 
 def propose_many(items: Sequence[tuple[LoopModel, LoopRow, Mapping[str, Any] | None]], policy: Policy,
@@ -733,7 +739,7 @@ def proposal_record(p: Proposal | None) -> dict[str, Any]:
 
 
 #: Fewest loops a worker process is started for in the proposals stage (each costs ~5 ms of search). [-]
-MIN_LOOPS_PER_PROPOSAL_JOB = 200
+MIN_LOOPS_PER_PROPOSAL_JOB = 25
 #: Recommendations' load steps are simulated in blocks of this many loops of the stage (by position),
 #: whatever ``--jobs``: a batch's make-up moves the last bits of its loops' figures (matrices padded to
 #: the batch's largest loop), so fixed blocks keep the IAE the same to the last bit for any job count.
@@ -770,31 +776,103 @@ def _with_iae(items, got: list[Proposal | None], policy: Policy, at: Sequence[in
     return errors
 
 
-def _propose_part(items, policy: Policy, with_iae: bool, idx: Sequence[int]):
-    """Worker side of :func:`_propose_spread`: the proposals of ``items[idx]`` (with their load-step
-    IAE when ``with_iae``), their loops' faults and the IAE's faults of single loops."""
+def _search_part(items, policy: Policy, idx: Sequence[int]):
+    """The proposals of ``items[idx]`` without their load-step IAE, and their loops' faults (by position)."""
     errors: dict[int, BaseException] = {}
-    sub = [items[k] for k in idx]
-    got = propose_many(sub, policy, with_iae=False, errors=errors)
-    iae_errors = _with_iae(sub, got, policy, idx) if with_iae else {}
-    return got, {int(idx[k]): e for k, e in errors.items()}, iae_errors
+    got = propose_many([items[k] for k in idx], policy, with_iae=False, errors=errors)
+    return got, {int(idx[k]): e for k, e in errors.items()}
+
+
+def _iae_part(items, policy: Policy, at: Sequence[int], picks: Sequence[tuple[Settings, str | None]]):
+    """The load-step IAE of one block: the loops ``items[at]`` with their recommended settings and
+    corrected actions ``picks`` (as :func:`tuned_model`), in one simulation; the faults of single loops."""
+    models = [_tuned(items[k][0], s, corrected) for k, (s, corrected) in zip(at, picks)]
+    errors: dict[int, BaseException] = {}
+    return _iae_safe(models, policy, errors, list(at)), errors
+
+
+#: CPU of a recommendation's load-step IAE relative to its loop's search (about 0.9 ms against 5.5 ms
+#: a loop): used only to share the stage's work out evenly over the processes. [-]
+IAE_SHARE = 0.17
+
+
+#: This process's share of the stage's work, against a worker's 1 (it also forks the workers, takes their
+#: results in and writes the proposals' columns, but a worker pickles its results and copies the pages it
+#: touches: at 2,000 loops, with 0.9 here, the worker used about 0.4 s of CPU more than this process). [-]
+HOME_SHARE = 1.0
+
+
+def _shares(n: int, jobs: int, with_iae: bool) -> tuple[np.ndarray, list[list[int]]]:
+    """How :func:`_propose_spread` shares ``n`` loops over ``jobs`` processes (this process is number 0):
+    the cuts of the search into consecutive parts, and the IAE blocks (:data:`IAE_BLOCK` positions each)
+    of each process. The blocks go to the least loaded process, largest first (ties to the last
+    process: this one has the stage's own bookkeeping besides); the search is cut so that each process
+    gets about the same work (:data:`IAE_SHARE`), this one :data:`HOME_SHARE` of it. Only the balance
+    depends on it, never a figure."""
+    sizes = [min(IAE_BLOCK, n - a) for a in range(0, n, IAE_BLOCK)] if with_iae else []
+    load = [0.0] * jobs
+    mine: list[list[int]] = [[] for _ in range(jobs)]
+    for b in sorted(range(len(sizes)), key=lambda b: (-sizes[b], b)):
+        p = min(range(jobs), key=lambda q: (load[q], -q))
+        mine[p].append(b)
+        load[p] += IAE_SHARE * sizes[b]
+    weight = np.array([HOME_SHARE] + [1.0] * (jobs - 1))
+    search = np.maximum(0.0, (n + sum(load)) * weight / weight.sum() - np.asarray(load))
+    search *= n / search.sum() if search.sum() > 0 else 0.0
+    cuts = np.round(np.cumsum(search)[:-1]).astype(int)
+    return np.clip(cuts, 0, n), mine
 
 
 def _propose_spread(items, policy: Policy, jobs: int, errors: dict[int, BaseException],
                     with_iae: bool = False, iae_errors: dict[int, BaseException] | None = None
                     ) -> list[Proposal | None]:
-    """:func:`propose_many` (IAE when ``with_iae``), the loops split over ``jobs`` processes when they are
-    enough; each process simulates the load steps of its own recommendations."""
-    from .parallel import map_parts
-    parts = map_parts(_propose_part, len(items), jobs, (items, policy, with_iae), MIN_LOOPS_PER_PROPOSAL_JOB,
-                      align=IAE_BLOCK)
-    out: list[Proposal | None] = []
-    for got, errs, iae_errs in parts:
-        out += got
+    """:func:`propose_many` (IAE when ``with_iae``), the loops shared over ``jobs`` processes when they
+    are enough (:data:`MIN_LOOPS_PER_PROPOSAL_JOB` each).
+
+    Two rounds in one set of forked workers: the search, cut into consecutive parts anywhere (a loop's
+    proposal is its own), then the load-step IAE, one simulation per block of :data:`IAE_BLOCK` of
+    the stage's positions (a batch's make-up moves the last bits, so the blocks are fixed whatever
+    ``jobs``), each block in one process (:func:`_shares`). This process does its share of each round.
+    """
+    from .parallel import pool_available, shared_pool
+    n = len(items)
+    jobs = min(max(1, int(jobs)), n // MIN_LOOPS_PER_PROPOSAL_JOB) if pool_available() else 1
+    iae_errors = {} if iae_errors is None else iae_errors
+    if jobs <= 1:
+        got, errs = _search_part(items, policy, np.arange(n))
         errors.update(errs)
-        if iae_errors is not None:
-            iae_errors.update(iae_errs)
-    return out
+        if with_iae:
+            iae_errors.update(_with_iae(items, got, policy, range(n)))
+        return got
+    cuts, mine = _shares(n, jobs, with_iae)
+    parts = np.split(np.arange(n), cuts)
+    with shared_pool(jobs - 1, (items, policy)) as submit:
+        futures = [submit(_search_part, p) for p in parts[1:]]
+        got, errs = _search_part(items, policy, parts[0])
+        for f in futures:
+            g, e = f.result()
+            got += g
+            errs.update(e)
+        errors.update(errs)
+        if not with_iae:
+            return got
+        blocks: dict[int, list[int]] = {}
+        for k, p in enumerate(got):
+            if p is not None and p.settings is not None and p.after is not None:
+                blocks.setdefault(k // IAE_BLOCK, []).append(k)
+
+        def task(b):
+            return blocks[b], [(got[k].settings, got[k].corrected_action) for k in blocks[b]]
+
+        theirs = [b for q in range(1, jobs) for b in mine[q] if b in blocks]
+        ours = [b for b in mine[0] if b in blocks]
+        futures = [submit(_iae_part, *task(b)) for b in theirs]
+        done = [_iae_part(items, policy, *task(b)) for b in ours] + [f.result() for f in futures]
+    for b, (iae, errs) in zip(ours + theirs, done):
+        for k, v in zip(blocks[b], iae):
+            got[k] = replace(got[k], after=replace(got[k].after, iae=v))
+        iae_errors.update(errs)
+    return got
 
 
 def _propose_contained(audit, items, batch: list[int], policy: Policy, jobs: int = 1) -> list[Proposal | None]:
@@ -854,9 +932,10 @@ def _add_proposals(audit) -> None:
     out: dict[int, Proposal] = {}
     todo: list[int] = []
     unjudged = audit.extras.get("records_unjudged_status", {})
+    status_of = dict(zip(res.index, res["status"].tolist())) if "status" in res.columns else {}
     for i, row in enumerate(rows):
         model = audit.models[i]
-        status = str(res.at[i, "status"]) if "status" in res.columns else ""
+        status = str(status_of[i]) if "status" in res.columns else ""
         if i in unjudged and unjudged[i] in ("passes", "marginal"):
             status = unjudged[i]   # fails only because its record could not be used: the fix is the record
         if model is None or status == "invalid":
@@ -871,7 +950,7 @@ def _add_proposals(audit) -> None:
     if todo:
         # cascades: innermost loops first; each outer loop is proposed against the proposed
         # tuning of its inner loop (the inner loop keeps its present tuning when it needs none)
-        from .cascade import compose, tuning_levels
+        from .cascade import CascadeLinks, compose, tuning_levels
         links = audit.extras.get("cascade")
         inner_of = getattr(links, "inner_of", {}) or {}
         composed = getattr(links, "composed", frozenset()) or frozenset()
@@ -880,7 +959,7 @@ def _add_proposals(audit) -> None:
         jobs = max(1, int(getattr(audit.options, "jobs", 1) or 1))
         # the results rows as plain dicts (a pandas row per loop costs more than its proposal's bookkeeping)
         figures_rows = dict(zip(todo, res.iloc[todo].to_dict("records")))
-        for level in tuning_levels(rows):
+        for level in tuning_levels(rows, links if isinstance(links, CascadeLinks) else None):
             batch = [i for i in level if i in todo_set]
             if not batch:
                 continue

@@ -347,3 +347,34 @@ def test_screen_equals_its_plain_definitions():
             with np.errstate(divide="ignore"):
                 assert sc.gm_db[i, j] == -20 * np.log10(up) and sc.gm_down_db[i, j] == 20 * np.log10(down)
             assert sc.pm_deg[i, j] == min(pms, default=np.inf)
+
+
+def test_contact_rows_with_x_over_b_per_loop_equal_the_rows_own():
+    """x/b of the forbidden points worked out once per loop and shared by its rows (several derivative
+    times, as the ki frontiers do) gives every ki contact of every row number for number as each row's
+    own x/b, and the general contact of the line L0 + t b (common practice)."""
+    rng = np.random.default_rng(17)
+    loops, n = 3, 501
+    w = np.logspace(-2.5, 1.2, n)
+    P = (rng.uniform(0.5, 3.0, (loops, 1)) / (1j * w * rng.uniform(1.0, 20.0, (loops, 1)) + 1)) \
+        * np.exp(-1j * w[None, :] * rng.uniform(0.5, 2.0, (loops, 1)))
+    inv = np.repeat(np.arange(loops), 2)                       # two rows a loop: td = 0 and td > 0
+    td = np.tile([0.0, 1.5], loops)
+    cd = np.where(td[:, None] > 0, 1.0 + (1j * w * td[:, None]) / (0.1 * td[:, None] * 1j * w + 1.0), 1.0 + 0j)
+    A = cd * P[inv]
+    b_loop = P / (1j * w[None, :])
+    b = b_loop[inv]
+    pts_loop = np.array([cand._forbidden_points(Limits(ms, 6.0, 45.0)) for ms in (1.6, 2.0, 1.4)])
+    xb = pts_loop[:, :, None] / b_loop[:, None, :]
+    pts, r = pts_loop[inv], 1.0 / np.array([1.6, 2.0, 1.4])[inv]
+    kp_u = rng.uniform(0.2, 0.6, inv.size)
+    kp = kp_u[:, None] * cand.KP_FRACTIONS[None, :]
+    span = (kp[:, 0], kp[:, -1])
+    shared = cand._contact_rows(A, b, r, pts, span, (xb, inv))
+    own = cand._contact_rows(A, b, r, pts, span)
+    grid = (cand.KP_FRACTIONS, np.zeros(inv.size), kp_u)
+    got = cand._ki_contacts(shared, kp, grid)
+    np.testing.assert_array_equal(got, cand._ki_contacts(own, kp, grid))
+    ref = cand._first_contact(kp[..., None] * A[:, None, :], b[:, None, :], r, pts)
+    np.testing.assert_allclose(got, ref, rtol=1e-9)
+    assert np.isfinite(got).all() and (got > 0).all()

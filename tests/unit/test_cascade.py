@@ -333,6 +333,8 @@ def test_tuning_order_puts_inner_loops_first_and_keeps_every_row():
     assert order.index(3) < order.index(2) < order.index(0)
     assert order == [3, 2, 0, 1, 5, 4, 6]
     assert tuning_levels(rows) == [[1, 3, 4, 5, 6], [2], [0]]
+    # the links the cascade stage keeps (with the column letter, which names cells only) give the same levels
+    assert tuning_levels(rows, link_cascades(rows, "K")) == [[1, 3, 4, 5, 6], [2], [0]]
 
 
 def test_compose_with_a_proposed_inner_loop():

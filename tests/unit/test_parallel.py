@@ -5,6 +5,7 @@ Regression checks (the parallel path against the serial engine), not validation.
 
 from __future__ import annotations
 
+import os
 import warnings
 
 import numpy as np
@@ -166,3 +167,21 @@ def test_two_jobs_give_exactly_the_one_job_proposals(tmp_path, monkeypatch):
             got.append(audit.results)
     assert got[0]["proposal_iae_s"].notna().sum() > 100
     pd.testing.assert_frame_equal(got[0], got[1], check_exact=True)
+
+
+def _pid_and(extra_fn, x):
+    return os.getpid(), extra_fn(x)
+
+
+def test_shared_pool_runs_rounds_in_forked_workers_with_inherited_arguments():
+    """``shared_pool``: calls run in another process with the arguments given at fork time (a lambda,
+    which could not be pickled, so it was inherited, not sent), in two rounds of the same workers,
+    the second using the first's results (common practice: fork inherits the parent's memory)."""
+    assert parallel.pool_available()      # Linux: the fork start method
+    square = lambda x: x * x   # noqa: E731 - unpicklable on purpose
+    with parallel.shared_pool(1, (square,)) as submit:
+        first = [f.result() for f in [submit(_pid_and, k) for k in range(3)]]
+        second = submit(_pid_and, sum(v for _, v in first)).result()
+    assert [v for _, v in first] == [0, 1, 4] and second[1] == 25
+    pids = {p for p, _ in first} | {second[0]}
+    assert len(pids) == 1 and os.getpid() not in pids     # one worker, forked once, not this process

@@ -11,6 +11,7 @@ import dataclasses
 import math
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 import audit.candidates as cand
@@ -186,3 +187,44 @@ def test_stage_marks_a_failing_loop_and_proposes_the_rest(site, monkeypatch):
         if i == victim or i in inner_of_victim:
             continue
         _same(a.extras["proposals"][r.index], clean.extras["proposals"][r.index])
+
+
+def test_stage_over_three_processes_with_small_iae_blocks_equals_one(site, monkeypatch):
+    """With three processes the search is cut off the IAE blocks' edges and the blocks are shared out
+    in a second round (``_shares``); every proposal, its load-step IAE included, is the same to the
+    last bit as in one process (common practice: work shared out must not change a figure)."""
+    monkeypatch.setattr(proposals, "IAE_BLOCK", 5)
+    one = site(1)
+    proposals.add_proposals(one)
+    monkeypatch.setattr(proposals, "MIN_LOOPS_PER_PROPOSAL_JOB", 2)
+    n = len(one.inventory.rows)
+    cuts, mine = proposals._shares(n, 3, True)
+    assert any(c % 5 for c in cuts)                     # a search part starts inside a block
+    assert sum(len(b) for b in mine) == -(-n // 5) >= 3  # every block in one process, several blocks
+    three = site(3)
+    proposals.add_proposals(three)
+    iae = 0
+    for k, p in one.extras["proposals"].items():
+        _same(p, three.extras["proposals"][k])
+        iae += p.after is not None and math.isfinite(p.after.iae)
+    assert iae > 5
+    assert not one.extras.get("faults") and not three.extras.get("faults")
+
+
+@pytest.mark.parametrize("n,jobs", [(60, 2), (934, 2), (54, 2), (2000, 3), (1030, 4)])
+def test_shares_cover_every_loop_once_with_about_equal_work(n, jobs):
+    """The search parts cover positions 0..n-1 once, in order; every IAE block of the stage goes to
+    exactly one process; each process's work (its search plus IAE_SHARE a simulated loop) is within
+    a block's IAE and a loop of its target, this process's HOME_SHARE of a worker's (common practice:
+    a balanced split)."""
+    cuts, mine = proposals._shares(n, jobs, True)
+    parts = [len(p) for p in np.split(np.arange(n), cuts)]
+    assert len(parts) == jobs and sum(parts) == n and list(cuts) == sorted(cuts)
+    blocks = sorted(b for m in mine for b in m)
+    assert blocks == list(range(-(-n // proposals.IAE_BLOCK)))
+    size = [min(proposals.IAE_BLOCK, n - b * proposals.IAE_BLOCK) for b in range(len(blocks))]
+    work = [parts[p] + proposals.IAE_SHARE * sum(size[b] for b in mine[p]) for p in range(jobs)]
+    weight = [proposals.HOME_SHARE] + [1.0] * (jobs - 1)
+    target = [sum(work) * w / sum(weight) for w in weight]
+    for p in range(jobs):
+        assert abs(work[p] - target[p]) <= proposals.IAE_SHARE * proposals.IAE_BLOCK + 1
