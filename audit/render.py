@@ -633,8 +633,6 @@ def write_outputs(audit, beside: Callable[[], Any] | None = None) -> dict[str, P
     dict
         File name -> path written, in ``audit.options.out_dir``.
     """
-    from .xlsx_out import write_results_xlsx
-
     global _SHARED
     out = Path(audit.options.out_dir)
     out.mkdir(parents=True, exist_ok=True)
@@ -689,6 +687,8 @@ def write_outputs(audit, beside: Callable[[], Any] | None = None) -> dict[str, P
         written["report.pdf"] = write_pdf(pdf_html, out / "report.pdf", out)
         audit.timings["report.pdf"] = time.perf_counter() - t0
     if "results.xlsx" not in written:
+        from .xlsx_out import write_results_xlsx   # here: with the pool's workers, this process never needs it
+
         t0 = time.perf_counter()
         written["results.xlsx"] = write_results_xlsx(audit, report, xlsx_path)
         audit.timings["results.xlsx"] = time.perf_counter() - t0
