@@ -614,7 +614,7 @@ def write_outputs(audit, beside: Callable[[], Any] | None = None) -> dict[str, P
 
     With more than one job, a process pool serves the report (step batches, charts, detail sections); where
     the platform forks, its workers also write ``beside`` and results.xlsx, each as one task: ``beside``
-    queued right after the step batches, the workbook right after the detail sections. This process builds
+    queued right after the step batches, the workbook once the report model is built. This process builds
     and renders the page meanwhile and does none of their work (no thread of it competes with the page for
     the interpreter). Otherwise ``beside`` runs first and results.xlsx after the page. The files are the
     same either way.
@@ -653,39 +653,31 @@ def write_outputs(audit, beside: Callable[[], Any] | None = None) -> dict[str, P
             with _pool(jobs) as ex:
                 pool_map = _map_of(ex)
                 tables: list = []
-                book: list = []
 
                 def queue_tables() -> None:
                     if beside_pool and beside is not None and not tables:
                         tables.append(ex.submit(_tables_task))
 
-                def queue_book() -> None:
-                    if beside_pool and not book:
-                        book.append(ex.submit(_book_task, _book_part(report), xlsx_path))
-
                 def mapper(fn: Callable, *items: Any) -> Any:
                     pending = pool_map(fn, *items)
-                    queue_tables()   # after the step batches, the first tasks: a worker free before the
-                    # report model is built writes them
-                    if fn is _loop_sections:
-                        queue_book()   # after the detail sections: written while this process renders the page
+                    queue_tables()   # after the step batches, the first tasks
                     return pending
 
                 try:
                     report = build_report(audit, plot_limit=limit, mapper=mapper)
                 finally:
                     queue_tables()   # also when no step batch was started, or the build failed
+                book = ex.submit(_book_task, _book_part(report), xlsx_path) if beside_pool else None
                 rendered = draw(report, mapper=mapper)
                 html = render_html(report, rendered, paper=audit.options.paper, mapper=mapper)
-                queue_book()   # also when the page had no detail section to render
                 (out / "report.html").write_text(html, encoding="utf-8")
                 written["report.html"] = out / "report.html"
                 audit.timings["report.html"] = time.perf_counter() - t0
                 t0 = time.perf_counter()
                 for done in tables:
                     done.result()
-                if book:
-                    written["results.xlsx"] = book[0].result()
+                if book is not None:
+                    written["results.xlsx"] = book.result()
                     audit.timings["results.xlsx"] = time.perf_counter() - t0   # the wait after the page
         finally:
             _SHARED = None
