@@ -21,8 +21,8 @@ import functools
 import gc
 import itertools
 import math
+import multiprocessing
 import re
-import threading
 import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -545,18 +545,41 @@ def write_pdf(html: str, path: Path, out_dir: Path) -> Path:
 # ----------------------------------------------------------------------------- outputs
 
 
-@contextlib.contextmanager
-def _mapper(jobs: int) -> Iterator[Callable]:
-    """``map``, or a process pool's ``map`` when more than one job is allowed.
+_FORK = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
+"""The start method of the report's pool: fork (workers inherit the compiled templates and the run), else None."""
 
-    The pool's workers are started at once (forked before the caller starts any thread of its own).
+
+@contextlib.contextmanager
+def _pool(jobs: int) -> Iterator[ProcessPoolExecutor | None]:
+    """A process pool of ``jobs`` workers, started at once, or None with one job.
+
+    The workers are forked now (before the caller starts any thread of its own) where the platform forks;
+    elsewhere they are started by the platform's default method.
     """
     if jobs is None or jobs <= 1:
-        yield map
+        yield None
         return
-    with ProcessPoolExecutor(max_workers=jobs) as ex:
+    with ProcessPoolExecutor(max_workers=jobs, mp_context=_FORK) as ex:
         ex.submit(int)   # with fork, the first task starts every worker now
-        yield functools.partial(ex.map, chunksize=1)   # one task per item: the two step batches run side by side
+        yield ex
+
+
+def _map_of(ex: ProcessPoolExecutor | None) -> Callable:
+    """``map``, or the pool's ``map`` of one task per item (the two step batches run side by side)."""
+    return map if ex is None else functools.partial(ex.map, chunksize=1)
+
+
+@contextlib.contextmanager
+def _mapper(jobs: int) -> Iterator[Callable]:
+    """``map``, or a process pool's ``map`` when more than one job is allowed (:func:`_pool`).
+
+    Parameters
+    ----------
+    jobs : int
+        Worker processes; 1 or None: ``map`` in this process. [-]
+    """
+    with _pool(jobs) as ex:
+        yield _map_of(ex)
 
 
 def _ready_for_workers() -> None:
@@ -588,9 +611,12 @@ def _ready_for_workers() -> None:
 def write_outputs(audit, beside: Callable[[], Any] | None = None) -> dict[str, Path]:
     """Write report.html, report.pdf (unless ``options.pdf`` is false) and results.xlsx.
 
-    With more than one job, ``beside`` and then results.xlsx are written by a thread of this process while
-    the page is built and rendered (this process mostly waits for the pool's workers then); with one job,
-    ``beside`` runs first and results.xlsx after the page, as before. The files are the same either way.
+    With more than one job, a process pool serves the report (step batches, charts, detail sections); where
+    the platform forks, its workers also write ``beside`` and results.xlsx, each as one task: ``beside``
+    queued right after the step batches, the workbook once the report model is built. This process builds
+    and renders the page meanwhile and does none of their work (no thread of it competes with the page for
+    the interpreter). Otherwise ``beside`` runs first and results.xlsx after the page. The files are the
+    same either way.
 
     Parameters
     ----------
@@ -598,59 +624,70 @@ def write_outputs(audit, beside: Callable[[], Any] | None = None) -> dict[str, P
         A finished run.
     beside : callable, optional
         Writes other files of the run (the caller's results.csv and results.json); called once with no
-        argument. An exception it raises is raised here, after the thread has stopped.
+        argument (with a pool, in a worker, which inherited it at fork time). An exception it raises is
+        raised here, once the page is written.
 
     Returns
     -------
     dict
         File name -> path written, in ``audit.options.out_dir``.
     """
-    from .xlsx_out import write_results_xlsx
-
+    global _SHARED
     out = Path(audit.options.out_dir)
     out.mkdir(parents=True, exist_ok=True)
     t0 = time.perf_counter()
     limit = getattr(audit.options, "plot_limit", PLOT_LIMIT)
     jobs = audit.options.jobs
     pooled = jobs is not None and jobs > 1
-    if beside is not None and not pooled:
+    beside_pool = pooled and _FORK is not None   # the workers inherit the run: they write the files
+    if beside is not None and not beside_pool:
         beside()
         t0 = time.perf_counter()
     written: dict[str, Path] = {}
     xlsx_path = out / "results.xlsx"
     with _cycle_collector_held():
         _ready_for_workers()   # compiled and imported before the pool's workers are forked
-        with _mapper(jobs) as pool_map, _side_thread(pooled) as side:
-            started = threading.Event()   # set once the workers have their first tasks (the step batches)
+        _SHARED = (audit, beside)   # inherited by the forked workers (:func:`_tables_task`, :func:`_book_task`)
+        try:
+            with _pool(jobs) as ex:
+                pool_map = _map_of(ex)
+                tables: list = []
 
-            def mapper(fn: Callable, *items: Any) -> Any:
-                pending = pool_map(fn, *items)
-                started.set()
-                return pending
+                def queue_tables() -> None:
+                    if beside_pool and beside is not None and not tables:
+                        tables.append(ex.submit(_tables_task))
 
-            first = side(_after, started, beside) if beside is not None and pooled else None
-            try:
-                report = build_report(audit, plot_limit=limit, mapper=mapper)
-            finally:
-                started.set()   # also when no step batch was started, or the build failed
-            book = side(write_results_xlsx, audit, report, xlsx_path) if pooled else None
-            rendered = draw(report, mapper=mapper)
-            html = render_html(report, rendered, paper=audit.options.paper, mapper=mapper)
-            (out / "report.html").write_text(html, encoding="utf-8")
-            written["report.html"] = out / "report.html"
-            audit.timings["report.html"] = time.perf_counter() - t0
-            t0 = time.perf_counter()
-            if first is not None:
-                first.result()
-            if book is not None:
-                written["results.xlsx"] = book.result()
-                audit.timings["results.xlsx"] = time.perf_counter() - t0   # the wait after the page
+                def mapper(fn: Callable, *items: Any) -> Any:
+                    pending = pool_map(fn, *items)
+                    queue_tables()   # after the step batches, the first tasks
+                    return pending
+
+                try:
+                    report = build_report(audit, plot_limit=limit, mapper=mapper)
+                finally:
+                    queue_tables()   # also when no step batch was started, or the build failed
+                book = ex.submit(_book_task, _book_part(report), xlsx_path) if beside_pool else None
+                rendered = draw(report, mapper=mapper)
+                html = render_html(report, rendered, paper=audit.options.paper, mapper=mapper)
+                (out / "report.html").write_text(html, encoding="utf-8")
+                written["report.html"] = out / "report.html"
+                audit.timings["report.html"] = time.perf_counter() - t0
+                t0 = time.perf_counter()
+                for done in tables:
+                    done.result()
+                if book is not None:
+                    written["results.xlsx"] = book.result()
+                    audit.timings["results.xlsx"] = time.perf_counter() - t0   # the wait after the page
+        finally:
+            _SHARED = None
     if audit.options.pdf:
         t0 = time.perf_counter()
         pdf_html = render_html(report, rendered, paper=audit.options.paper, for_print=True)
         written["report.pdf"] = write_pdf(pdf_html, out / "report.pdf", out)
         audit.timings["report.pdf"] = time.perf_counter() - t0
     if "results.xlsx" not in written:
+        from .xlsx_out import write_results_xlsx   # here: with the pool's workers, this process never needs it
+
         t0 = time.perf_counter()
         written["results.xlsx"] = write_results_xlsx(audit, report, xlsx_path)
         audit.timings["results.xlsx"] = time.perf_counter() - t0
@@ -659,20 +696,24 @@ def write_outputs(audit, beside: Callable[[], Any] | None = None) -> dict[str, P
     return written
 
 
-def _after(event: threading.Event, fn: Callable[[], Any]) -> Any:
-    """``fn()`` once ``event`` is set (the side thread leaves the first moments to the pool's tasks)."""
-    event.wait()
-    return fn()
+_SHARED: tuple | None = None
+"""(audit, beside) of the running :func:`write_outputs`, for the pool's workers (they inherit it at fork time)."""
 
 
-@contextlib.contextmanager
-def _side_thread(use: bool) -> Iterator[Callable | None]:
-    """``submit`` of one thread beside this one (calls run in order, each gives a future), or None when ``use``
-    is false. Leaving the context waits for the thread, so no file is being written after it."""
-    if not use:
-        yield None
-        return
-    from concurrent.futures import ThreadPoolExecutor
+def _tables_task() -> None:
+    """A worker's task: the caller's ``beside`` (results.csv and results.json) of the run shared at fork time."""
+    _SHARED[1]()
 
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="audit-writer") as ex:
-        yield ex.submit
+
+def _book_part(report: Report) -> Report:
+    """What results.xlsx reads of the report model (cover, tallies, work list, invalid rows): the report
+    without its detail sections, loop lines and other page-only parts, cheap to send to a worker."""
+    return replace(report, details=(), loops=(), history=None, glossary=(), health=None, groups=(),
+                   plant_data=None)
+
+
+def _book_task(report: Report, path: Path) -> Path:
+    """A worker's task: results.xlsx of the run shared at fork time, with ``report`` (:func:`_book_part`)."""
+    from .xlsx_out import write_results_xlsx
+
+    return write_results_xlsx(_SHARED[0], report, path)

@@ -396,8 +396,8 @@ def run_audit(inventory_path: str, options: AuditOptions, force: bool = False) -
 def write_outputs(audit: Audit, folder: str | Path | None = None) -> dict[str, Path]:
     """results.csv, results.json, then the report and workbook, into ``folder``.
 
-    With ``--jobs`` above 1 results.csv and results.json are written beside the page (a thread of this
-    process, while the pool's workers draw: :func:`audit.render.write_outputs`); the files are the same.
+    With ``--jobs`` above 1 results.csv and results.json are written beside the page (by a worker of the
+    report's pool, forked with the run: :func:`audit.render.write_outputs`); the files are the same.
 
     Parameters
     ----------

@@ -2,7 +2,7 @@
 
 A failed run changes neither the history nor a previous output folder (the project's rules, "Output
 folder"; common practice for staged writes: write beside, rename into place, commit last), also when
-the failing writer runs in the thread beside the page; a good run writes the files of one process.
+the failing writer runs in a worker of the report's pool; a good run writes the files of one process.
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ def _xlsx_parts(path: Path) -> dict[str, bytes]:
 
 
 def test_failing_workbook_beside_the_page_leaves_the_previous_folder(site, capsys, monkeypatch):  # noqa: F811
-    """A whole run with --jobs 2 whose workbook writer fails half way (in the thread beside the page):
+    """A whole run with --jobs 2 whose workbook writer fails half way (in a worker of the report's pool):
     exit 2, one line naming the error, the previous output folder and the history as they were."""
     import audit.xlsx_out
 

@@ -1,7 +1,7 @@
 """The writers of a whole audit with a pool: results.csv/json and results.xlsx written beside the page.
 
-With ``--jobs`` above 1 the tables and the workbook are written by a thread while the pool's workers
-draw; the files must be those of one process, and a failure of any writer must leave a previous output
+With ``--jobs`` above 1 the tables and the workbook are written by the report pool's workers (forked with
+the run) while the main process builds and renders the page; the files must be those of one process, and a failure of any writer must leave a previous output
 folder as it was (the project's rules, "Output folder"; common practice for staged writes: write beside,
 rename into place, commit last). The column writers are checked against the value-by-value encoders
 over awkward values (Python's float repr and the json module; common practice).
@@ -56,7 +56,7 @@ def test_outputs_with_a_pool_are_the_files_of_one_process(tmp_path):
 
 @pytest.mark.parametrize("jobs", [1, 2])
 def test_a_failing_table_writer_stops_the_write(tmp_path, monkeypatch, jobs):
-    """An error of the CSV writer reaches the caller (with a pool, from the thread beside the page)."""
+    """An error of the CSV writer reaches the caller (with a pool, from the worker that wrote it)."""
     import audit.runner
 
     def broken(path, results, columns):
@@ -70,8 +70,8 @@ def test_a_failing_table_writer_stops_the_write(tmp_path, monkeypatch, jobs):
 
 
 def test_a_failing_report_with_a_pool_does_not_wait_for_ever(tmp_path, monkeypatch):
-    """The thread beside the page waits for the pool's first tasks; a report that fails before any
-    leaves it free: the error is raised, and the tables were written (the staging folder is discarded)."""
+    """The tables are queued after the pool's first tasks; a report that fails before any still queues
+    them: the error is raised, and the tables were written (the staging folder is discarded)."""
     import audit.render
 
     def broken(*args, **kwargs):
@@ -83,6 +83,71 @@ def test_a_failing_report_with_a_pool_does_not_wait_for_ever(tmp_path, monkeypat
     with pytest.raises(ValueError, match="report model broken"):
         write_outputs(au, tmp_path / "out")
     assert (tmp_path / "out" / "results.csv").exists() and not (tmp_path / "out" / "report.html").exists()
+
+
+def test_with_a_pool_the_main_process_writes_neither_tables_nor_workbook(tmp_path, monkeypatch):
+    """--jobs 2: results.csv, results.json and results.xlsx are written by the pool's workers, not by the
+    process that renders the page (the point of the arrangement: that process's CPU goes to the page), and
+    the files are still those of one process."""
+    import os
+
+    import audit.runner
+    import audit.xlsx_out
+
+    log = tmp_path / "pids.txt"
+
+    def traced(fn, name):
+        def call(*args, **kwargs):
+            with open(log, "a", encoding="utf-8") as fh:
+                fh.write(f"{name} {os.getpid()}\n")
+            return fn(*args, **kwargs)
+        return call
+
+    au = make_audit(tmp_path / "unused")
+    one = write_outputs(au, tmp_path / "one")
+    monkeypatch.setattr(audit.runner, "write_csv", traced(audit.runner.write_csv, "csv"))
+    monkeypatch.setattr(audit.runner, "write_json", traced(audit.runner.write_json, "json"))
+    monkeypatch.setattr(audit.xlsx_out, "write_results_xlsx", traced(audit.xlsx_out.write_results_xlsx, "xlsx"))
+    au.options.jobs = 2
+    two = write_outputs(au, tmp_path / "two")
+    seen = dict(line.split() for line in log.read_text(encoding="utf-8").splitlines())
+    assert sorted(seen) == ["csv", "json", "xlsx"]
+    assert str(os.getpid()) not in seen.values()
+    assert list(one) == list(two)
+    for name in ("results.csv", "results.json"):
+        assert (tmp_path / "one" / name).read_bytes() == (tmp_path / "two" / name).read_bytes(), name
+    assert _xlsx_parts(tmp_path / "one" / "results.xlsx") == _xlsx_parts(tmp_path / "two" / "results.xlsx")
+
+
+def test_without_fork_the_tables_are_written_first_and_the_files_are_the_same(tmp_path, monkeypatch):
+    """Where the platform does not fork (render._FORK None) the workers cannot inherit the run: the tables
+    are written before the page and the workbook after it, by this process; the same files (regression)."""
+    import audit.render
+
+    au = make_audit(tmp_path / "unused")
+    write_outputs(au, tmp_path / "one")
+    monkeypatch.setattr(audit.render, "_FORK", None)
+    au.options.jobs = 2
+    write_outputs(au, tmp_path / "two")
+    for name in ("results.csv", "results.json", "report.html"):
+        assert (tmp_path / "one" / name).read_bytes() == (tmp_path / "two" / name).read_bytes(), name
+    assert _xlsx_parts(tmp_path / "one" / "results.xlsx") == _xlsx_parts(tmp_path / "two" / "results.xlsx")
+
+
+def test_the_workbook_reads_only_the_part_of_the_report_sent_to_a_worker(tmp_path):
+    """results.xlsx from the report model without its detail sections, loop lines and page-only parts
+    (render._book_part, what a worker is sent) is the workbook of the whole model, part for part."""
+    from audit.render import _book_part
+    from audit.report import build_report
+    from audit.xlsx_out import write_results_xlsx
+
+    au = make_audit(tmp_path / "unused")
+    report = build_report(au, plot_limit=2)
+    part = _book_part(report)
+    assert report.details and report.loops and not part.details and not part.loops
+    write_results_xlsx(au, report, tmp_path / "whole.xlsx")
+    write_results_xlsx(au, part, tmp_path / "part.xlsx")
+    assert _xlsx_parts(tmp_path / "whole.xlsx") == _xlsx_parts(tmp_path / "part.xlsx")
 
 
 def _frame() -> pd.DataFrame:
