@@ -283,6 +283,17 @@ def _run_pooled(fn, args: tuple):
     return fn(*_POOL_SHARED, *args)
 
 
+def fork_context():
+    """The 'fork' start method's context, or None where the system has none (workers then cannot inherit).
+
+    Returns
+    -------
+    multiprocessing.context.BaseContext or None
+        What every pool of the run that shares data at fork time is started with.
+    """
+    return _CONTEXT
+
+
 def pool_available() -> bool:
     """True where worker processes can be forked (:func:`shared_pool` needs it).
 

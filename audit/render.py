@@ -21,7 +21,6 @@ import functools
 import gc
 import itertools
 import math
-import multiprocessing
 import re
 import time
 from dataclasses import dataclass, field, replace
@@ -34,6 +33,7 @@ import jinja2
 from markupsafe import Markup, escape
 
 from .curves import LoopPlots
+from .parallel import fork_context
 from .report import STATUS_ORDER, Report, build_report
 from .svg import chart_html
 
@@ -545,7 +545,7 @@ def write_pdf(html: str, path: Path, out_dir: Path) -> Path:
 # ----------------------------------------------------------------------------- outputs
 
 
-_FORK = multiprocessing.get_context("fork") if "fork" in multiprocessing.get_all_start_methods() else None
+_FORK = fork_context()
 """The start method of the report's pool: fork (workers inherit the compiled templates and the run), else None."""
 
 
