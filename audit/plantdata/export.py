@@ -641,7 +641,15 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
         return iter(()), {}, {}
     lines = np.concatenate(parts_l)
     del parts_l
-    raw_t = pd.concat(parts_t, ignore_index=True)
+    starts = np.cumsum([0] + [len(v) for v in parts_v[:-1]])
+    # times parsed part by part (as the file reader does chunk by chunk), each part's raw times
+    # dropped once parsed: no whole-slice copy of the raw column beside the parsed one
+    state: dict = {}
+    t = np.empty(len(lines))
+    for k, a in enumerate(starts):
+        b = a + len(parts_t[k])
+        t[a:b] = _times(parts_t[k], lines[a:b], tname, notes, state)
+        parts_t[k] = None
     del parts_t
     sig_parts, word_parts = [], []
     for part in parts_s:                                                # words normalised once each, part by part
@@ -654,7 +662,6 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
         sig_parts.append(lut[codes])                                    # index into SIGNALS, -1 unknown
         word_parts.append((norm, codes))
     sig = np.concatenate(sig_parts)
-    starts = np.cumsum([0] + [len(v) for v in parts_v[:-1]])
     del parts_s, sig_parts
     unknown = sig < 0
     if unknown.any():
@@ -664,9 +671,6 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
         shown = ", ".join(f"{w!r} ({c})" for w, c in vc.head(6).items())
         notes.add("header", f"signal words not in the policy's export_words_* settings: {shown}"
                             f"{' ...' if len(vc) > 6 else ''}; those rows are not read", column="signal")
-    state: dict = {}
-    t = _times(raw_t, lines, tname, notes, state)
-    del raw_t
     ok = ~unknown & np.isfinite(t)
     present = [s for j, s in enumerate(SIGNALS) if np.any(sig[ok] == j)]
     if not present:
@@ -692,6 +696,9 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
     first_ts = per[present[0]][1]
     same = all(np.array_equal(per[s][1], first_ts) for s in present[1:])
     grid = first_ts if same else np.unique(t[ok])
+    del t, ok, sig, unknown                             # a week of a tag: each tens of MB, not needed below
+    if same:                                            # each signal's times are the grid's
+        per = {s: (idx, None) for s, (idx, _) in per.items()}
     rep = np.full(len(grid), np.iinfo(np.int64).max, dtype=np.int64)
     cols: dict[str, pd.Series] = {}
     col_lines: dict[str, np.ndarray] = {}
@@ -709,7 +716,7 @@ def _long_slice(files: Sequence[ExportFile], key: str, naming: ExportNaming, pol
             ln = np.zeros(len(grid), dtype=np.int64)
             ln[pos] = lines[idx]
             np.minimum.at(rep, pos, lines[idx])
-        cols[s] = pd.Series(arr)
+        cols[s] = pd.Series(arr, dtype=arr.dtype, copy=False)   # no inference pass over a mode column's words
         col_lines[s] = ln
     del converted, per
     for s in present:                                   # a time with no row of a signal: named by a row at that time
@@ -723,7 +730,9 @@ def _take(parts: Sequence[pd.Series], starts: np.ndarray, idx: np.ndarray, numbe
           converted: dict[int, np.ndarray] | None = None) -> tuple[np.ndarray, bool]:
     """Values at positions ``idx`` of the parts laid end to end; floats when every part holding them is numeric.
 
-    ``converted`` keeps each numeric part as floats between calls (the signals of one slice share parts).
+    ``converted`` keeps each numeric part's values between calls (the signals of one slice share
+    parts): the part's own array when it is already of a float type (the values taken are converted,
+    exactly, not the whole part), else the part as floats.
     """
     which = np.searchsorted(starts, idx, side="right") - 1
     used = np.flatnonzero(np.bincount(which, minlength=len(parts)))
@@ -736,8 +745,10 @@ def _take(parts: Sequence[pd.Series], starts: np.ndarray, idx: np.ndarray, numbe
         at = idx - starts[w] if one else idx[which == w] - starts[w]
         if numeric:
             if w not in cache:
-                cache[w] = parts[w].to_numpy(dtype=float, na_value=np.nan)
-            got = cache[w][at]
+                p = parts[w]
+                cache[w] = p.to_numpy() if p.dtype in (np.float32, np.float64) else \
+                    p.to_numpy(dtype=float, na_value=np.nan)
+            got = cache[w][at].astype(float, copy=False)
         else:
             got = parts[w].iloc[at].to_numpy(dtype=object)
         if one:

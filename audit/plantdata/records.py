@@ -793,6 +793,7 @@ def assemble_record(shown: str, unit: str, notes: "_Notes", tname: str, found: M
                     parts_v[sig].append(_numbers(ch.cols[col], cl, sig, quality, notes, counts))
             if truncated:
                 break
+        ch = None        # the last chunk's raw columns (a week of a tag: tens of MB) not held through the checks
     finally:
         close()
     lines = np.concatenate(parts_l) if parts_l else np.zeros(0, np.int64)
@@ -906,13 +907,16 @@ def _segments(t, lines, vals, mode, ui, dt, policy: ReadPolicy, notes: _Notes, t
     segs = []
     filled = 0
     jit = [np.inf, 0.0]
+    # every row usable and one segment (a clean record): the segment takes the arrays themselves, which
+    # the caller drops (a week of a tag: no second copy of every signal)
+    whole = len(ui) == len(t) and len(bounds) == 2
     for a, b in zip(bounds[:-1], bounds[1:]):
         sel = ui[a:b]
         if len(sel) < policy.min_samples:
             notes.add("short", f"segment of {len(sel)} samples, fewer than {policy.min_samples}: not used",
                       int(lines[sel[0]]), tname, int(lines[sel[-1]]))
             continue
-        ts = t[sel]
+        ts = t if whole else t[sel]
         dts = np.diff(ts)
         if float(np.max(np.abs(dts - dt)) / dt) > policy.uniform_tolerance:
             span = (ts[-1] - ts[0]) / dt
@@ -934,6 +938,8 @@ def _segments(t, lines, vals, mode, ui, dt, policy: ReadPolicy, notes: _Notes, t
             if mode is not None:
                 pos = np.clip(np.searchsorted(ts, grid + 1e-9 * dt, side="right") - 1, 0, len(ts) - 1)
                 m = mode[sel][pos]
+        elif whole:
+            values, m = dict(vals), mode
         else:
             values = {s: v[sel].copy() for s, v in vals.items()}
             m = mode[sel].copy() if mode is not None else None
