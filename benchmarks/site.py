@@ -14,7 +14,9 @@ with its historian export (``run --data``; e.g. from ``plant-audit generate --da
 process's maximum resident set size (``resource.getrusage``), worker processes listed
 apart; "all processes MiB (sum of peaks)" adds the run's own peak and each plant-data worker's own
 peak (the workers run side by side: a bound on what the run held at once), or, without plant data,
-``--jobs`` times the largest worker's peak. Printed: one table row per size with the time of each stage, the total, the time
+``--jobs`` times the largest worker's peak; "all processes at once" is the largest total over the
+run's process tree sampled every 0.5 s while it runs (resident and proportional set sizes,
+benchmarks/memtree.py). Printed: one table row per size with the time of each stage, the total, the time
 per loop (constant when cost grows linearly with loops), proposals per failing loop and
 peak memory, the CPU time (user + sys) of the audit process and of its worker processes, and the
 1-minute load average at the end of the run (the machine is shared: wall times are only as good as
@@ -38,6 +40,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
 import baseline  # noqa: E402  (benchmarks/baseline.py, beside this script)
+import memtree  # noqa: E402  (benchmarks/memtree.py)
 
 #: Stage columns of the table: (heading, keys of Audit.timings added together).
 COLUMNS = (
@@ -118,11 +121,15 @@ def run_size(n: int, seed: int, jobs: int, pdf: bool, tmp: Path, inventory: str 
         cmd += ["--data", data]
     if scheduler:
         cmd += ["--scheduler", scheduler]
-    proc = subprocess.run(cmd, capture_output=True, text=True, check=False)
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    sampler = memtree.TreeSampler(proc.pid)
+    out, err = proc.communicate()
+    tree = sampler.stop()
     if proc.returncode != 0:
-        raise SystemExit(f"audit of {n} loops failed:\n{proc.stderr[-3000:]}")
-    res = json.loads(proc.stdout.strip().splitlines()[-1])
+        raise SystemExit(f"audit of {n} loops failed:\n{err[-3000:]}")
+    res = json.loads(out.strip().splitlines()[-1])
     res["generate"] = gen
+    res.update(tree)
     return res
 
 
@@ -130,7 +137,8 @@ def table(results: list[dict]) -> str:
     """The figures as a Markdown table."""
     head = ["loops"] + [c for c, _ in COLUMNS] + ["total", "CPU s (+workers)", "load avg", "ms/loop",
                                                   "ms/failing loop (proposals)", "peak MiB",
-                                                  "all processes MiB (sum of peaks)"]
+                                                  "all processes MiB (sum of peaks)",
+                                                  "all processes at once MiB (RSS / PSS, sampled)"]
     lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
     for r in results:
         tm = r["timings"]
@@ -144,7 +152,8 @@ def table(results: list[dict]) -> str:
                   f"{1000 * r['wall'] / r['loops']:.2f}",
                   f"{1000 * prop / failing:.1f} ({failing:,})" if prop is not None and failing else "-",
                   f"{r['peak_mib']:.0f}" + (f" (+workers {r['workers_peak_mib']:.0f})" if r["workers_peak_mib"] else ""),
-                  _sum_cell(r)]
+                  _sum_cell(r),
+                  f"{r['tree_rss_mib']:.0f} / {r['tree_pss_mib']:.0f}" if "tree_rss_mib" in r else "-"]
         lines.append("| " + " | ".join(cells) + " |")
     return "\n".join(lines)
 
@@ -218,6 +227,9 @@ def figures(r: dict) -> dict[str, float]:
     out["workers peak MiB"] = r["workers_peak_mib"]
     if "sum_peak_mib" in r:
         out["all processes peak MiB (sum)"] = r["sum_peak_mib"]
+    if "tree_rss_mib" in r:
+        out["all processes at once MiB (RSS)"] = r["tree_rss_mib"]
+        out["all processes at once MiB (PSS)"] = r["tree_pss_mib"]
     return out
 
 
