@@ -181,6 +181,8 @@ def half_cycles(x: np.ndarray, ts: float, period_s: float) -> np.ndarray:
     return _cycles_upsampled(zc, smooth, up)
 
 
+#: Half cycles fitted at a time by :func:`stiction_index`. [-]
+_SI_BLOCK = 4096
 #: Samples of the record up-sampled at a time by :func:`half_cycles`. [-]
 _PIECE = 1 << 16
 #: Samples either side of a piece: more than the resampling filter's half length (10 samples). [-]
@@ -210,26 +212,37 @@ def _cycles_upsampled(zc: np.ndarray, smooth: np.ndarray, up: int) -> np.ndarray
     s = np.linspace(0.0, 1.0, _POINTS)
     starts = zc[:-1] / up                                  # half-cycle starts in record samples
     bounds = np.searchsorted(starts, np.arange(_PIECE, n_in + _PIECE, _PIECE), side="left")
-    out, a = [], 0
+    pieces, a = [], 0
     for b in np.append(bounds, zc.size - 1):
         b = int(b)
-        if b <= a:
-            continue
+        if b > a:
+            pieces.append((a, b))
+            a = b
+
+    def kept(a: int, b: int) -> np.ndarray:
         z = zc[a:b + 1]
         pos = z[:-1, None] + s[None, :] * (z[1:] - z[:-1])[:, None]
         keep = (z[1:] - z[:-1]) >= 3 * up
         keep &= pos[:, -1] <= size - 1
-        pk = pos[keep]
-        a = b
-        if not pk.size:
+        return pos[keep]
+
+    # the rows are counted first and written into one array: a fast oscillation over a week gives
+    # some 10^5 half cycles (tens of MB), not to be held twice while pieces are joined
+    rows = [len(kept(a, b)) for a, b in pieces]
+    out = np.empty((sum(rows), _POINTS))
+    at = 0
+    for (a, b), n in zip(pieces, rows):
+        if not n:
             continue
+        pk = kept(a, b)
         lo = int(math.floor(float(pk.min())))
         hi = min(int(math.floor(float(pk.max()))) + 2, size)
         i0 = max(0, lo // up - _MARGIN)
         i1 = min(n_in, hi // up + 1 + _MARGIN)
         piece = _sig.resample_poly(smooth[i0:i1], up, 1)[lo - i0 * up:hi - i0 * up]
-        out.append(np.interp(pk, np.arange(lo, hi), piece))
-    return np.concatenate(out) if out else np.zeros((0, _POINTS))
+        out[at:at + n] = np.interp(pk, np.arange(lo, hi), piece)
+        at += n
+    return out
 
 
 def stiction_index(cycles: np.ndarray) -> float:
@@ -258,13 +271,20 @@ def stiction_index(cycles: np.ndarray) -> float:
     tri = np.where(s[None, :] <= apex[:, None], s[None, :] / apex[:, None],
                    (1 - s[None, :]) / (1 - apex[:, None]))
     shapes = np.vstack((np.sin(np.pi * s)[None, :], tri))              # (20, P)
-    yc = cycles - cycles.mean(axis=1, keepdims=True)
     fc = shapes - shapes.mean(axis=1, keepdims=True)
-    amp = yc @ fc.T / (fc * fc).sum(axis=1)[None, :]                    # (cycles, 20)
-    np.multiply(yc, yc, out=yc)                                         # squared in place: one copy less
-    resid = yc.sum(axis=1)[:, None] - amp ** 2 * (fc * fc).sum(axis=1)[None, :]
-    mse_sine = float(resid[:, 0].sum())
-    mse_tri = float(resid[:, 1:].min(axis=1).sum())
+    ff = (fc * fc).sum(axis=1)[None, :]
+    n = cycles.shape[0]
+    sine, tri_best = np.empty(n), np.empty(n)
+    for a in range(0, n, _SI_BLOCK):               # each half cycle's fit is its own row: in blocks, the
+        c = cycles[a:a + _SI_BLOCK]                # temporaries stay small whatever the number of cycles
+        yc = c - c.mean(axis=1, keepdims=True)
+        amp = yc @ fc.T / ff                                            # (cycles, 20)
+        np.multiply(yc, yc, out=yc)                                     # squared in place: one copy less
+        resid = yc.sum(axis=1)[:, None] - amp ** 2 * ff
+        sine[a:a + len(c)] = resid[:, 0]
+        tri_best[a:a + len(c)] = resid[:, 1:].min(axis=1)
+    mse_sine = float(sine.sum())
+    mse_tri = float(tri_best.sum())
     tot = mse_sine + mse_tri
     return 0.5 if tot <= 0 else mse_sine / tot
 
