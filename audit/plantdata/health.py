@@ -341,6 +341,9 @@ def health_plots(data: OperationData, h: LoopHealth, error_acf: np.ndarray | Non
         if lags.size > 2000:
             step = int(math.ceil(lags.size / 2000))
             lags, acf = lags[::step], acf[::step]
+        # copies: a slice of the week-long autocorrelation would keep all of it alive as long as the
+        # plots (a worker's results of a chunk once held hundreds of MB that way)
+        lags, acf, zc = np.array(lags), np.array(acf), np.array(zc)
     return HealthPlots(t, sp, pv, op, pvop, lags, acf, zc, period)
 
 
