@@ -419,60 +419,7 @@ def _sections(details, rendered: Rendered, anchors: frozenset, for_print: bool, 
 
 def render_html(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False,
                 mapper: Callable = map) -> str:
-    """The report as one self-contained HTML page (the text of :func:`html_pieces`, joined).
-
-    Parameters
-    ----------
-    report : Report
-        The report model.
-    rendered : Rendered
-        Its drawings (:func:`draw`).
-    paper : str
-        ``a4`` or ``letter``.
-    for_print : bool
-        The PDF's variant (see :func:`html_pieces`).
-    mapper : callable
-        ``map`` or a process pool's ``map`` (see :func:`html_pieces`).
-
-    Returns
-    -------
-    str
-    """
-    return "".join(html_pieces(report, rendered, paper=paper, for_print=for_print, mapper=mapper))
-
-
-def write_html(path: Path, report: Report, rendered: Rendered, *, paper: str = "a4", mapper: Callable = map) -> Path:
-    """Write the page to ``path`` piece by piece, as the template gives them (UTF-8).
-
-    The same bytes as ``path.write_text(render_html(...), encoding="utf-8")`` without the whole page,
-    and its encoded copy, in memory at once (with plant data, tens of MB per thousand loops).
-
-    Parameters
-    ----------
-    path : Path
-        The file written.
-    report : Report
-        The report model.
-    rendered : Rendered
-        Its drawings (:func:`draw`).
-    paper : str
-        ``a4`` or ``letter``.
-    mapper : callable
-        ``map`` or a process pool's ``map`` (see :func:`html_pieces`).
-
-    Returns
-    -------
-    Path
-    """
-    with open(path, "w", encoding="utf-8") as fh:
-        for piece in html_pieces(report, rendered, paper=paper, mapper=mapper):
-            fh.write(piece)
-    return path
-
-
-def html_pieces(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False,
-                mapper: Callable = map) -> Iterator[str]:
-    """The report as one self-contained HTML page, in the pieces the template gives.
+    """The report as one self-contained HTML page.
 
     Parameters
     ----------
@@ -488,7 +435,40 @@ def html_pieces(report: Report, rendered: Rendered, *, paper: str = "a4", for_pr
     mapper : callable
         ``map`` or a process pool's ``map``: renders the detail sections (:func:`_sections`); the page
         is the same either way.
+
+    Returns
+    -------
+    str
     """
+    return "".join(_html_pieces(report, rendered, paper=paper, for_print=for_print, mapper=mapper))
+
+
+def write_html(path: Path, report: Report, rendered: Rendered, *, paper: str = "a4", mapper: Callable = map) -> Path:
+    """Write the page to ``path`` piece by piece, as the template gives them (UTF-8).
+
+    The same bytes as ``path.write_text(render_html(...), encoding="utf-8")`` without the whole page,
+    and its encoded copy, in memory at once (with plant data, tens of MB per thousand loops).
+
+    Parameters
+    ----------
+    path : Path
+        The file written.
+    report, rendered, paper, mapper
+        As :func:`render_html` (the screen page: ``for_print`` false).
+
+    Returns
+    -------
+    Path
+    """
+    with open(path, "w", encoding="utf-8") as fh:
+        for piece in _html_pieces(report, rendered, paper=paper, mapper=mapper):
+            fh.write(piece)
+    return path
+
+
+def _html_pieces(report: Report, rendered: Rendered, *, paper: str = "a4", for_print: bool = False,
+                 mapper: Callable = map) -> Iterator[str]:
+    """:func:`render_html`'s page in the pieces the template gives (its parameters)."""
     details = report.details
     table_limit = None
     if for_print:

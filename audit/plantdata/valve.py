@@ -218,23 +218,19 @@ def _cycles_upsampled(zc: np.ndarray, smooth: np.ndarray, up: int) -> np.ndarray
         if b > a:
             pieces.append((a, b))
             a = b
-
-    def kept(a: int, b: int) -> np.ndarray:
-        z = zc[a:b + 1]
-        pos = z[:-1, None] + s[None, :] * (z[1:] - z[:-1])[:, None]
-        keep = (z[1:] - z[:-1]) >= 3 * up
-        keep &= pos[:, -1] <= size - 1
-        return pos[keep]
-
-    # the rows are counted first and written into one array: a fast oscillation over a week gives
-    # some 10^5 half cycles (tens of MB), not to be held twice while pieces are joined
-    rows = [len(kept(a, b)) for a, b in pieces]
+    # which half cycles are kept is known from the crossings alone (a half cycle's last point is its
+    # end crossing), so the rows are counted first and written into one array: a fast oscillation
+    # over a week gives some 10^5 half cycles (tens of MB), not to be held twice while pieces are joined
+    dz = zc[1:] - zc[:-1]
+    keep = (dz >= 3 * up) & (zc[:-1] + s[-1] * dz <= size - 1)
+    rows = [int(np.count_nonzero(keep[a:b])) for a, b in pieces]
     out = np.empty((sum(rows), _POINTS))
     at = 0
     for (a, b), n in zip(pieces, rows):
         if not n:
             continue
-        pk = kept(a, b)
+        k = a + np.flatnonzero(keep[a:b])
+        pk = zc[k, None] + s[None, :] * dz[k, None]
         lo = int(math.floor(float(pk.min())))
         hi = min(int(math.floor(float(pk.max()))) + 2, size)
         i0 = max(0, lo // up - _MARGIN)

@@ -161,13 +161,13 @@ def test_two_renderings_are_identical(page):
 def test_page_written_piece_by_piece_is_the_page(page, tmp_path):
     """write_html streams the template's pieces to the file: the bytes of the page encoded whole, and
     the page has many pieces (else nothing is streamed) (common practice: same output, less memory)."""
-    from audit.render import html_pieces, write_html
+    from audit.render import _html_pieces, write_html
     audit, _, html = page
     report = build_report(audit, plot_limit=2)
     rendered = draw(report)
     path = write_html(tmp_path / "report.html", report, rendered)
     assert path.read_bytes() == html.encode("utf-8")
-    assert sum(1 for _ in html_pieces(report, rendered)) > 100
+    assert sum(1 for _ in _html_pieces(report, rendered)) > 100
 
 
 def test_page_with_a_process_pool_is_the_same_page(page, monkeypatch):

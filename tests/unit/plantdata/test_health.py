@@ -55,7 +55,8 @@ def test_plot_data_bounded_for_long_records():
     p = health_plots(d, h)
     assert p.t.size <= 5000 and p.pv_op.op.size <= PV_OP_POINTS and p.acf.size <= 2000
     assert abs(p.period_s - 3000.0) < 30.0
-    # and they hold only themselves: no view keeps a record-long array alive (common practice)
+    # and they hold only themselves: no view keeps a record-long array alive (common practice); the
+    # bound is four trend-sized arrays (the 5,000 points above), under a quarter of one record-long array
     for a in (p.t, p.sp, p.pv, p.op, p.acf_lags_s, p.acf, p.acf_crossings_s, p.pv_op.op, p.pv_op.pv):
         held = a.base if a.base is not None else a
         assert held.nbytes <= 4 * 5000 * 8
